@@ -1,0 +1,1 @@
+"""prescreen.acquire."""
