@@ -1,0 +1,7 @@
+"""Allow ``python -m prescreen``."""
+
+import sys
+
+from prescreen.cli.main import main
+
+sys.exit(main())

@@ -1,0 +1,696 @@
+"""The persistent campaign store: what was read, checked, proposed, computed and learned.
+
+A campaign is a folder::
+
+    my-campaign/
+        campaign.sqlite        candidates, flags, duplicates, results, rounds, proposals, models
+        features/<schema>.parquet   cached descriptors, one file per feature-schema version
+        rounds/round-NNN/      ready-to-run structures of each proposed batch
+        models/                trained models (LightGBM text + JSON metadata)
+
+The database uses SQLite's write-ahead log and one transaction per user action, so a
+process killed in the middle of an ingest leaves the store exactly as it was before.
+Every action can be repeated: adding the same candidates or the same results twice
+changes nothing.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import hashlib
+import json
+import sqlite3
+import zlib
+from collections.abc import Callable, Iterable, Iterator, Sequence
+from contextlib import contextmanager
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import TYPE_CHECKING, Any, Literal
+
+from prescreen import SPILLAGE_THRESHOLD, __version__
+from prescreen.candidate import Candidate
+from prescreen.errors import CampaignError, InputError, Rejection
+from prescreen.hazards import hazard_text
+
+if TYPE_CHECKING:  # pragma: no cover
+    import pandas as pd
+    from pymatgen.core import Structure
+
+__all__ = [
+    "Campaign",
+    "CandidateIngestReport",
+    "ResultIngestReport",
+    "CampaignStatus",
+    "ConflictPolicy",
+    "DB_NAME",
+]
+
+DB_NAME = "campaign.sqlite"
+#: Bump when the table layout changes; older stores are then refused with a clear error.
+STORE_FORMAT = 1
+
+ConflictPolicy = Literal["error", "keep", "replace"]
+_POLICIES = ("error", "keep", "replace")
+
+_SCHEMA = """
+CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
+CREATE TABLE IF NOT EXISTS candidates (
+    id TEXT PRIMARY KEY,
+    formula TEXT NOT NULL,
+    reduced_formula TEXT NOT NULL,
+    chemsys TEXT NOT NULL,
+    source TEXT NOT NULL,
+    n_atoms INTEGER,
+    structure BLOB,
+    layer_status TEXT NOT NULL,
+    thickness_A REAL,
+    vacuum_A REAL,
+    layer_reason TEXT,
+    duplicate_of TEXT,
+    hazard TEXT NOT NULL DEFAULT '',
+    meta TEXT NOT NULL DEFAULT '{}',
+    added_at TEXT NOT NULL,
+    seq INTEGER NOT NULL
+);
+CREATE INDEX IF NOT EXISTS candidates_reduced ON candidates(reduced_formula);
+CREATE TABLE IF NOT EXISTS rejections (
+    seq INTEGER PRIMARY KEY AUTOINCREMENT,
+    kind TEXT NOT NULL,
+    path TEXT NOT NULL,
+    line TEXT,
+    value TEXT NOT NULL,
+    reason TEXT NOT NULL,
+    at TEXT NOT NULL,
+    UNIQUE (kind, path, line, value, reason)
+);
+CREATE TABLE IF NOT EXISTS results (
+    seq INTEGER PRIMARY KEY AUTOINCREMENT,
+    candidate_id TEXT NOT NULL REFERENCES candidates(id),
+    spillage REAL NOT NULL,
+    functional TEXT, code TEXT, kmesh TEXT, core_hours REAL, notes TEXT,
+    source TEXT NOT NULL,
+    ingested_at TEXT NOT NULL,
+    active INTEGER NOT NULL DEFAULT 1
+);
+CREATE INDEX IF NOT EXISTS results_candidate ON results(candidate_id, active);
+CREATE TABLE IF NOT EXISTS rounds (
+    number INTEGER PRIMARY KEY,
+    created_at TEXT NOT NULL,
+    strategy TEXT NOT NULL,
+    budget_core_hours REAL NOT NULL,
+    seed INTEGER,
+    model_version TEXT,
+    settings TEXT NOT NULL DEFAULT '{}'
+);
+CREATE TABLE IF NOT EXISTS proposals (
+    round INTEGER NOT NULL REFERENCES rounds(number),
+    candidate_id TEXT NOT NULL REFERENCES candidates(id),
+    rank INTEGER NOT NULL,
+    probability REAL, uncertainty REAL, cost_core_hours REAL,
+    reason TEXT,
+    status TEXT NOT NULL DEFAULT 'pending',
+    PRIMARY KEY (round, candidate_id)
+);
+CREATE TABLE IF NOT EXISTS models (
+    version TEXT PRIMARY KEY,
+    path TEXT NOT NULL,
+    created_at TEXT NOT NULL,
+    feature_schema TEXT NOT NULL,
+    training_rows INTEGER,
+    metrics TEXT NOT NULL DEFAULT '{}'
+);
+"""
+
+
+def _now() -> str:
+    return _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
+
+
+def _pack_structure(structure: Structure | None) -> bytes | None:
+    if structure is None:
+        return None
+    return zlib.compress(json.dumps(structure.as_dict(), separators=(",", ":")).encode())
+
+
+def _unpack_structure(blob: bytes | None) -> Structure | None:
+    if blob is None:
+        return None
+    from pymatgen.core import Structure
+
+    return Structure.from_dict(json.loads(zlib.decompress(blob)))
+
+
+@dataclass
+class CandidateIngestReport:
+    """What one call of :meth:`Campaign.add_candidates` did."""
+
+    added: int = 0
+    already_present: int = 0
+    duplicates: int = 0
+    layer_counts: dict[str, int] = field(default_factory=dict)
+    rejections: list[Rejection] = field(default_factory=list)
+
+
+@dataclass
+class ResultIngestReport:
+    """What one call of :meth:`Campaign.ingest_results` did."""
+
+    added: int = 0
+    unchanged: int = 0
+    replaced: int = 0
+    kept_existing: int = 0
+    rejections: list[Rejection] = field(default_factory=list)
+
+
+@dataclass(frozen=True)
+class CampaignStatus:
+    """Counts that describe a campaign at a glance."""
+
+    name: str
+    path: str
+    candidates: int
+    with_structure: int
+    formula_only: int
+    monolayers: int
+    not_2d: int
+    ambiguous: int
+    duplicates: int
+    flagged_hazard: int
+    labelled: int
+    positives: int
+    threshold: float
+    rejections: int
+    rounds: int
+    pending: int
+    models: int
+
+    def as_dict(self) -> dict[str, Any]:
+        from dataclasses import asdict
+
+        return asdict(self)
+
+
+class Campaign:
+    """A campaign folder on disk. Open with :meth:`create` or :meth:`open`.
+
+    Parameters
+    ----------
+    path
+        The campaign folder.
+    """
+
+    def __init__(self, path: str | Path) -> None:
+        self.path = Path(path)
+        db = self.path / DB_NAME
+        if not db.is_file():
+            raise CampaignError(
+                f"{self.path}: not a campaign folder (no {DB_NAME}); "
+                "create one with `prescreen create`"
+            )
+        self._conn = self._connect(db)
+        fmt = self.meta("store_format")
+        if fmt is None or int(fmt) != STORE_FORMAT:
+            raise CampaignError(
+                f"{db}: store format {fmt!r} is not the supported format {STORE_FORMAT}"
+            )
+
+    # ------------------------------------------------------------------ opening
+    @staticmethod
+    def _connect(db: Path) -> sqlite3.Connection:
+        conn = sqlite3.connect(db, isolation_level=None, timeout=30.0)
+        conn.execute("PRAGMA journal_mode=WAL")
+        conn.execute("PRAGMA synchronous=NORMAL")
+        conn.execute("PRAGMA foreign_keys=ON")
+        return conn
+
+    @classmethod
+    def create(
+        cls,
+        path: str | Path,
+        *,
+        name: str | None = None,
+        threshold: float = SPILLAGE_THRESHOLD,
+        exist_ok: bool = False,
+    ) -> Campaign:
+        """Create an empty campaign folder (or open it when ``exist_ok``)."""
+        path = Path(path)
+        db = path / DB_NAME
+        if db.exists():
+            if exist_ok:
+                return cls(path)
+            raise CampaignError(f"{path}: a campaign already exists here")
+        if path.exists() and not path.is_dir():
+            raise CampaignError(f"{path}: exists and is not a folder")
+        if not (threshold > 0):
+            raise InputError("spillage threshold must be positive", value=threshold,
+                             expected="a number > 0 (0.5 by common practice)")
+        path.mkdir(parents=True, exist_ok=True)
+        conn = cls._connect(db)
+        with conn:
+            conn.execute("BEGIN")
+            conn.executescript(_SCHEMA.replace("BEGIN", ""))
+            for key, value in {
+                "store_format": str(STORE_FORMAT),
+                "name": name or path.name,
+                "threshold": repr(float(threshold)),
+                "created_at": _now(),
+                "created_by": f"prescreen {__version__}",
+            }.items():
+                conn.execute("INSERT OR REPLACE INTO meta VALUES (?, ?)", (key, value))
+        conn.close()
+        return cls(path)
+
+    @classmethod
+    def open(cls, path: str | Path) -> Campaign:
+        """Open an existing campaign folder."""
+        return cls(path)
+
+    def close(self) -> None:
+        self._conn.close()
+
+    def __enter__(self) -> Campaign:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+    @contextmanager
+    def _transaction(self) -> Iterator[sqlite3.Connection]:
+        """One all-or-nothing write: committed on success, rolled back otherwise."""
+        self._conn.execute("BEGIN IMMEDIATE")
+        try:
+            yield self._conn
+        except BaseException:
+            self._conn.execute("ROLLBACK")
+            raise
+        else:
+            self._conn.execute("COMMIT")
+
+    # ------------------------------------------------------------------ meta
+    def meta(self, key: str) -> str | None:
+        row = self._conn.execute("SELECT value FROM meta WHERE key=?", (key,)).fetchone()
+        return None if row is None else row[0]
+
+    @property
+    def name(self) -> str:
+        return self.meta("name") or self.path.name
+
+    @property
+    def threshold(self) -> float:
+        return float(self.meta("threshold") or SPILLAGE_THRESHOLD)
+
+    # ------------------------------------------------------------------ candidates
+    def add_candidates(
+        self,
+        items: Iterable[Candidate | Rejection],
+        *,
+        progress: bool = False,
+        _after_each: Callable[[int], None] | None = None,
+    ) -> CandidateIngestReport:
+        """Add candidates (and record rejections) in one transaction.
+
+        Each structure is checked for being a monolayer (flagged, never dropped) and
+        compared with the candidates already present for duplicates (recorded with the
+        ID it repeats, never deleted). An ID already in the store with the same content
+        is skipped, so adding a source twice changes nothing; the same ID with other
+        content is rejected.
+
+        Parameters
+        ----------
+        items
+            Candidates and rejections, e.g. from :func:`prescreen.io.iter_candidates`.
+        progress
+            Show a progress bar.
+        """
+        from prescreen.dedupe import DuplicateFinder
+        from prescreen.monolayer import check_monolayer
+
+        report = CandidateIngestReport()
+        now = _now()
+        seq0 = self._conn.execute("SELECT COALESCE(MAX(seq), 0) FROM candidates").fetchone()[0]
+        finder = DuplicateFinder(existing=self._representatives_loader())
+        iterator: Iterable[Candidate | Rejection] = items
+        if progress:
+            from tqdm.auto import tqdm
+
+            iterator = tqdm(items, desc="candidates", unit=" cand")
+        with self._transaction() as conn:
+            for i, item in enumerate(iterator):
+                if isinstance(item, Rejection):
+                    self._record_rejection(conn, "candidate", item, now)
+                    report.rejections.append(item)
+                    continue
+                outcome = self._insert_candidate(conn, item, finder, check_monolayer, now,
+                                                 seq0 + i + 1)
+                if isinstance(outcome, Rejection):
+                    self._record_rejection(conn, "candidate", outcome, now)
+                    report.rejections.append(outcome)
+                elif outcome == "present":
+                    report.already_present += 1
+                else:
+                    report.added += 1
+                    report.layer_counts[outcome[0]] = report.layer_counts.get(outcome[0], 0) + 1
+                    report.duplicates += outcome[1] is not None
+                if _after_each is not None:
+                    _after_each(i)
+        return report
+
+    def _representatives_loader(self) -> Callable[[str], list[tuple[str, Structure | None]]]:
+        """Return a function giving the non-duplicate candidates stored for a formula."""
+
+        def load(reduced_formula: str) -> list[tuple[str, Structure | None]]:
+            rows = self._conn.execute(
+                "SELECT id, structure FROM candidates WHERE reduced_formula=? "
+                "AND duplicate_of IS NULL ORDER BY seq",
+                (reduced_formula,),
+            ).fetchall()
+            return [(cid, _unpack_structure(blob)) for cid, blob in rows]
+
+        return load
+
+    def _insert_candidate(self, conn, cand, finder, check_monolayer, now, seq):
+        from prescreen.chem import formula_keys
+
+        row = conn.execute(
+            "SELECT formula, source, structure FROM candidates WHERE id=?", (cand.id,)
+        ).fetchone()
+        blob = _pack_structure(cand.structure)
+        if row is not None:
+            if row[2] == blob and (blob is not None or row[0] == cand.formula):
+                return "present"
+            return Rejection(
+                path=cand.source.rsplit(":", 1)[0] if ":" in cand.source else cand.source,
+                line=cand.source.rsplit(":", 1)[1] if ":" in cand.source else None,
+                value=cand.id,
+                reason=f"ID {cand.id!r} is already used by a different candidate from "
+                f"{row[1]}; expected a unique ID",
+            )
+        try:
+            reduced, chemsys, elements = formula_keys(cand.formula)
+        except InputError as exc:
+            return Rejection(path=cand.source, line=None, value=cand.formula,
+                             reason=f"cannot parse formula: {exc.reason}")
+        if cand.structure is not None:
+            check = check_monolayer(cand.structure)
+            layer = (check.status, check.thickness_A, check.vacuum_A, check.reason)
+            n_atoms = len(cand.structure)
+        else:
+            layer = ("formula_only", None, None, "composition only: no structure given")
+            n_atoms = None
+        dup = finder.duplicate_of(cand.id, reduced, cand.structure)
+        conn.execute(
+            "INSERT INTO candidates (id, formula, reduced_formula, chemsys, source, n_atoms,"
+            " structure, layer_status, thickness_A, vacuum_A, layer_reason, duplicate_of,"
+            " hazard, meta, added_at, seq) VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?)",
+            (cand.id, cand.formula, reduced, chemsys, cand.source, n_atoms, blob, *layer,
+             dup, hazard_text(elements), json.dumps(cand.meta, sort_keys=True), now, seq),
+        )
+        return (layer[0], dup)
+
+    @staticmethod
+    def _record_rejection(conn, kind: str, rej: Rejection, now: str) -> None:
+        conn.execute(
+            "INSERT OR IGNORE INTO rejections (kind, path, line, value, reason, at) "
+            "VALUES (?,?,?,?,?,?)",
+            (kind, rej.path, None if rej.line is None else str(rej.line), rej.value,
+             rej.reason, now),
+        )
+
+    def candidate_ids(self) -> list[str]:
+        return [r[0] for r in self._conn.execute("SELECT id FROM candidates ORDER BY seq")]
+
+    def structure(self, candidate_id: str) -> Structure | None:
+        """The stored structure of one candidate (``None`` for composition-only ones)."""
+        row = self._conn.execute(
+            "SELECT structure FROM candidates WHERE id=?", (candidate_id,)
+        ).fetchone()
+        if row is None:
+            raise InputError("unknown candidate ID", value=candidate_id,
+                             expected=f"an ID of campaign {self.name!r}")
+        return _unpack_structure(row[0])
+
+    def iter_structures(self, ids: Sequence[str] | None = None) -> Iterator[tuple[str, Structure | None]]:
+        """Yield ``(id, structure)`` in insertion order (all candidates, or ``ids``)."""
+        if ids is None:
+            cur = self._conn.execute("SELECT id, structure FROM candidates ORDER BY seq")
+            for cid, blob in cur:
+                yield cid, _unpack_structure(blob)
+        else:
+            for cid in ids:
+                yield cid, self.structure(cid)
+
+    def candidates_frame(self) -> pd.DataFrame:
+        """All candidates with their flags and current label, one row each, in order."""
+        import pandas as pd
+
+        df = pd.read_sql_query(
+            "SELECT c.id, c.formula, c.reduced_formula, c.chemsys, c.source, c.n_atoms,"
+            " c.layer_status, c.thickness_A, c.vacuum_A, c.layer_reason, c.duplicate_of,"
+            " c.hazard, r.spillage, r.core_hours"
+            " FROM candidates c LEFT JOIN results r"
+            " ON r.candidate_id = c.id AND r.active = 1 ORDER BY c.seq",
+            self._conn,
+        )
+        df["labelled"] = df["spillage"].notna()
+        return df.set_index("id")
+
+    # ------------------------------------------------------------------ results
+    def ingest_results(
+        self,
+        rows_and_rejections: tuple[Sequence[Any], Sequence[Rejection]],
+        *,
+        on_conflict: ConflictPolicy = "error",
+        _after_each: Callable[[int], None] | None = None,
+    ) -> ResultIngestReport:
+        """Store DFT results in one transaction.
+
+        Rows whose ID is not a candidate are rejected; valid rows land. A row equal to
+        the stored value changes nothing, so ingesting a file twice is harmless. A
+        different value for an ID that already has one is a conflict, settled by
+        ``on_conflict``: ``"error"`` (reject the row, keep the old value), ``"keep"``
+        (keep the old value silently counted) or ``"replace"`` (the new value becomes
+        active; the old one stays in the history).
+
+        Parameters
+        ----------
+        rows_and_rejections
+            The pair returned by :func:`prescreen.io.results.read_results`.
+        on_conflict
+            Policy for a second, different value for one ID.
+        """
+        if on_conflict not in _POLICIES:
+            raise InputError("unknown conflict policy", value=on_conflict,
+                             expected=" or ".join(_POLICIES))
+        rows, rejections = rows_and_rejections
+        report = ResultIngestReport(rejections=list(rejections))
+        now = _now()
+        known = set(self.candidate_ids())
+        with self._transaction() as conn:
+            for rej in rejections:
+                self._record_rejection(conn, "result", rej, now)
+            for i, row in enumerate(rows):
+                path, _, line = row.source.rpartition(":")
+                if row.id not in known:
+                    rej = Rejection(path=path, line=line or None, value=row.id,
+                                    reason="unknown candidate ID; expected an ID of "
+                                    f"campaign {self.name!r}")
+                    self._record_rejection(conn, "result", rej, now)
+                    report.rejections.append(rej)
+                    continue
+                old = conn.execute(
+                    "SELECT seq, spillage FROM results WHERE candidate_id=? AND active=1",
+                    (row.id,),
+                ).fetchone()
+                if old is not None and old[1] == row.spillage:
+                    report.unchanged += 1
+                    continue
+                if old is not None:
+                    if on_conflict == "keep":
+                        report.kept_existing += 1
+                        continue
+                    if on_conflict == "error":
+                        rej = Rejection(
+                            path=path, line=line or None, value=f"{row.id}={row.spillage!r}",
+                            reason=f"conflicts with the stored spillage {old[1]!r} for this "
+                            "ID; expected the same value, or choose on_conflict "
+                            "'keep' or 'replace'",
+                        )
+                        self._record_rejection(conn, "result", rej, now)
+                        report.rejections.append(rej)
+                        continue
+                    conn.execute("UPDATE results SET active=0 WHERE seq=?", (old[0],))
+                    report.replaced += 1
+                else:
+                    report.added += 1
+                conn.execute(
+                    "INSERT INTO results (candidate_id, spillage, functional, code, kmesh,"
+                    " core_hours, notes, source, ingested_at) VALUES (?,?,?,?,?,?,?,?,?)",
+                    (row.id, row.spillage, row.functional, row.code, row.kmesh,
+                     row.core_hours, row.notes, row.source, now),
+                )
+                conn.execute(
+                    "UPDATE proposals SET status='done' WHERE candidate_id=? AND status='pending'",
+                    (row.id,),
+                )
+                if _after_each is not None:
+                    _after_each(i)
+        return report
+
+    def labels(self) -> pd.DataFrame:
+        """Active results: one row per labelled candidate (``id``, ``spillage``, ...)."""
+        import pandas as pd
+
+        return pd.read_sql_query(
+            "SELECT candidate_id AS id, spillage, functional, code, kmesh, core_hours,"
+            " notes, source, ingested_at FROM results WHERE active=1 ORDER BY seq",
+            self._conn,
+        ).set_index("id")
+
+    def rejections(self, kind: str | None = None) -> list[Rejection]:
+        sql = "SELECT path, line, value, reason FROM rejections"
+        args: tuple[str, ...] = ()
+        if kind is not None:
+            sql += " WHERE kind=?"
+            args = (kind,)
+        return [Rejection(p, line, v, r) for p, line, v, r in
+                self._conn.execute(sql + " ORDER BY seq", args)]
+
+    # ------------------------------------------------------------------ status
+    def status(self) -> CampaignStatus:
+        """Counts of candidates, flags, labels and rounds."""
+        q = self._conn.execute
+
+        def count(sql: str, *args: Any) -> int:
+            return int(q(sql, args).fetchone()[0])
+
+        layer = dict(q("SELECT layer_status, COUNT(*) FROM candidates GROUP BY layer_status"))
+        return CampaignStatus(
+            name=self.name,
+            path=str(self.path),
+            candidates=count("SELECT COUNT(*) FROM candidates"),
+            with_structure=count("SELECT COUNT(*) FROM candidates WHERE structure IS NOT NULL"),
+            formula_only=layer.get("formula_only", 0),
+            monolayers=layer.get("monolayer", 0),
+            not_2d=layer.get("not_2d", 0),
+            ambiguous=layer.get("ambiguous", 0),
+            duplicates=count("SELECT COUNT(*) FROM candidates WHERE duplicate_of IS NOT NULL"),
+            flagged_hazard=count("SELECT COUNT(*) FROM candidates WHERE hazard != ''"),
+            labelled=count("SELECT COUNT(*) FROM results WHERE active=1"),
+            positives=count("SELECT COUNT(*) FROM results WHERE active=1 AND spillage >= ?",
+                            self.threshold),
+            threshold=self.threshold,
+            rejections=count("SELECT COUNT(*) FROM rejections"),
+            rounds=count("SELECT COUNT(*) FROM rounds"),
+            pending=count("SELECT COUNT(*) FROM proposals WHERE status='pending'"),
+            models=count("SELECT COUNT(*) FROM models"),
+        )
+
+    # ------------------------------------------------------------------ features
+    def features(
+        self,
+        compute: Callable[[list[str], list[str], list[Structure | None]], pd.DataFrame],
+        schema: str,
+        *,
+        ids: Sequence[str] | None = None,
+    ) -> pd.DataFrame:
+        """Descriptors for candidates, cached as Parquet keyed by the feature schema.
+
+        Rows already cached under ``schema`` are read back; the others are computed with
+        ``compute(ids, formulas, structures)`` and appended. A cache written under any
+        other schema is never read (its file name carries the schema), so a changed
+        feature definition always means recomputation.
+        """
+        import pandas as pd
+
+        if not schema or any(ch in schema for ch in "/\\"):
+            raise InputError("feature schema must be a plain non-empty string", value=schema,
+                             expected="e.g. a hex digest")
+        cache = self.path / "features" / f"{schema}.parquet"
+        cached = pd.read_parquet(cache) if cache.is_file() else None
+        wanted = list(ids) if ids is not None else self.candidate_ids()
+        have = set() if cached is None else set(cached.index)
+        missing = [i for i in wanted if i not in have]
+        if missing:
+            formulas = dict(self._conn.execute("SELECT id, formula FROM candidates"))
+            structs = [self.structure(i) for i in missing]
+            new = compute(missing, [formulas[i] for i in missing], structs)
+            new.index = pd.Index(missing, name="id")
+            cached = new if cached is None else pd.concat([cached, new])
+            cache.parent.mkdir(exist_ok=True)
+            tmp = cache.with_suffix(".parquet.tmp")
+            cached.to_parquet(tmp)
+            tmp.replace(cache)
+        assert cached is not None
+        return cached.loc[wanted]
+
+    # ------------------------------------------------------------------ rounds & models
+    def record_round(
+        self,
+        *,
+        strategy: str,
+        budget_core_hours: float,
+        seed: int | None,
+        model_version: str | None,
+        proposals: Sequence[dict[str, Any]],
+        settings: dict[str, Any] | None = None,
+    ) -> int:
+        """Store a proposed batch as the next round; returns the round number."""
+        with self._transaction() as conn:
+            number = conn.execute("SELECT COALESCE(MAX(number), 0) + 1 FROM rounds").fetchone()[0]
+            conn.execute(
+                "INSERT INTO rounds VALUES (?,?,?,?,?,?,?)",
+                (number, _now(), strategy, float(budget_core_hours), seed, model_version,
+                 json.dumps(settings or {}, sort_keys=True)),
+            )
+            for rank, p in enumerate(proposals, start=1):
+                conn.execute(
+                    "INSERT INTO proposals (round, candidate_id, rank, probability,"
+                    " uncertainty, cost_core_hours, reason) VALUES (?,?,?,?,?,?,?)",
+                    (number, p["id"], rank, p.get("probability"), p.get("uncertainty"),
+                     p.get("cost_core_hours"), p.get("reason")),
+                )
+        return int(number)
+
+    def pending_ids(self) -> list[str]:
+        return [r[0] for r in self._conn.execute(
+            "SELECT candidate_id FROM proposals WHERE status='pending' ORDER BY round, rank")]
+
+    def proposals(self, round_number: int | None = None) -> pd.DataFrame:
+        import pandas as pd
+
+        sql = "SELECT * FROM proposals"
+        args: tuple[int, ...] = ()
+        if round_number is not None:
+            sql += " WHERE round=?"
+            args = (round_number,)
+        return pd.read_sql_query(sql + " ORDER BY round, rank", self._conn, params=args)
+
+    def record_model(self, version: str, path: str | Path, *, feature_schema: str,
+                     training_rows: int, metrics: dict[str, Any]) -> None:
+        with self._transaction() as conn:
+            conn.execute(
+                "INSERT OR REPLACE INTO models VALUES (?,?,?,?,?,?)",
+                (version, str(path), _now(), feature_schema, training_rows,
+                 json.dumps(metrics, sort_keys=True)),
+            )
+
+    def latest_model(self) -> dict[str, Any] | None:
+        row = self._conn.execute(
+            "SELECT version, path, created_at, feature_schema, training_rows, metrics "
+            "FROM models ORDER BY created_at DESC, rowid DESC LIMIT 1"
+        ).fetchone()
+        if row is None:
+            return None
+        keys = ("version", "path", "created_at", "feature_schema", "training_rows", "metrics")
+        out = dict(zip(keys, row))
+        out["metrics"] = json.loads(out["metrics"])
+        return out
+
+    def fingerprint(self) -> str:
+        """A hash of the labelled data, to tie a model to what it was trained on."""
+        h = hashlib.sha256()
+        for cid, val in self._conn.execute(
+            "SELECT candidate_id, spillage FROM results WHERE active=1 ORDER BY candidate_id"
+        ):
+            h.update(f"{cid}\t{val!r}\n".encode())
+        return h.hexdigest()[:16]

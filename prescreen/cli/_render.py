@@ -1,0 +1,34 @@
+"""Shared printing helpers for the commands (plain text, no colour codes)."""
+
+from __future__ import annotations
+
+import sys
+from collections.abc import Sequence
+from typing import TextIO
+
+from prescreen.errors import Rejection
+
+__all__ = ["print_rejections", "print_table"]
+
+#: How many rejections a command prints before pointing at `prescreen status --rejections`.
+SHOWN_REJECTIONS = 20
+
+
+def print_rejections(rejections: Sequence[Rejection], *, stream: TextIO = sys.stderr,
+                     campaign: str | None = None) -> None:
+    if not rejections:
+        return
+    print(f"rejected {len(rejections)} entr{'y' if len(rejections) == 1 else 'ies'}:",
+          file=stream)
+    for rej in rejections[:SHOWN_REJECTIONS]:
+        print(f"  {rej}", file=stream)
+    if len(rejections) > SHOWN_REJECTIONS:
+        more = len(rejections) - SHOWN_REJECTIONS
+        hint = f" (all: prescreen status {campaign} --rejections)" if campaign else ""
+        print(f"  ... and {more} more{hint}", file=stream)
+
+
+def print_table(rows: Sequence[tuple[str, object]], *, stream: TextIO = sys.stdout) -> None:
+    width = max((len(k) for k, _ in rows), default=0)
+    for key, value in rows:
+        print(f"  {key:<{width}}  {value}", file=stream)

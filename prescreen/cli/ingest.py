@@ -1,0 +1,29 @@
+"""Ingest DFT spillage results (CSV or JSON) into a campaign."""
+
+from __future__ import annotations
+
+import argparse
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("campaign", help="campaign folder")
+    parser.add_argument("results", nargs="+", help="CSV or JSON files with id and spillage")
+    parser.add_argument("--on-conflict", choices=("error", "keep", "replace"), default="error",
+                        help="a different spillage for an ID that has one: reject the new "
+                        "row (error, default), keep the old value, or replace it")
+
+
+def run(args: argparse.Namespace) -> int:
+    from prescreen.campaign import Campaign
+    from prescreen.cli._render import print_rejections, print_table
+    from prescreen.io.results import read_results
+
+    with Campaign.open(args.campaign) as campaign:
+        for path in args.results:
+            report = campaign.ingest_results(read_results(path), on_conflict=args.on_conflict)
+            print(f"{path}:")
+            print_table([("added", report.added), ("unchanged", report.unchanged),
+                         ("replaced", report.replaced), ("kept existing", report.kept_existing),
+                         ("rejected", len(report.rejections))])
+            print_rejections(report.rejections, campaign=str(campaign.path))
+    return 0

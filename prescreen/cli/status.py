@@ -1,0 +1,46 @@
+"""Show what a campaign holds: candidates, flags, labels, rounds."""
+
+from __future__ import annotations
+
+import argparse
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("campaign", help="campaign folder")
+    parser.add_argument("--rejections", action="store_true",
+                        help="list every rejected entry with its file, line and reason")
+    parser.add_argument("--json", action="store_true", help="print the counts as JSON")
+
+
+def run(args: argparse.Namespace) -> int:
+    import json
+
+    from prescreen.campaign import Campaign
+    from prescreen.cli._render import print_table
+
+    with Campaign.open(args.campaign) as campaign:
+        st = campaign.status()
+        if args.json:
+            print(json.dumps(st.as_dict(), indent=2))
+        else:
+            print(f"campaign {st.name!r} ({st.path})")
+            print_table([
+                ("candidates", st.candidates),
+                ("  with structure", st.with_structure),
+                ("  formula only", st.formula_only),
+                ("monolayers", st.monolayers),
+                ("not two-dimensional", st.not_2d),
+                ("ambiguous", st.ambiguous),
+                ("duplicates", st.duplicates),
+                ("toxic/radioactive flags", st.flagged_hazard),
+                ("labelled", st.labelled),
+                (f"positives (spillage >= {st.threshold:g})", st.positives),
+                ("rounds", st.rounds),
+                ("pending proposals", st.pending),
+                ("models", st.models),
+                ("rejected entries", st.rejections),
+            ])
+        if args.rejections:
+            for rej in campaign.rejections():
+                print(f"  {rej}")
+    return 0
