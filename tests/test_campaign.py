@@ -1,0 +1,210 @@
+"""The campaign store: idempotent actions, all-or-nothing transactions, feature cache."""
+
+from __future__ import annotations
+
+import os
+import signal
+import sqlite3
+import subprocess
+import sys
+import textwrap
+import time
+from pathlib import Path
+
+import pandas as pd
+import pytest
+
+from prescreen.campaign import DB_NAME, Campaign
+from prescreen.candidate import Candidate
+from prescreen.errors import CampaignError, InputError, Rejection
+from prescreen.io.results import ResultRow
+
+
+def dump(path: Path) -> list[str]:
+    """Every row of the store as SQL text, to compare stores exactly."""
+    conn = sqlite3.connect(path / DB_NAME)
+    try:
+        return list(conn.iterdump())
+    finally:
+        conn.close()
+
+
+def result(cid: str, spillage: float, line: int = 2, source: str = "r.csv") -> ResultRow:
+    return ResultRow(id=cid, spillage=spillage, functional="PBE", code="GPAW", kmesh="12x12x1",
+                     core_hours=0.1, notes=None, source=f"{source}:{line}")
+
+
+@pytest.fixture
+def campaign(tmp_path, mos2, hbn, rocksalt):
+    camp = Campaign.create(tmp_path / "c", name="test")
+    camp.add_candidates([
+        Candidate("mos2", "MoS2", "a.cif", mos2),
+        Candidate("hbn", "BN", "b.vasp", hbn),
+        Candidate("nacl", "NaCl", "c.xyz:1", rocksalt),
+        Candidate("bi2se3", "Bi2Se3", "f.csv:2"),
+    ])
+    yield camp
+    camp.close()
+
+
+def test_open_missing_campaign_names_the_folder(tmp_path):
+    with pytest.raises(CampaignError, match=r"not a campaign folder"):
+        Campaign.open(tmp_path)
+
+
+def test_create_twice_is_an_error(tmp_path):
+    Campaign.create(tmp_path / "c").close()
+    with pytest.raises(CampaignError, match="already exists"):
+        Campaign.create(tmp_path / "c")
+
+
+def test_candidates_flagged_not_dropped(campaign):
+    df = campaign.candidates_frame()
+    assert list(df.index) == ["mos2", "hbn", "nacl", "bi2se3"]
+    assert df.loc["mos2", "layer_status"] == "monolayer"
+    assert df.loc["nacl", "layer_status"] == "not_2d"  # bulk rock salt is 3D
+    assert df.loc["bi2se3", "layer_status"] == "formula_only"
+    # Reduced formula and chemical system follow pymatgen's conventions.
+    assert df.loc["mos2", "chemsys"] == "Mo-S"
+
+
+def test_adding_the_same_candidates_twice_changes_nothing(campaign, mos2):
+    before = dump(campaign.path)
+    report = campaign.add_candidates([Candidate("mos2", "MoS2", "a.cif", mos2),
+                                      Candidate("bi2se3", "Bi2Se3", "f.csv:2")])
+    assert report.added == 0 and report.already_present == 2
+    assert dump(campaign.path) == before
+
+
+def test_reused_id_with_other_content_is_rejected(campaign, hbn):
+    report = campaign.add_candidates([Candidate("mos2", "BN", "new.cif", hbn)])
+    assert report.added == 0
+    [rej] = report.rejections
+    assert rej.value == "mos2" and "already used" in rej.reason and "a.cif" in rej.reason
+
+
+def test_duplicate_recorded_with_the_id_it_repeats(campaign, mos2):
+    shifted = mos2.copy()
+    shifted.translate_sites(range(len(shifted)), [0.3, 0.1, 0.0])
+    report = campaign.add_candidates([Candidate("mos2-again", "MoS2", "d.cif", shifted)])
+    assert report.duplicates == 1
+    assert campaign.candidates_frame().loc["mos2-again", "duplicate_of"] == "mos2"
+
+
+def test_reader_rejections_are_kept(campaign):
+    rej = Rejection("bad.cif", 7, "Xx", "unknown element")
+    report = campaign.add_candidates([rej])
+    assert report.rejections == [rej]
+    assert rej in campaign.rejections()
+
+
+def test_results_ingest_valid_rows_land_unknown_rejected(campaign):
+    rep = campaign.ingest_results(([result("mos2", 0.01), result("ghost", 0.9, line=3)], []))
+    assert rep.added == 1
+    [rej] = rep.rejections
+    assert (rej.path, rej.line, rej.value) == ("r.csv", "3", "ghost")
+    assert "unknown candidate ID" in rej.reason
+    assert campaign.labels().loc["mos2", "spillage"] == 0.01
+
+
+def test_ingesting_a_file_twice_changes_nothing(campaign):
+    rows = ([result("mos2", 0.01), result("hbn", 0.0, line=3)], [])
+    campaign.ingest_results(rows)
+    before = dump(campaign.path)
+    rep = campaign.ingest_results(rows)
+    assert rep.unchanged == 2 and rep.added == 0
+    assert dump(campaign.path) == before
+
+
+@pytest.mark.parametrize(
+    ("policy", "expected_value", "n_rejected"),
+    [("error", 0.01, 1), ("keep", 0.01, 0), ("replace", 0.7, 0)],
+)
+def test_conflicting_values_follow_the_policy(campaign, policy, expected_value, n_rejected):
+    campaign.ingest_results(([result("mos2", 0.01)], []))
+    rep = campaign.ingest_results(([result("mos2", 0.7, source="s.csv")], []),
+                                  on_conflict=policy)
+    assert len(rep.rejections) == n_rejected
+    if n_rejected:
+        assert "conflicts with the stored spillage 0.01" in rep.rejections[0].reason
+    assert campaign.labels().loc["mos2", "spillage"] == expected_value
+
+
+def test_unknown_policy_is_an_input_error(campaign):
+    with pytest.raises(InputError, match="unknown conflict policy"):
+        campaign.ingest_results(([], []), on_conflict="average")
+
+
+def test_status_counts_positives_at_threshold(campaign):
+    campaign.ingest_results(([result("mos2", 0.5), result("hbn", 0.49, line=3)], []))
+    st = campaign.status()
+    assert (st.candidates, st.monolayers, st.not_2d, st.formula_only) == (4, 2, 1, 1)
+    # 0.5 counts as a hit: the threshold is inclusive (spillage >= 0.5, common practice).
+    assert (st.labelled, st.positives, st.threshold) == (2, 1, 0.5)
+
+
+def test_feature_cache_is_keyed_by_schema(campaign):
+    calls = []
+
+    def compute(ids, formulas, structures):
+        calls.append(list(ids))
+        return pd.DataFrame({"n_chars": [len(f) for f in formulas]})
+
+    first = campaign.features(compute, "schema-a")
+    again = campaign.features(compute, "schema-a")
+    pd.testing.assert_frame_equal(first, again)
+    assert len(calls) == 1  # the second call read the cache
+    campaign.features(compute, "schema-b")
+    assert len(calls) == 2  # another schema is never served from the old cache
+    assert first.loc["bi2se3", "n_chars"] == len("Bi2Se3")
+
+
+def test_rounds_and_pending_proposals(campaign):
+    n = campaign.record_round(strategy="greedy", budget_core_hours=10.0, seed=1,
+                              model_version=None,
+                              proposals=[{"id": "hbn", "probability": 0.2}])
+    assert n == 1 and campaign.pending_ids() == ["hbn"]
+    campaign.ingest_results(([result("hbn", 0.0)], []))
+    assert campaign.pending_ids() == []
+
+
+_KILLER = textwrap.dedent(
+    """
+    import sys, time
+    from pathlib import Path
+    from prescreen.campaign import Campaign
+    from prescreen.candidate import Candidate
+
+    ready = Path(sys.argv[2])
+
+    def stall(i):
+        if i == 50:
+            ready.write_text("in the middle")
+            time.sleep(60)
+
+    items = (Candidate(f"f{i}", "Bi2Se3" if i % 2 else "SnTe", f"f.csv:{i}")
+             for i in range(100))
+    with Campaign.open(sys.argv[1]) as c:
+        c.add_candidates(items, _after_each=stall)
+    """
+)
+
+
+def test_killed_ingest_leaves_store_exactly_as_before(campaign, tmp_path):
+    before = dump(campaign.path)
+    ready = tmp_path / "ready"
+    proc = subprocess.Popen([sys.executable, "-c", _KILLER, str(campaign.path), str(ready)])
+    try:
+        deadline = time.monotonic() + 60
+        while not ready.exists():
+            assert proc.poll() is None, "the ingest process ended before the kill"
+            assert time.monotonic() < deadline, "the ingest process never got going"
+            time.sleep(0.05)
+        os.kill(proc.pid, signal.SIGKILL)
+    finally:
+        proc.wait()
+    assert proc.returncode == -signal.SIGKILL
+    assert dump(campaign.path) == before
+    conn = sqlite3.connect(campaign.path / DB_NAME)
+    assert conn.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
+    conn.close()
