@@ -1,0 +1,352 @@
+"""Predicted core-hours for one spillage evaluation (two DFT runs: without and with SOC).
+
+Model
+-----
+The cost is log-linear (a power law) in the size descriptors of the calculation::
+
+    log(core_hours) = c0 + a_e log(n_electrons) + a_k log(n_kpoints)
+                         + a_v log(volume) + a_n log(n_atoms) + log(1 + soc_factor) - log(1 + soc_factor0)
+
+so that ``core_hours = (t_scalar + t_soc)`` with ``t_soc = soc_factor * t_scalar``.
+The *shape* of the default follows the usual textbook scaling of a plane-wave code
+(common practice): every irreducible k-point is an independent problem (``a_k = 1``);
+the number of plane waves at fixed cutoff is proportional to the cell volume,
+vacuum included (``a_v = 1``); orthogonalisation of ``N_bands ~ n_electrons`` bands
+costs ``N_bands^2 N_pw`` (``a_e = 2``). For an LCAO code the cubic diagonalisation in
+the number of basis functions (``~ n_atoms``) dominates instead; set ``a_n = 3`` and
+``a_e = a_v = 0`` through :meth:`CostModel.with_coefficients`.
+
+The intercept ``c0`` of the default is a placeholder (one evaluation of a three-atom
+cell with 26 valence electrons, 200 A^3 and 20 k-points = 1 core-hour; an assumption,
+not a measurement). Only cost *ratios* matter for ranking; for budgets, fit the model to
+the wall times your labeller recorded with :meth:`CostModel.fit`. Fitting is ridge
+regression in log space that shrinks the exponents towards the default shape, so a
+handful of records moves mainly the intercept and many records can change the shape.
+The interval comes from the residual spread in log space.
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass, field, replace
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+from scipy import stats
+
+from prescreen.errors import InputError
+
+__all__ = [
+    "CostModel",
+    "COST_TERMS",
+    "DEFAULT_EXPONENTS",
+    "DEFAULT_SOC_FACTOR",
+    "DEFAULT_LOG_SIGMA",
+    "DEFAULT_RIDGE",
+    "kpoints_for_cell",
+    "valence_electrons",
+    "descriptors_for_structure",
+]
+
+#: Descriptor columns the cost model uses, in order. Units: counts, Angstrom^3 (volume).
+COST_TERMS: tuple[str, ...] = ("n_electrons", "n_kpoints", "volume", "n_atoms")
+
+#: Default exponents (plane-wave scaling, see module docstring; common practice).
+DEFAULT_EXPONENTS: dict[str, float] = {"n_electrons": 2.0, "n_kpoints": 1.0, "volume": 1.0,
+                                       "n_atoms": 0.0}
+
+#: Cost of the SOC run relative to the run without SOC. Two-component spinors double the
+#: basis and make the Hamiltonian complex; 2-4x is common practice (from memory); 3 is used.
+DEFAULT_SOC_FACTOR: float = 3.0
+
+#: Spread (standard deviation of log core-hours) assumed before any fit: a factor ~2 at
+#: one sigma (common practice for unfitted wall-time guesses; an assumption).
+DEFAULT_LOG_SIGMA: float = float(np.log(2.0))
+
+#: Ridge penalty on the exponents' departure from the default shape, in units of
+#: (log core-hours)^2 per unit exponent^2 (an assumption: weak, so ~10 records dominate).
+DEFAULT_RIDGE: float = 1.0
+
+_REFERENCE = {"n_electrons": 26.0, "n_kpoints": 20.0, "volume": 200.0, "n_atoms": 3.0}
+
+
+def _default_intercept(exponents: dict[str, float]) -> float:
+    return -sum(exponents[t] * np.log(_REFERENCE[t]) for t in COST_TERMS)
+
+
+@dataclass(frozen=True)
+class CostModel:
+    """Power-law cost of one spillage evaluation; see the module docstring.
+
+    Attributes
+    ----------
+    intercept : float
+        ``c0``, log core-hours.
+    exponents : dict str -> float
+        Exponent of each term in :data:`COST_TERMS`.
+    soc_factor : float
+        Cost of the SOC run relative to the scalar run (>= 0).
+    log_sigma : float
+        Standard deviation of the residuals in log space (from a fit, or the default).
+    multiplier : float
+        User scale factor for their code and cluster (> 0), applied last.
+    n_fitted : int
+        Number of records the model was fitted to (0: default shape and scale).
+    """
+
+    intercept: float = field(default_factory=lambda: _default_intercept(DEFAULT_EXPONENTS))
+    exponents: dict = field(default_factory=lambda: dict(DEFAULT_EXPONENTS))
+    soc_factor: float = DEFAULT_SOC_FACTOR
+    log_sigma: float = DEFAULT_LOG_SIGMA
+    multiplier: float = 1.0
+    n_fitted: int = 0
+
+    # ------------------------------------------------------------------ build / override
+    def with_coefficients(self, *, intercept: float | None = None,
+                          exponents: dict[str, float] | None = None,
+                          soc_factor: float | None = None) -> "CostModel":
+        """A copy with the user's own coefficients (unknown terms are an error)."""
+        exps = dict(self.exponents)
+        for key, value in (exponents or {}).items():
+            if key not in COST_TERMS:
+                raise InputError("unknown cost term", line=key, value=key,
+                                 expected=f"one of {', '.join(COST_TERMS)}")
+            exps[key] = float(value)
+        new = replace(self, exponents=exps,
+                      intercept=self.intercept if intercept is None else float(intercept),
+                      soc_factor=self.soc_factor if soc_factor is None else float(soc_factor))
+        new._validate(None)
+        return new
+
+    def scaled(self, multiplier: float) -> "CostModel":
+        """A copy whose predictions are multiplied by ``multiplier`` (> 0)."""
+        new = replace(self, multiplier=self.multiplier * float(multiplier))
+        new._validate(None)
+        return new
+
+    def _validate(self, path) -> None:
+        if not (np.isfinite(self.multiplier) and self.multiplier > 0):
+            raise InputError("cost multiplier must be > 0", path=path, line="multiplier",
+                             value=self.multiplier, expected="a finite number > 0")
+        if not (np.isfinite(self.soc_factor) and self.soc_factor >= 0):
+            raise InputError("soc_factor must be >= 0", path=path, line="soc_factor",
+                             value=self.soc_factor, expected="a finite number >= 0")
+        if not (np.isfinite(self.log_sigma) and self.log_sigma >= 0):
+            raise InputError("log_sigma must be >= 0", path=path, line="log_sigma",
+                             value=self.log_sigma, expected="a finite number >= 0")
+        if not np.isfinite(self.intercept):
+            raise InputError("intercept must be finite", path=path, line="intercept",
+                             value=self.intercept, expected="a finite number")
+        for key in COST_TERMS:
+            if key not in self.exponents or not np.isfinite(self.exponents[key]):
+                raise InputError("missing or non-finite exponent", path=path,
+                                 line=f"exponents.{key}", value=self.exponents.get(key),
+                                 expected="a finite number")
+
+    # ------------------------------------------------------------------------ compute
+    def _design(self, table: pd.DataFrame, path=None) -> np.ndarray:
+        missing = [t for t in COST_TERMS if t not in table.columns]
+        if missing:
+            raise InputError("cost descriptors missing", path=path, value=missing,
+                             expected=f"columns {', '.join(COST_TERMS)}")
+        D = table.loc[:, list(COST_TERMS)].to_numpy(dtype=float)
+        bad = ~np.isfinite(D) | (D <= 0)
+        if bad.any():
+            r, col = map(int, np.argwhere(bad)[0])
+            raise InputError(f"cost descriptor {COST_TERMS[col]} must be > 0", path=path,
+                             line=str(table.index[r]), value=D[r, col],
+                             expected="a finite positive number")
+        return np.log(D)
+
+    def _log_predict(self, table: pd.DataFrame) -> np.ndarray:
+        L = self._design(table)
+        beta = np.asarray([self.exponents[t] for t in COST_TERMS])
+        return (self.intercept + L @ beta + np.log(1 + self.soc_factor)
+                - np.log(1 + DEFAULT_SOC_FACTOR) + np.log(self.multiplier))
+
+    def predict(self, table: pd.DataFrame) -> np.ndarray:
+        """Predicted core-hours per row, shape (n,).
+
+        Parameters
+        ----------
+        table : DataFrame with the columns of :data:`COST_TERMS` (all > 0)
+        """
+        return np.exp(self._log_predict(table))
+
+    def predict_interval(self, table: pd.DataFrame, level: float = 0.9
+                         ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """``(prediction, low, high)`` core-hours; log-normal interval at ``level``."""
+        if not 0 < level < 1:
+            raise InputError("interval level must be in (0, 1)", value=level, expected="0 < level < 1")
+        z = float(stats.norm.ppf(0.5 + level / 2))
+        lp = self._log_predict(table)
+        return np.exp(lp), np.exp(lp - z * self.log_sigma), np.exp(lp + z * self.log_sigma)
+
+    def fit(self, records: pd.DataFrame, *, ridge: float = DEFAULT_RIDGE,
+            path: str | Path | None = None) -> "CostModel":
+        """Fit to recorded wall times; returns a new model (this one is unchanged).
+
+        Parameters
+        ----------
+        records : DataFrame
+            Columns of :data:`COST_TERMS` and ``core_hours`` (> 0, the sum of both runs).
+        ridge
+            Penalty on the exponents' departure from this model's exponents (>= 0).
+        path
+            File the records came from, for error messages.
+
+        Notes
+        -----
+        Minimises ``||y - c0 - L b||^2 + ridge ||b - b0||^2`` with ``y = log core_hours``
+        (the SOC factor and multiplier are kept fixed and absorbed into ``c0``). The
+        residual spread uses ``n - p_eff`` degrees of freedom, with ``p_eff`` the trace
+        of the hat matrix; with fewer than 3 records the default spread is kept.
+        """
+        if "core_hours" not in records.columns:
+            raise InputError("recorded wall times missing", path=path, value=list(records.columns),
+                             expected="a column core_hours")
+        y = records["core_hours"].to_numpy(dtype=float)
+        bad = np.flatnonzero(~np.isfinite(y) | (y <= 0))
+        if bad.size:
+            raise InputError("core_hours must be > 0", path=path, line=str(records.index[bad[0]]),
+                             value=y[bad[0]], expected="a finite number of core-hours > 0")
+        if not (np.isfinite(ridge) and ridge >= 0):
+            raise InputError("ridge must be >= 0", value=ridge, expected=">= 0")
+        n = y.shape[0]
+        if n == 0:
+            raise InputError("no records to fit the cost model to", path=path,
+                             expected="at least one row")
+        L = self._design(records, path)
+        b0 = np.asarray([self.exponents[t] for t in COST_TERMS])
+        offset = np.log(1 + self.soc_factor) - np.log(1 + DEFAULT_SOC_FACTOR) + np.log(self.multiplier)
+        r = np.log(y) - offset - L @ b0  # what the default shape leaves to explain
+        A = np.hstack([np.ones((n, 1)), L])
+        P = np.diag([0.0] + [ridge] * len(COST_TERMS))
+        G = A.T @ A + P
+        sol = np.linalg.lstsq(G, A.T @ r, rcond=None)[0]
+        exps = {t: float(b0[j] + sol[j + 1]) for j, t in enumerate(COST_TERMS)}
+        resid = r - A @ sol
+        sigma = self.log_sigma
+        if n >= 3:
+            hat = A @ np.linalg.pinv(G) @ A.T
+            dof = max(n - float(np.trace(hat)), 1.0)
+            sigma = float(np.sqrt(np.sum(resid**2) / dof))
+        return replace(self, intercept=float(sol[0]), exponents=exps, log_sigma=sigma,
+                       n_fitted=int(n))
+
+    # ------------------------------------------------------------------ persistence
+    def as_dict(self) -> dict:
+        return {"kind": "prescreen.cost_model", "version": 1, "intercept": self.intercept,
+                "exponents": dict(self.exponents), "soc_factor": self.soc_factor,
+                "log_sigma": self.log_sigma, "multiplier": self.multiplier,
+                "n_fitted": self.n_fitted}
+
+    @classmethod
+    def from_dict(cls, data: dict, path: str | Path | None = None) -> "CostModel":
+        if not isinstance(data, dict) or data.get("kind") != "prescreen.cost_model":
+            raise InputError("not a prescreen cost model", path=path, line="kind",
+                             value=data.get("kind") if isinstance(data, dict) else type(data).__name__,
+                             expected='"prescreen.cost_model"')
+        try:
+            exps = {str(k): float(v) for k, v in dict(data.get("exponents", {})).items()}
+            unknown = sorted(set(exps) - set(COST_TERMS))
+            if unknown:
+                raise InputError("unknown cost term", path=path, line=f"exponents.{unknown[0]}",
+                                 value=unknown[0], expected=f"one of {', '.join(COST_TERMS)}")
+            model = cls(intercept=float(data["intercept"]), exponents=exps,
+                        soc_factor=float(data.get("soc_factor", DEFAULT_SOC_FACTOR)),
+                        log_sigma=float(data.get("log_sigma", DEFAULT_LOG_SIGMA)),
+                        multiplier=float(data.get("multiplier", 1.0)),
+                        n_fitted=int(data.get("n_fitted", 0)))
+        except (KeyError, TypeError, ValueError) as exc:
+            if isinstance(exc, InputError):
+                raise
+            raise InputError(f"bad cost model entry: {exc}", path=path,
+                             expected="numbers for intercept, exponents, soc_factor, "
+                                      "log_sigma, multiplier") from exc
+        model._validate(path)
+        return model
+
+    def save(self, path: str | Path) -> None:
+        """Write the model as JSON."""
+        Path(path).write_text(json.dumps(self.as_dict(), indent=2, sort_keys=True) + "\n")
+
+    @classmethod
+    def load(cls, path: str | Path) -> "CostModel":
+        """Read a model written by :meth:`save` (or by hand)."""
+        try:
+            data = json.loads(Path(path).read_text())
+        except json.JSONDecodeError as exc:
+            raise InputError(f"not valid JSON: {exc.msg}", path=path, line=exc.lineno,
+                             expected="a JSON cost model") from exc
+        return cls.from_dict(data, path=path)
+
+
+# ------------------------------------------------------------------- descriptors
+def kpoints_for_cell(structure, kpoint_density: float = 5.0) -> int:
+    """Number of k-points of a Gamma-centred 2D mesh (full mesh, no symmetry reduction).
+
+    The vacuum axis is taken as the longest lattice vector and gets one k-point; each
+    in-plane axis gets ``max(1, ceil(|b_i| * kpoint_density))`` points with ``b_i`` the
+    reciprocal vector including the factor 2 pi - the same convention as ASE's
+    ``kptdensity2monkhorstpack`` (checked against it in the tests).
+
+    Parameters
+    ----------
+    structure : pymatgen Structure
+    kpoint_density : float
+        Points per inverse Angstrom (> 0).
+    """
+    if not kpoint_density > 0:
+        raise InputError("kpoint_density must be > 0", value=kpoint_density, expected="> 0")
+    lengths = np.asarray(structure.lattice.abc)
+    recip = np.asarray(structure.lattice.reciprocal_lattice.abc)  # includes 2 pi
+    vac = int(np.argmax(lengths))
+    n = 1
+    for i in range(3):
+        if i != vac:
+            n *= max(1, int(np.ceil(recip[i] * kpoint_density)))
+    return n
+
+
+def valence_electrons(symbol: str) -> int:
+    """Electrons outside the preceding noble-gas core (a filled 4f shell counts as core).
+
+    E.g. Mo [Kr]4d5 5s1 -> 6, S [Ne]3s2 3p4 -> 6, Bi [Xe]4f14 5d10 6s2 6p3 -> 15.
+    Real pseudopotentials may add semicore states; this is the size proxy the cost model
+    uses, not a statement about any particular setup.
+    """
+    from pymatgen.core import Element
+
+    try:
+        z = Element(symbol).Z
+    except ValueError as exc:
+        raise InputError("unknown element", value=symbol, expected="an element symbol") from exc
+    core = max([0] + [g for g in (2, 10, 18, 36, 54, 86) if g < z])
+    count = z - core
+    if 71 < z <= 86 or 103 < z:  # filled 4f (5f) shell under the valence
+        count -= 14
+    return int(count)
+
+
+def descriptors_for_structure(structure, kpoint_density: float = 5.0) -> dict[str, float]:
+    """The :data:`COST_TERMS` of one structure (plus ``area`` in Angstrom^2).
+
+    Parameters
+    ----------
+    structure : pymatgen Structure
+        A monolayer with vacuum along its longest lattice vector.
+    """
+    lengths = np.asarray(structure.lattice.abc)
+    vac = int(np.argmax(lengths))
+    m = structure.lattice.matrix
+    a, b = (m[i] for i in range(3) if i != vac)
+    return {
+        "n_electrons": float(sum(valence_electrons(site.specie.symbol) for site in structure)),
+        "n_kpoints": float(kpoints_for_cell(structure, kpoint_density)),
+        "volume": float(structure.volume),
+        "n_atoms": float(len(structure)),
+        "area": float(np.linalg.norm(np.cross(a, b))),
+    }
+
