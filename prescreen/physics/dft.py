@@ -1,0 +1,672 @@
+"""One DFT spin-orbit spillage calculation with GPAW: a monolayer in, a record out.
+
+Method
+------
+1. The monolayer is turned so that its plane is the xy plane, and its cell is rebuilt
+   with the out-of-plane vector along z and :attr:`LabelSettings.vacuum_A` of vacuum
+   between periodic images (non-periodic along z).
+2. An LCAO ground state (GPAW, ``mode='lcao'``, PBE, dzp basis, ``nbands='nao'``,
+   Fermi–Dirac smearing) on a uniform Gamma-centred k mesh. Hexagonal cells get meshes
+   with N divisible by 3, so that the K points belong to the mesh (a mesh that misses K
+   gives a false negative for a Dirac-point inversion such as stanene's).
+3. Spin-orbit coupling added non-self-consistently with
+   :func:`gpaw.spinorbit.soc_eigenstates`. Its eigenvectors ``v_kmn`` are written in the
+   basis of the states without SOC, spin-interleaved in GPAW 26.x: basis index
+   ``2 j + s`` is band ``j`` of spin ``s`` (see ``WaveFunction.wavefunctions`` and
+   ``extract_ibz_wave_functions`` in ``gpaw/spinorbit.py``). Since that basis is
+   orthonormal, ``<psi_(2j+s)|psi~_m> = v_kmn[k, m, 2j+s]`` and the overlap the spillage
+   needs is the transpose of that matrix; nothing is projected again.
+4. Occupations from the Fermi level of each calculation at every k
+   (:func:`prescreen.physics.spillage.occupations_at_fermi_level` with the smearing
+   width), then gamma(k) by :func:`prescreen.physics.spillage.spillage_from_overlap`
+   (Liu and Vanderbilt, Phys. Rev. B 90, 125133 (2014)).
+
+Magnetism: by default the ground state is spin-paired (non-magnetic). With
+``spinpol=True`` it is collinear spin-polarised from a ferromagnetic start and SOC is
+added with the spin axis along z (out of plane); antiferromagnetic orders that need a
+supercell, non-collinear magnets and self-consistent SOC are not handled.
+"""
+
+from __future__ import annotations
+
+import math
+import tempfile
+import time
+from dataclasses import asdict, dataclass, field, fields
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+
+from prescreen import __version__ as PRESCREEN_VERSION
+from prescreen.errors import InputError, LabellingError
+
+if TYPE_CHECKING:  # pragma: no cover - typing only
+    from ase import Atoms
+    from pymatgen.core import Structure
+
+__all__ = [
+    "DEFAULT_VACUUM_A",
+    "DEFAULT_KPT_DENSITY",
+    "LabelSettings",
+    "LabelRecord",
+    "prepare_monolayer",
+    "choose_kpts",
+    "is_hexagonal",
+    "band_gap",
+    "label_structure",
+    "relax_monolayer",
+]
+
+#: Total vacuum (Angstrom) between a monolayer and its periodic image along z.
+#: Common practice for LCAO monolayer calculations (10-20 A); not from a published bound.
+DEFAULT_VACUUM_A: float = 15.0
+
+#: k-point density (points per reciprocal Angstrom, |b| including the 2 pi): each
+#: in-plane mesh size is at least ``density * |b_i|``. 5.0 gives 12x12 for buckled
+#: Bi/Sn honeycombs and 15x15 for MoS2. Common practice, not from a published bound.
+DEFAULT_KPT_DENSITY: float = 5.0
+
+#: Smallest in-plane mesh size accepted (points).
+MIN_KPTS: int = 3
+
+#: Tolerances (dimensionless / degrees) for calling an in-plane lattice hexagonal.
+HEX_LENGTH_RTOL: float = 1e-3
+HEX_ANGLE_TOL_DEG: float = 0.1
+
+#: Smallest empty gap (Angstrom) along the normal that marks the input as a slab;
+#: common practice (a bonded layer has no gap above ~4 A inside it).
+MIN_SLAB_GAP_A: float = 5.0
+
+#: Gaps below this (eV) count as metallic; the smearing scale of the default settings.
+METAL_GAP_EV: float = 0.02
+
+#: Default residual-force tolerance for :func:`relax_monolayer` (eV/Angstrom),
+#: common practice for structure relaxations before band-structure work.
+DEFAULT_FMAX_EV_PER_A: float = 0.05
+
+
+@dataclass(frozen=True)
+class LabelSettings:
+    """Level of theory of one spillage calculation.
+
+    Attributes
+    ----------
+    basis
+        GPAW LCAO basis-set name (``"dzp"``: double-zeta polarised, shipped in
+        ``gpaw-data``).
+    xc
+        Exchange-correlation functional (``"PBE"``).
+    kpts
+        Explicit Gamma-centred mesh ``(n1, n2, 1)``; ``None`` derives it from
+        ``kpt_density``. An explicit mesh for a hexagonal cell must have n1 = n2
+        divisible by 3 (so it contains K).
+    kpt_density
+        Points per reciprocal Angstrom (|b_i| including 2 pi) when ``kpts`` is None.
+    smearing_eV
+        Fermi–Dirac width k_B T (eV), used for the ground state and for the occupations
+        of the spillage.
+    vacuum_A
+        Total vacuum (Angstrom) between the layer and its periodic image.
+    spinpol
+        ``False``: spin-paired ground state. ``True``: collinear spin-polarised from a
+        ferromagnetic start of ``initial_magmom_muB`` per atom, SOC axis along z.
+    initial_magmom_muB
+        Starting magnetic moment per atom (Bohr magnetons) when ``spinpol``.
+    """
+
+    basis: str = "dzp"
+    xc: str = "PBE"
+    kpts: tuple[int, int, int] | None = None
+    kpt_density: float = DEFAULT_KPT_DENSITY
+    smearing_eV: float = 0.01
+    vacuum_A: float = DEFAULT_VACUUM_A
+    spinpol: bool = False
+    initial_magmom_muB: float = 1.0
+
+    def __post_init__(self) -> None:
+        if self.kpts is not None:
+            k = tuple(int(x) for x in self.kpts)
+            if len(k) != 3 or k[2] != 1 or min(k[:2]) < 1 or tuple(self.kpts) != k:
+                raise InputError("kpts must be a 2D mesh", value=self.kpts,
+                                 expected="(n1, n2, 1) with positive integers n1, n2")
+            object.__setattr__(self, "kpts", k)
+        for name, low in (("kpt_density", 0.0), ("smearing_eV", 0.0), ("vacuum_A", 5.0)):
+            value = getattr(self, name)
+            if not (isinstance(value, (int, float)) and math.isfinite(value) and value > low):
+                raise InputError(f"LabelSettings.{name} out of range", value=value,
+                                 expected=f"a finite number > {low}")
+        if not isinstance(self.basis, str) or not isinstance(self.xc, str):
+            raise InputError("basis and xc must be strings", value=(self.basis, self.xc),
+                             expected="e.g. basis='dzp', xc='PBE'")
+
+    def as_dict(self) -> dict[str, Any]:
+        """JSON-friendly dictionary (``kpts`` as a list or None)."""
+        d = asdict(self)
+        d["kpts"] = None if self.kpts is None else list(self.kpts)
+        return d
+
+    @classmethod
+    def from_dict(cls, data: dict[str, Any]) -> "LabelSettings":
+        """Inverse of :meth:`as_dict`; unknown keys are an error."""
+        names = {f.name for f in fields(cls)}
+        unknown = sorted(set(data) - names)
+        if unknown:
+            raise InputError("unknown label settings", value=unknown,
+                             expected=f"keys among {sorted(names)}")
+        d = dict(data)
+        if d.get("kpts") is not None:
+            d["kpts"] = tuple(d["kpts"])
+        return cls(**d)
+
+
+@dataclass(frozen=True, eq=False)
+class LabelRecord:
+    """Result (or failure) of one spillage calculation.
+
+    Attributes
+    ----------
+    id
+        The structure's identifier, or None.
+    formula
+        Reduced formula (e.g. ``"MoS2"``).
+    spillage
+        max_k gamma(k) (electrons, dimensionless); NaN when failed.
+    k_max
+        Shape (3,), fractional k of the maximum.
+    gap_nosoc_eV, gap_soc_eV
+        Band gaps (eV) without and with SOC on the mesh; 0 for metals.
+    is_metal
+        True if the calculation with SOC has no gap (or an odd electron count).
+    magmom
+        Total magnetic moment (Bohr magnetons per cell); 0 when spin-paired.
+    settings
+        The :class:`LabelSettings` as a dict plus the resolved ``kmesh``, ``mode``,
+        ``nbands`` and ``occupations``.
+    versions
+        Code versions: ``gpaw``, ``ase``, ``prescreen``.
+    wall_s
+        Wall time (s) of the calculation.
+    core_hours
+        Cores times wall time (hours); every calculation runs on one core.
+    gamma
+        Shape (nk,), gamma(k) on the full mesh (electrons).
+    kpts
+        Shape (nk, 3), fractional k points of ``gamma``.
+    status
+        ``"ok"`` or ``"failed"``.
+    error
+        Why it failed (``"Type: message"``), else None.
+    """
+
+    id: str | None
+    formula: str
+    spillage: float
+    k_max: np.ndarray
+    gap_nosoc_eV: float
+    gap_soc_eV: float
+    is_metal: bool
+    magmom: float
+    settings: dict[str, Any]
+    versions: dict[str, str]
+    wall_s: float
+    core_hours: float
+    gamma: np.ndarray = field(repr=False)
+    kpts: np.ndarray = field(repr=False)
+    status: str = "ok"
+    error: str | None = None
+
+    def __post_init__(self) -> None:
+        if self.status not in ("ok", "failed"):
+            raise InputError("unknown record status", value=self.status,
+                             expected="'ok' or 'failed'")
+        object.__setattr__(self, "k_max", np.asarray(self.k_max, dtype=float).reshape(3))
+        gamma = np.asarray(self.gamma, dtype=float).reshape(-1)
+        kpts = np.asarray(self.kpts, dtype=float).reshape(-1, 3)
+        if gamma.shape[0] != kpts.shape[0]:
+            raise InputError("gamma and kpts differ in length",
+                             value=(gamma.shape, kpts.shape), expected="(nk,) and (nk, 3)")
+        object.__setattr__(self, "gamma", gamma)
+        object.__setattr__(self, "kpts", kpts)
+
+    @property
+    def ok(self) -> bool:
+        return self.status == "ok"
+
+    @classmethod
+    def failed(cls, id: str | None, formula: str, settings: LabelSettings | dict,
+               error: str, wall_s: float = 0.0) -> "LabelRecord":
+        """A record of a calculation that did not finish, with the reason."""
+        sdict = settings.as_dict() if isinstance(settings, LabelSettings) else dict(settings)
+        return cls(id=id, formula=formula, spillage=math.nan, k_max=np.full(3, np.nan),
+                   gap_nosoc_eV=math.nan, gap_soc_eV=math.nan, is_metal=False,
+                   magmom=math.nan, settings=sdict, versions=code_versions(),
+                   wall_s=float(wall_s), core_hours=float(wall_s) / 3600.0,
+                   gamma=np.zeros(0), kpts=np.zeros((0, 3)), status="failed", error=error)
+
+    def as_dict(self, arrays: bool = True) -> dict[str, Any]:
+        """JSON-friendly dict; ``arrays=False`` leaves out ``gamma`` and ``kpts``."""
+        d: dict[str, Any] = {}
+        for f in fields(self):
+            value = getattr(self, f.name)
+            if f.name in ("gamma", "kpts") and not arrays:
+                continue
+            if isinstance(value, np.ndarray):
+                value = value.tolist()
+            elif isinstance(value, float) and not math.isfinite(value):
+                value = None  # JSON has no NaN
+            d[f.name] = value
+        if d["k_max"] is not None and any(x != x for x in d["k_max"]):
+            d["k_max"] = None
+        return d
+
+    @classmethod
+    def from_dict(cls, data: dict[str, Any]) -> "LabelRecord":
+        """Inverse of :meth:`as_dict` (missing arrays become empty)."""
+        names = [f.name for f in fields(cls)]
+        required = [n for n in names if n not in ("gamma", "kpts", "status", "error")]
+        missing = [n for n in required if n not in data]
+        if missing:
+            raise InputError("label record lacks keys", value=sorted(data),
+                             expected=f"also {missing}")
+        d = {n: data[n] for n in names if n in data}
+        for key in ("spillage", "gap_nosoc_eV", "gap_soc_eV", "magmom"):
+            d[key] = math.nan if d[key] is None else float(d[key])
+        d["k_max"] = np.full(3, np.nan) if d["k_max"] is None else d["k_max"]
+        d.setdefault("gamma", np.zeros(0))
+        d.setdefault("kpts", np.zeros((0, 3)))
+        return cls(**d)
+
+
+def code_versions() -> dict[str, str]:
+    """Versions of GPAW (if importable), ASE and prescreen."""
+    import ase
+
+    try:
+        import gpaw
+
+        gpaw_version = gpaw.__version__
+    except ImportError:
+        gpaw_version = "not installed"
+    return {"gpaw": gpaw_version, "ase": ase.__version__, "prescreen": PRESCREEN_VERSION}
+
+
+def _to_atoms(structure: "Structure | Atoms") -> "Atoms":
+    from ase import Atoms
+
+    if isinstance(structure, Atoms):
+        return structure.copy()
+    try:
+        from pymatgen.core import Structure
+    except ImportError as exc:  # pragma: no cover - pymatgen is a core dependency
+        raise InputError("cannot convert structure", value=type(structure).__name__,
+                         expected="ase.Atoms") from exc
+    if isinstance(structure, Structure):
+        from pymatgen.io.ase import AseAtomsAdaptor
+
+        atoms = AseAtomsAdaptor.get_atoms(structure)
+        atoms.calc = None
+        for key in list(atoms.arrays):  # drop site properties (magmom, ...)
+            if key not in ("numbers", "positions"):
+                del atoms.arrays[key]
+        atoms.info.clear()
+        return atoms
+    raise InputError("unsupported structure type", value=type(structure).__name__,
+                     expected="pymatgen Structure or ase.Atoms")
+
+
+def _formula(atoms: "Atoms") -> str:
+    from pymatgen.core import Composition
+
+    return Composition(atoms.get_chemical_formula()).reduced_formula
+
+
+def prepare_monolayer(structure: "Structure | Atoms", vacuum_A: float = DEFAULT_VACUUM_A,
+                      *, name: str | None = None) -> "Atoms":
+    """Return the monolayer in standard orientation with the requested vacuum.
+
+    The first two lattice vectors span the layer; the result has ``a1`` along x, the
+    layer in the xy plane, ``a3 = (0, 0, thickness + vacuum_A)``, the layer centred in
+    z, and ``pbc = (True, True, False)``.
+
+    Parameters
+    ----------
+    structure
+        A monolayer whose third lattice vector is out of plane, with an empty gap of at
+        least :data:`MIN_SLAB_GAP_A` along the normal.
+    vacuum_A
+        Total vacuum (Angstrom) between the layer and its image.
+    name
+        Used in error messages.
+
+    Raises
+    ------
+    InputError
+        If the in-plane vectors are parallel, or the structure is not a slab (no empty
+        gap along the normal).
+    """
+    from ase import Atoms
+
+    atoms = _to_atoms(structure)
+    where = name or _formula(atoms)
+    cell = np.asarray(atoms.cell, dtype=float)
+    a1, a2, a3 = cell
+    normal = np.cross(a1, a2)
+    area = np.linalg.norm(normal)
+    if area < 1e-6:
+        raise InputError("the first two lattice vectors are parallel", line=where,
+                         value=cell.tolist(), expected="a layer spanned by a1 and a2")
+    normal /= area
+    period = abs(float(a3 @ normal))
+    # Heights along the normal, folded into one period, and the largest empty gap.
+    frac = atoms.get_scaled_positions(wrap=True)
+    z = (frac[:, 2] * period) % period if period > 1e-6 else frac[:, 2] * 0.0
+    zs = np.sort(z)
+    gaps = np.diff(np.concatenate([zs, [zs[0] + period]]))
+    i = int(np.argmax(gaps))
+    if gaps[i] < MIN_SLAB_GAP_A:
+        raise InputError("structure is not a monolayer slab: no vacuum gap along the normal",
+                         line=where, value=round(float(gaps[i]), 3),
+                         expected=f"an empty gap >= {MIN_SLAB_GAP_A} A along a3")
+    bottom = zs[(i + 1) % len(zs)]
+    height = (z - bottom) % period  # 0 at the lowest atom of the layer
+    thickness = float(height.max())
+    # New frame: x along a1, z along the normal, y completing a right-handed set.
+    ex = a1 / np.linalg.norm(a1)
+    ey = np.cross(normal, ex)
+    rot = np.array([ex, ey, normal])
+    new_a1, new_a2 = rot @ a1, rot @ a2
+    new_a1[2] = new_a2[2] = 0.0
+    c = thickness + float(vacuum_A)
+    new_cell = np.array([new_a1, new_a2, [0.0, 0.0, c]])
+    inplane = frac[:, :2] @ new_cell[:2, :2]
+    positions = np.column_stack([inplane, height + 0.5 * (c - thickness)])
+    return Atoms(numbers=atoms.numbers, positions=positions, cell=new_cell,
+                 pbc=(True, True, False))
+
+
+def is_hexagonal(cell: np.ndarray) -> bool:
+    """True if the in-plane lattice (rows 0, 1 of ``cell``, Angstrom) is hexagonal."""
+    a1, a2 = np.asarray(cell, dtype=float)[:2]
+    l1, l2 = np.linalg.norm(a1), np.linalg.norm(a2)
+    angle = math.degrees(math.acos(np.clip(a1 @ a2 / (l1 * l2), -1.0, 1.0)))
+    return (abs(l1 - l2) <= HEX_LENGTH_RTOL * max(l1, l2)
+            and min(abs(angle - 60.0), abs(angle - 120.0)) <= HEX_ANGLE_TOL_DEG)
+
+
+def choose_kpts(atoms: "Atoms", settings: LabelSettings) -> tuple[int, int, int]:
+    """Gamma-centred mesh ``(n1, n2, 1)`` for a prepared monolayer.
+
+    Hexagonal cells get ``n1 = n2`` rounded up to a multiple of 3 so that K and K'
+    lie on the mesh.
+
+    Raises
+    ------
+    InputError
+        If an explicit mesh for a hexagonal cell would miss K.
+    """
+    hexagonal = is_hexagonal(atoms.cell)
+    if settings.kpts is not None:
+        n1, n2, _ = settings.kpts
+        if hexagonal and (n1 != n2 or n1 % 3):
+            raise InputError("this k mesh misses the K point of a hexagonal cell",
+                             line=_formula(atoms), value=settings.kpts,
+                             expected="(n, n, 1) with n divisible by 3")
+        return settings.kpts
+    b = 2.0 * math.pi * np.linalg.norm(atoms.cell.reciprocal()[:2], axis=1)
+    n = [max(MIN_KPTS, math.ceil(settings.kpt_density * bi - 1e-9)) for bi in b]
+    if hexagonal:
+        m = max(n)
+        m = 3 * math.ceil(m / 3)
+        n = [m, m]
+    return (int(n[0]), int(n[1]), 1)
+
+
+def band_gap(eigenvalues: np.ndarray, n_electrons: float) -> tuple[float, bool]:
+    """Band gap on the mesh from spinor eigenvalues and the electron count.
+
+    Parameters
+    ----------
+    eigenvalues
+        Shape (nk, nstates), eV, one electron per state, sorted at each k.
+    n_electrons
+        Valence electrons per cell.
+
+    Returns
+    -------
+    (gap_eV, is_metal)
+        ``gap = min_k e[k, N] - max_k e[k, N - 1]``; a non-integer count or a gap below
+        :data:`METAL_GAP_EV` gives ``(0.0, True)``.
+    """
+    e = np.sort(np.asarray(eigenvalues, dtype=float), axis=1)
+    n = int(round(n_electrons))
+    if abs(n - n_electrons) > 1e-6 or n <= 0 or n >= e.shape[1]:
+        return 0.0, True
+    gap = float(e[:, n].min() - e[:, n - 1].max())
+    if gap < METAL_GAP_EV:
+        return 0.0, True
+    return gap, False
+
+
+def _gpaw_calculator(settings: LabelSettings, kmesh: tuple[int, int, int],
+                     txt: str | Path | None, magnetic: bool) -> Any:
+    from gpaw import GPAW, FermiDirac
+
+    return GPAW(mode="lcao", basis=settings.basis, xc=settings.xc,
+                kpts={"size": kmesh, "gamma": True}, nbands="nao",
+                occupations=FermiDirac(settings.smearing_eV), spinpol=magnetic,
+                txt=txt)
+
+
+def _run_in(workdir: Path | None):
+    """A context manager giving a directory for GPAW's text output."""
+    if workdir is not None:
+        Path(workdir).mkdir(parents=True, exist_ok=True)
+
+        class _Keep:
+            def __enter__(self) -> Path:
+                return Path(workdir)
+
+            def __exit__(self, *exc: object) -> None:
+                return None
+
+        return _Keep()
+    return _TempDir()
+
+
+def _one_thread() -> Any:
+    """Limit BLAS to one thread: one calculation per core beats threaded BLAS."""
+    from threadpoolctl import threadpool_limits
+
+    return threadpool_limits(limits=1)
+
+
+class _TempDir:
+    def __enter__(self) -> Path:
+        self._tmp = tempfile.TemporaryDirectory(prefix="prescreen-gpaw-")
+        return Path(self._tmp.name)
+
+    def __exit__(self, *exc: object) -> None:
+        self._tmp.cleanup()
+
+
+def label_structure(structure: "Structure | Atoms",
+                    settings: LabelSettings = LabelSettings(), *,
+                    workdir: Path | None = None, id: str | None = None) -> LabelRecord:
+    """Compute the spin-orbit spillage of one monolayer with GPAW.
+
+    Parameters
+    ----------
+    structure
+        The monolayer (pymatgen ``Structure`` or ``ase.Atoms``); the third lattice
+        vector must be out of plane.
+    settings
+        Level of theory; see :class:`LabelSettings`.
+    workdir
+        Folder for GPAW's text log (``gpaw.txt``); a temporary folder when None.
+    id
+        Identifier stored in the record.
+
+    Returns
+    -------
+    LabelRecord
+        With ``status == "ok"``.
+
+    Raises
+    ------
+    InputError
+        If the structure is not a monolayer or the mesh would miss K.
+    LabellingError
+        If GPAW is not installed or the calculation fails; the cause is chained.
+    """
+    from prescreen.physics.spillage import occupations_at_fermi_level, spillage_from_overlap
+
+    t0 = time.perf_counter()
+    atoms = prepare_monolayer(structure, settings.vacuum_A, name=id)
+    formula = _formula(atoms)
+    kmesh = choose_kpts(atoms, settings)
+    try:
+        from gpaw.spinorbit import soc_eigenstates
+    except ImportError as exc:
+        raise LabellingError(
+            f"{id or formula}: GPAW is not importable; install it with "
+            "`bash scripts/install_gpaw.sh .venv` (or `make dft-env`)") from exc
+    if settings.spinpol:
+        atoms.set_initial_magnetic_moments([settings.initial_magmom_muB] * len(atoms))
+    with _run_in(workdir) as folder, _one_thread():
+        try:
+            calc = _gpaw_calculator(settings, kmesh, folder / "gpaw.txt", settings.spinpol)
+            atoms.calc = calc
+            atoms.get_potential_energy()
+            nspins = calc.get_number_of_spins()
+            soc = soc_eigenstates(calc)
+            v_kmn = soc.eigenvectors()  # [k, SOC state m, basis 2j + s]
+            e_soc = soc.eigenvalues()  # (nk, 2 nbands), eV
+            ef_soc = float(soc.fermi_level)
+            ef_nosoc = float(calc.get_fermi_level())
+            bz2ibz = np.asarray(calc.wfs.kd.bz2ibz_k)
+            kpts = np.asarray(calc.get_bz_k_points(), dtype=float)
+            nbands = calc.get_number_of_bands()
+            eig_ibz = np.array([[calc.get_eigenvalues(kpt=k, spin=min(s, nspins - 1))
+                                 for s in (0, 1)]
+                                for k in range(len(calc.get_ibz_k_points()))])
+            n_electrons = float(calc.get_number_of_electrons())
+            magmom = float(calc.get_magnetic_moment()) if settings.spinpol else 0.0
+        except Exception as exc:  # GPAW raises many types; keep the cause
+            raise LabellingError(
+                f"{id or formula}: GPAW calculation failed: {type(exc).__name__}: {exc}"
+            ) from exc
+    # Non-SOC eigenvalues in the interleaved spinor basis of v_kmn: index 2 j + s.
+    e_nosoc = np.empty((len(kpts), 2 * nbands))
+    e_nosoc[:, 0::2] = eig_ibz[bz2ibz, 0]
+    e_nosoc[:, 1::2] = eig_ibz[bz2ibz, 1]
+    w_nosoc = occupations_at_fermi_level(e_nosoc, ef_nosoc, settings.smearing_eV)
+    w_soc = occupations_at_fermi_level(e_soc, ef_soc, settings.smearing_eV)
+    overlap = np.transpose(v_kmn, (0, 2, 1))  # [k, basis state, SOC state]
+    gamma = spillage_from_overlap(overlap, w_nosoc, w_soc)
+    gap_nosoc, _ = band_gap(e_nosoc, n_electrons)
+    gap_soc, metal = band_gap(e_soc, n_electrons)
+    wall = time.perf_counter() - t0
+    sdict = settings.as_dict()
+    sdict.update(kmesh=list(kmesh), mode="lcao", nbands="nao",
+                 occupations=f"Fermi-Dirac {settings.smearing_eV} eV; spillage weights "
+                             "from each Fermi level")
+    k_arg = int(np.argmax(gamma))
+    return LabelRecord(id=id, formula=formula, spillage=float(gamma[k_arg]),
+                       k_max=kpts[k_arg], gap_nosoc_eV=gap_nosoc, gap_soc_eV=gap_soc,
+                       is_metal=metal, magmom=magmom, settings=sdict,
+                       versions=code_versions(), wall_s=wall, core_hours=wall / 3600.0,
+                       gamma=gamma, kpts=kpts)
+
+
+def relax_monolayer(structure: "Structure | Atoms",
+                    settings: LabelSettings = LabelSettings(), *,
+                    fmax: float = DEFAULT_FMAX_EV_PER_A, steps: int = 100,
+                    scales: tuple[float, ...] = (0.96, 0.98, 1.0, 1.02, 1.04),
+                    workdir: Path | None = None
+                    ) -> tuple["Structure | Atoms", float, bool]:
+    """Relax a monolayer at the labeller's level of theory (LCAO, PBE).
+
+    GPAW 26.7 has no stress tensor in LCAO mode, so the in-plane cell is optimised by
+    energy: the in-plane lattice is scaled isotropically through ``scales`` (positions
+    first relaxed at the input cell, then held in fractional coordinates), a parabola
+    through the lowest energies gives the best scale, and positions are relaxed again
+    there (BFGS). The out-of-plane cell is not changed apart from re-centring with
+    ``settings.vacuum_A`` of vacuum; the in-plane cell *shape* is not optimised.
+
+    Parameters
+    ----------
+    structure
+        The monolayer.
+    settings
+        Level of theory (basis, functional, mesh, smearing, vacuum, spin).
+    fmax
+        Force tolerance (eV/Angstrom) of the position relaxations.
+    steps
+        Largest number of BFGS steps per position relaxation.
+    scales
+        In-plane scale factors (dimensionless) tried for the lattice.
+    workdir
+        Folder for GPAW's log; a temporary folder when None.
+
+    Returns
+    -------
+    (relaxed, residual_fmax_eV_per_A, converged)
+        ``relaxed`` has the input's type (pymatgen ``Structure`` or ``ase.Atoms``).
+        ``converged`` is False if BFGS did not reach ``fmax`` or the best scale lies
+        at the edge of ``scales``.
+    """
+    from ase.optimize import BFGS
+
+    if fmax <= 0 or steps < 1 or len(scales) < 3:
+        raise InputError("bad relaxation parameters", value=(fmax, steps, scales),
+                         expected="fmax > 0, steps >= 1, at least 3 scales")
+    atoms = prepare_monolayer(structure, settings.vacuum_A)
+    kmesh = choose_kpts(atoms, settings)
+
+    def attach(a: "Atoms", folder: Path, tag: str) -> None:
+        if settings.spinpol:
+            a.set_initial_magnetic_moments([settings.initial_magmom_muB] * len(a))
+        a.calc = _gpaw_calculator(settings, kmesh, folder / f"relax-{tag}.txt",
+                                  settings.spinpol)
+
+    def relax_positions(a: "Atoms", folder: Path, tag: str) -> bool:
+        attach(a, folder, tag)
+        return bool(BFGS(a, logfile=str(folder / f"bfgs-{tag}.log")).run(fmax=fmax,
+                                                                          steps=steps))
+
+    with _run_in(workdir) as folder, _one_thread():
+        try:
+            relax_positions(atoms, folder, "start")
+            energies = []
+            for i, s in enumerate(scales):
+                trial = atoms.copy()
+                cell = np.array(trial.cell)
+                cell[:2] *= s
+                trial.set_cell(cell, scale_atoms=True)
+                attach(trial, folder, f"scale{i}")
+                energies.append(trial.get_potential_energy())
+            energies = np.array(energies)
+            j = int(np.argmin(energies))
+            edge = j in (0, len(scales) - 1)
+            lo = min(max(j - 1, 0), len(scales) - 3)
+            coef = np.polyfit(scales[lo:lo + 3], energies[lo:lo + 3], 2)
+            best = (-coef[1] / (2 * coef[0]) if coef[0] > 0 else scales[j])
+            best = float(np.clip(best, scales[0], scales[-1]))
+            cell = np.array(atoms.cell)
+            cell[:2] *= best
+            atoms.set_cell(cell, scale_atoms=True)
+            ok = relax_positions(atoms, folder, "final")
+            residual = float(np.linalg.norm(atoms.get_forces(), axis=1).max())
+        except Exception as exc:
+            raise LabellingError(f"{_formula(atoms)}: relaxation failed: "
+                                 f"{type(exc).__name__}: {exc}") from exc
+    atoms.calc = None
+    relaxed = prepare_monolayer(atoms, settings.vacuum_A)
+    from ase import Atoms
+
+    if not isinstance(structure, Atoms):
+        from pymatgen.io.ase import AseAtomsAdaptor
+
+        relaxed = AseAtomsAdaptor.get_structure(relaxed)
+    return relaxed, residual, bool(ok and not edge)
