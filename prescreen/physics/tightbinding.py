@@ -154,11 +154,34 @@ def _add(hops: dict[tuple[int, int], np.ndarray], r: tuple[int, int], i: int, j:
     hops[r][2 * i:2 * i + 2, 2 * j:2 * j + 2] += block
 
 
+class _LatticeModel:
+    """Behaviour shared by the dataclass models: finite parameters, Bloch sums."""
+
+    _hoppings: dict[tuple[int, int], np.ndarray]
+
+    def __post_init__(self) -> None:
+        for f in dataclasses.fields(self):  # type: ignore[arg-type]
+            value = getattr(self, f.name)
+            if not np.isfinite(value):
+                raise InputError(f"{type(self).__name__}.{f.name} must be finite",
+                                 value=value, expected="a finite energy")
+
+    def hamiltonian(self, kpts: np.ndarray) -> np.ndarray:
+        """Bloch Hamiltonians, shape (nk, nb, nb), in the basis order of the class.
+
+        Parameters
+        ----------
+        kpts
+            Shape (nk, 3), fractional coordinates.
+        """
+        return bloch_hamiltonian(kpts, self._hoppings)
+
+
 # --------------------------------------------------------------------------- Kane–Mele
 
 
 @dataclass(frozen=True)
-class KaneMele:
+class KaneMele(_LatticeModel):
     """The Kane–Mele model on the honeycomb lattice (nearest-neighbour distance 1).
 
     ``H = t sum_<ij> c_i^+ c_j + i lambda_so sum_<<ij>> nu_ij c_i^+ s_z c_j
@@ -166,6 +189,7 @@ class KaneMele:
     equation (1) of Kane and Mele, Phys. Rev. Lett. 95, 146802 (2005), with
     nu_ij = +-1 the chirality of the second-neighbour path, d_ij the unit bond vector
     and xi = +1 on sublattice A, -1 on B. Half filling: two of the four bands occupied.
+Basis (A up, A down, B up, B down).
 
     Attributes
     ----------
@@ -189,13 +213,6 @@ class KaneMele:
     lambda_so: float = 0.06
     lambda_r: float = 0.0
     lambda_v: float = 0.0
-
-    def __post_init__(self) -> None:
-        for f in dataclasses.fields(self):
-            value = getattr(self, f.name)
-            if not np.isfinite(value):
-                raise InputError(f"KaneMele.{f.name} must be finite", value=value,
-                                 expected="a finite energy")
 
     n_occupied = 2
     #: Fractional coordinates of the K point (where the Dirac cones sit).
@@ -244,15 +261,6 @@ class KaneMele:
                         _add(hops, r, i, j, 1j * self.lambda_so * nu * _PAULI[2])
         return {r: m for r, m in hops.items() if np.any(m != 0)}
 
-    def hamiltonian(self, kpts: np.ndarray) -> np.ndarray:
-        """Bloch Hamiltonians, shape (nk, 4, 4), basis (A up, A down, B up, B down).
-
-        Parameters
-        ----------
-        kpts
-            Shape (nk, 3), fractional coordinates.
-        """
-        return bloch_hamiltonian(kpts, self._hoppings)
 
 
 # ------------------------------------------------------------------ s-p square lattice
@@ -278,14 +286,15 @@ def _slater_koster_sp(direction: np.ndarray, v_sss: float, v_sps: float, v_pps: 
 
 
 @dataclass(frozen=True)
-class SPSquare:
+class SPSquare(_LatticeModel):
     """s, p_x, p_y orbitals on a square lattice with on-site p-shell spin-orbit coupling.
 
     Nearest-neighbour Slater–Koster hoppings (Slater and Koster, Phys. Rev. 94, 1498
     (1954)) and ``H_SO = lambda_so L.S`` on the p shell. With p_z left out (a flat layer
     whose p_z band lies far away), L.S within {p_x, p_y} reduces to L_z S_z, so the
     p_x/p_y pair at Gamma splits into two Kramers pairs at E_p(Gamma) -+ lambda_so/2.
-    Four electrons per cell (the two p bands of each spin).
+    Four electrons per cell (the two p bands of each spin). Basis (s, p_x, p_y) x
+    (up, down), orbital-major.
 
     Without spin-orbit coupling the defaults give a trivial insulator whose smallest gap,
     ``gap_gamma = E_s(Gamma) - E_p(Gamma)``, is at Gamma, where s and p do not hybridise.
@@ -314,13 +323,6 @@ class SPSquare:
 
     n_occupied = 4
     GAMMA_POINT = np.zeros(3)
-
-    def __post_init__(self) -> None:
-        for f in dataclasses.fields(self):
-            value = getattr(self, f.name)
-            if not np.isfinite(value):
-                raise InputError(f"SPSquare.{f.name} must be finite", value=value,
-                                 expected="a finite energy")
 
     @property
     def gap_gamma(self) -> float:
@@ -351,15 +353,6 @@ class SPSquare:
             hops[r] = np.kron(e, _I2).astype(complex)
         return hops
 
-    def hamiltonian(self, kpts: np.ndarray) -> np.ndarray:
-        """Bloch Hamiltonians, shape (nk, 6, 6), basis (s, p_x, p_y) x (up, down).
-
-        Parameters
-        ----------
-        kpts
-            Shape (nk, 3), fractional coordinates.
-        """
-        return bloch_hamiltonian(kpts, self._hoppings)
 
 
 # ---------------------------------------------------------------------- BHZ (lattice)
