@@ -31,7 +31,7 @@ def _undecodable(path: Path, lineno: int, offset: int, raw: bytes, exc: UnicodeD
     snippet = raw[start : exc.start + 10]
     return InputError(
         f"bytes that are not UTF-8 at byte offset {offset + exc.start} "
-        f"(byte {raw[exc.start]:#04x}); the line was skipped",
+        f"(byte {raw[exc.start]:#04x})",
         path=path,
         line=lineno,
         value=repr(snippet)[:_SHOWN_BYTES * 2],
@@ -78,6 +78,7 @@ def iter_csv_records(path: str | Path) -> Iterator[CsvRecord | Rejection]:
                     if count == 0:  # the header itself cannot be read: the file cannot be used
                         header_error.append(error)
                         return
+                    error.reason += "; the line was skipped"
                     pending.append(Rejection.from_error(error))
                     offset += len(raw)
                     continue
