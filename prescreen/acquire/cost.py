@@ -311,22 +311,28 @@ def kpoints_for_cell(structure, kpoint_density: float = 5.0) -> int:
 
 
 def valence_electrons(symbol: str) -> int:
-    """Electrons outside the preceding noble-gas core (a filled 4f shell counts as core).
+    """Chemical valence electrons: s and p of the outer shell, plus the open d shell.
 
-    E.g. Mo [Kr]4d5 5s1 -> 6, S [Ne]3s2 3p4 -> 6, Bi [Xe]4f14 5d10 6s2 6p3 -> 15.
-    Real pseudopotentials may add semicore states; this is the size proxy the cost model
-    uses, not a statement about any particular setup.
+    Electrons outside the preceding noble-gas core, without a filled (n-1)d shell in the
+    p-block (groups 13-18 from period 4) and without a filled 4f/5f shell after the
+    lanthanides/actinides. E.g. Mo 5s1 4d5 -> 6, Se 4s2 4p4 -> 6, Bi 6s2 6p3 -> 5,
+    W 6s2 5d4 -> 6 (matches ``mendeleev``'s ``nvalence`` for these; see the tests).
+    Real pseudopotentials often add semicore states; this is only the size proxy the
+    cost model uses, not a statement about any particular setup.
     """
     from pymatgen.core import Element
 
     try:
-        z = Element(symbol).Z
+        el = Element(symbol)
     except ValueError as exc:
         raise InputError("unknown element", value=symbol, expected="an element symbol") from exc
+    z = el.Z
     core = max([0] + [g for g in (2, 10, 18, 36, 54, 86) if g < z])
     count = z - core
     if 71 < z <= 86 or 103 < z:  # filled 4f (5f) shell under the valence
         count -= 14
+    if el.group >= 13 and z > 18:  # filled (n-1)d shell under the p valence
+        count -= 10
     return int(count)
 
 
