@@ -56,6 +56,7 @@ __all__ = [
     "band_gap",
     "label_structure",
     "relax_monolayer",
+    "honeycomb_monolayer",
 ]
 
 #: Total vacuum (Angstrom) between a monolayer and its periodic image along z.
@@ -113,6 +114,9 @@ class LabelSettings:
         ferromagnetic start of ``initial_magmom_muB`` per atom, SOC axis along z.
     initial_magmom_muB
         Starting magnetic moment per atom (Bohr magnetons) when ``spinpol``.
+    soc_scale
+        Factor (dimensionless) on the spin-orbit term: 1 is physical; 0 switches SOC
+        off, a check of the pipeline (the spillage must then vanish).
     """
 
     basis: str = "dzp"
@@ -123,6 +127,7 @@ class LabelSettings:
     vacuum_A: float = DEFAULT_VACUUM_A
     spinpol: bool = False
     initial_magmom_muB: float = 1.0
+    soc_scale: float = 1.0
 
     def __post_init__(self) -> None:
         if self.kpts is not None:
@@ -136,6 +141,9 @@ class LabelSettings:
             if not (isinstance(value, (int, float)) and math.isfinite(value) and value > low):
                 raise InputError(f"LabelSettings.{name} out of range", value=value,
                                  expected=f"a finite number > {low}")
+        if not (math.isfinite(self.soc_scale) and self.soc_scale >= 0):
+            raise InputError("LabelSettings.soc_scale out of range", value=self.soc_scale,
+                             expected="a finite number >= 0 (1 = physical)")
         if not isinstance(self.basis, str) or not isinstance(self.xc, str):
             raise InputError("basis and xc must be strings", value=(self.basis, self.xc),
                              expected="e.g. basis='dzp', xc='PBE'")
@@ -539,7 +547,7 @@ def label_structure(structure: "Structure | Atoms",
             atoms.calc = calc
             atoms.get_potential_energy()
             nspins = calc.get_number_of_spins()
-            soc = soc_eigenstates(calc)
+            soc = soc_eigenstates(calc, scale=settings.soc_scale)
             v_kmn = soc.eigenvectors()  # [k, SOC state m, basis 2j + s]
             e_soc = soc.eigenvalues()  # (nk, 2 nbands), eV
             ef_soc = float(soc.fermi_level)
@@ -670,3 +678,37 @@ def relax_monolayer(structure: "Structure | Atoms",
 
         relaxed = AseAtomsAdaptor.get_structure(relaxed)
     return relaxed, residual, bool(ok and not edge)
+
+
+def honeycomb_monolayer(symbols: str, a: float, buckling: float = 0.0,
+                        vacuum: float = DEFAULT_VACUUM_A) -> "Atoms":
+    """A two-atom (buckled) honeycomb monolayer, e.g. hBN, silicene, stanene.
+
+    Parameters
+    ----------
+    symbols
+        Two atoms, e.g. ``"BN"`` or ``"Sn2"`` (ASE formula).
+    a
+        In-plane lattice constant (Angstrom).
+    buckling
+        Height difference (Angstrom) between the two sublattices.
+    vacuum
+        Total vacuum (Angstrom) along z.
+
+    Returns
+    -------
+    ase.Atoms
+        Hexagonal cell (120 degrees between a1 and a2), atoms at (1/3, 2/3) and
+        (2/3, 1/3), ``pbc = (True, True, False)``.
+    """
+    from ase import Atoms
+    from ase.symbols import string2symbols
+
+    if len(string2symbols(symbols)) != 2:
+        raise InputError("a honeycomb has two atoms per cell", value=symbols,
+                         expected="a formula with two atoms, e.g. 'BN' or 'Sn2'")
+    c = buckling + vacuum
+    cell = [[a, 0.0, 0.0], [-a / 2, a * math.sqrt(3) / 2, 0.0], [0.0, 0.0, c]]
+    return Atoms(symbols, cell=cell, pbc=(True, True, False),
+                 scaled_positions=[[1 / 3, 2 / 3, 0.5 - buckling / (2 * c)],
+                                   [2 / 3, 1 / 3, 0.5 + buckling / (2 * c)]])

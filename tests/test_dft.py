@@ -1,0 +1,197 @@
+"""DFT spillage labeller (GPAW): small real calculations and the pure helpers around them.
+
+Tests marked ``dft`` run GPAW (about a minute in all on one core) and are skipped, with the
+reason, only when GPAW is not importable. Reference facts:
+
+* buckled Bi honeycomb (Bi(111) bilayer): a quantum spin Hall insulator with an SOC band
+  inversion at Gamma (Murakami, Phys. Rev. Lett. 97, 236805 (2006); from memory);
+* stanene (buckled Sn honeycomb): a quantum spin Hall insulator with its SOC gap opening
+  at the K points (Xu et al., Phys. Rev. Lett. 111, 136804 (2013); from memory);
+* hBN and 2H-MoS2 monolayers: trivial insulators (from memory);
+* spillage >= 0.5 flags an inversion (common practice); an inversion of one Kramers pair
+  gives gamma close to 2 at that k, a Dirac-point inversion at K close to 1 (Liu and
+  Vanderbilt, Phys. Rev. B 90, 125133 (2014)).
+"""
+
+from __future__ import annotations
+
+import importlib.util
+import json
+import math
+
+import numpy as np
+import pytest
+from ase.build import mx2
+
+from prescreen import SPILLAGE_THRESHOLD
+from prescreen.errors import InputError
+from prescreen.physics.dft import (
+    LabelRecord,
+    LabelSettings,
+    band_gap,
+    choose_kpts,
+    honeycomb_monolayer,
+    is_hexagonal,
+    label_structure,
+    prepare_monolayer,
+)
+
+HAVE_GPAW = importlib.util.find_spec("gpaw") is not None
+needs_gpaw = pytest.mark.skipif(not HAVE_GPAW, reason="gpaw is not importable; "
+                                "run `bash scripts/install_gpaw.sh .venv` (make dft-env)")
+
+# Lattice constants and bucklings (Angstrom), all from memory:
+# Bi(111) bilayer a = 4.33, buckling 1.73; stanene a = 4.67, buckling 0.85 (Xu et al. 2013);
+# hBN a = 2.50 (bulk h-BN a = 2.504); MoS2 a = 3.18, S-S height 3.13 (PBE-relaxed values
+# near the bulk experiment a = 3.16).
+STRUCTURES = {
+    "Bi2-buckled": lambda: honeycomb_monolayer("Bi2", 4.33, 1.73),
+    "Sn2-buckled": lambda: honeycomb_monolayer("Sn2", 4.67, 0.85),
+    "BN": lambda: honeycomb_monolayer("BN", 2.50),
+    "MoS2-2H": lambda: mx2("MoS2", "2H", a=3.18, thickness=3.13, vacuum=8.0),
+}
+COARSE = LabelSettings(kpts=(6, 6, 1))  # Gamma-centred, contains K and M
+
+
+def _same_k(k1: np.ndarray, k2: np.ndarray) -> bool:
+    """True if two fractional k points differ by a reciprocal lattice vector."""
+    d = np.asarray(k1) - np.asarray(k2)
+    return bool(np.allclose(d - np.round(d), 0.0, atol=1e-6))
+
+
+@pytest.mark.dft
+@needs_gpaw
+@pytest.mark.parametrize(
+    "name, topological, gamma_range, k_expected",
+    [
+        # QSH, inversion at Gamma of one Kramers pair -> gamma ~ 2 (facts above)
+        ("Bi2-buckled", True, (1.5, 2.5), [(0, 0, 0)]),
+        # QSH, Dirac point at K without SOC -> gamma ~ 1 at K or K'
+        ("Sn2-buckled", True, (0.7, 1.3), [(1 / 3, 1 / 3, 0), (-1 / 3, -1 / 3, 0)]),
+        ("BN", False, (0.0, 0.05), None),  # trivial wide-gap insulator
+        ("MoS2-2H", False, (0.0, 0.1), None),  # trivial insulator
+    ],
+)
+def test_spillage_of_reference_monolayers(name, topological, gamma_range, k_expected):
+    rec = label_structure(STRUCTURES[name](), COARSE, id=name)
+    assert rec.ok and rec.id == name
+    assert (rec.spillage >= SPILLAGE_THRESHOLD) is topological
+    assert gamma_range[0] <= rec.spillage <= gamma_range[1]
+    if k_expected is not None:
+        assert any(_same_k(rec.k_max, k) for k in k_expected), rec.k_max
+    assert not rec.is_metal and rec.gap_soc_eV > 0.0
+    assert rec.gamma.shape == (36,) and rec.kpts.shape == (36, 3)
+    assert np.all(rec.gamma >= 0.0) and rec.gamma.max() == rec.spillage
+    assert rec.settings["kmesh"] == [6, 6, 1] and rec.versions["gpaw"] != "not installed"
+    back = LabelRecord.from_dict(json.loads(json.dumps(rec.as_dict())))
+    assert back.spillage == rec.spillage and np.array_equal(back.gamma, rec.gamma)
+
+
+@pytest.mark.dft
+@needs_gpaw
+def test_spillage_vanishes_without_soc():
+    # With the SOC term scaled to zero the SOC states are the spinor states without SOC,
+    # so gamma(k) = 0 at every k: checks the interleaved basis layout and the occupations.
+    rec = label_structure(STRUCTURES["Bi2-buckled"](),
+                          LabelSettings(kpts=(6, 6, 1), soc_scale=0.0))
+    assert rec.spillage == pytest.approx(0.0, abs=1e-6)
+    assert rec.gap_soc_eV == pytest.approx(rec.gap_nosoc_eV, abs=1e-6)
+
+
+@pytest.mark.dft
+@needs_gpaw
+def test_spin_polarised_path_agrees_for_a_nonmagnetic_layer():
+    # hBN has no moment; the collinear spin-polarised path (two spin channels in the
+    # SOC basis) must converge to zero moment and the same spillage as spin-paired.
+    atoms = STRUCTURES["BN"]()
+    paired = label_structure(atoms, COARSE)
+    polar = label_structure(atoms, LabelSettings(kpts=(6, 6, 1), spinpol=True))
+    assert abs(polar.magmom) < 0.01
+    assert polar.spillage == pytest.approx(paired.spillage, abs=1e-3)
+    assert polar.gap_soc_eV == pytest.approx(paired.gap_soc_eV, abs=0.02)
+
+
+# ---------------------------------------------------------------- no GPAW needed below
+
+
+def test_mesh_for_hexagonal_cells_contains_k():
+    atoms = prepare_monolayer(STRUCTURES["Sn2-buckled"]())
+    assert is_hexagonal(atoms.cell)
+    n1, n2, n3 = choose_kpts(atoms, LabelSettings())
+    assert n1 == n2 and n1 % 3 == 0 and n3 == 1
+    # 10 x 10 misses K: the scratch false negative for stanene (see docs/labeller.md)
+    with pytest.raises(InputError, match="misses the K point"):
+        choose_kpts(atoms, LabelSettings(kpts=(10, 10, 1)))
+
+
+def test_mesh_for_rectangular_cell_follows_density():
+    from ase import Atoms
+
+    atoms = Atoms("H2", cell=[3.0, 6.0, 20.0], positions=[[0, 0, 10], [1.5, 3, 10.7]],
+                  pbc=True)
+    n1, n2, _ = choose_kpts(prepare_monolayer(atoms), LabelSettings(kpt_density=4.0))
+    assert (n1, n2) == (math.ceil(4.0 * 2 * math.pi / 3.0), math.ceil(4.0 * 2 * math.pi / 6.0))
+
+
+def test_prepare_monolayer_reorients_and_recentres():
+    # Same layer given with the normal along x and the layer straddling the cell edge.
+    from ase import Atoms
+
+    layer = STRUCTURES["MoS2-2H"]()
+    cell = np.array(layer.cell)[[2, 0, 1]][:, [2, 0, 1]]  # axes permuted: normal along x
+    pos = layer.positions[:, [2, 0, 1]]
+    pos[:, 0] += 0.6 * cell[0, 0]  # shift so the layer wraps through the boundary
+    rotated = Atoms(layer.numbers, positions=pos, cell=np.roll(cell, -1, axis=0), pbc=True)
+    out = prepare_monolayer(rotated, vacuum_A=12.0)
+    ref = prepare_monolayer(layer, vacuum_A=12.0)
+    assert out.cell[2, 2] == pytest.approx(ref.cell[2, 2])
+    assert np.allclose(np.abs(out.cell[:2, :2]), np.abs(ref.cell[:2, :2]), atol=1e-8)
+    heights = np.sort(out.positions[:, 2])
+    assert np.allclose(heights, np.sort(ref.positions[:, 2]), atol=1e-8)
+    thickness = heights[-1] - heights[0]
+    assert out.cell[2, 2] - thickness == pytest.approx(12.0)
+
+
+def test_bulk_input_is_refused_with_the_gap_found():
+    from ase.build import bulk
+
+    with pytest.raises(InputError, match="not a monolayer slab"):
+        prepare_monolayer(bulk("Si", "diamond", a=5.43), name="Si-bulk")
+
+
+@pytest.mark.parametrize(
+    "eigs, n, expected",
+    [
+        ([[-1.0, 1.0], [-0.5, 2.0]], 1, (1.5, False)),  # indirect: 1.0 - (-0.5)
+        ([[-1.0, 1.0], [1.2, 2.0]], 1, (0.0, True)),  # bands overlap -> metal
+        ([[-1.0, 1.0, 2.0]], 1.5, (0.0, True)),  # fractional electron count
+    ],
+)
+def test_band_gap(eigs, n, expected):
+    gap, metal = band_gap(np.array(eigs), n)
+    assert gap == pytest.approx(expected[0]) and metal is expected[1]
+
+
+@pytest.mark.parametrize(
+    "kwargs, match",
+    [
+        ({"kpts": (6, 6, 2)}, "2D mesh"),
+        ({"vacuum_A": 2.0}, "vacuum_A out of range"),
+        ({"smearing_eV": -0.1}, "smearing_eV out of range"),
+        ({"soc_scale": float("nan")}, "soc_scale out of range"),
+    ],
+)
+def test_bad_settings_are_refused(kwargs, match):
+    with pytest.raises(InputError, match=match):
+        LabelSettings(**kwargs)
+
+
+def test_settings_and_failed_record_round_trip():
+    s = LabelSettings(kpts=(9, 9, 1), spinpol=True)
+    assert LabelSettings.from_dict(json.loads(json.dumps(s.as_dict()))) == s
+    with pytest.raises(InputError, match="unknown label settings"):
+        LabelSettings.from_dict({"ecut": 400})
+    rec = LabelRecord.failed("x1", "MoS2", s, "LabellingError: boom", wall_s=3.0)
+    back = LabelRecord.from_dict(json.loads(json.dumps(rec.as_dict())))
+    assert back.status == "failed" and back.error == "LabellingError: boom"
+    assert math.isnan(back.spillage) and back.gamma.shape == (0,)
