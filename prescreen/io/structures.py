@@ -582,7 +582,8 @@ def iter_candidates(
                 if isinstance(entry, Candidate):
                     first = seen.get(entry.id)
                     if first is not None:
-                        where = entry.source[len(str(path)) + 1 :] or None
+                        suffix = entry.source[len(str(path)) + 1 :]
+                        where: int | str | None = int(suffix) if suffix.isdigit() else (suffix or None)
                         yield Rejection(str(path), where, entry.id,
                                         f"identifier {entry.id!r} already used by {first}; "
                                         "identifiers must be unique across all sources")

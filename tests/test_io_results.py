@@ -1,0 +1,145 @@
+"""Tests for reading DFT results (prescreen.io.results).
+
+The fixture values are made-up inputs to exercise validation; no test compares them to a
+physical reference.
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import pytest
+
+from prescreen.errors import InputError
+from prescreen.io.results import ResultRow, read_results, unknown_ids
+
+DATA = Path(__file__).parent / "data"
+
+
+def _by_line(rejections):
+    return {r.line: r for r in rejections}
+
+
+def test_csv_valid_rows_land_with_metadata():
+    rows, _ = read_results(DATA / "io_results.csv")
+    assert [r.id for r in rows] == ["MoS2", "WTe2", "dup-same", "Bi2Se3"]
+    mos2 = rows[0]
+    assert mos2 == ResultRow("MoS2", 0.12, "PBE", "GPAW", "12x12x1", 3.5, "converged",
+                             f"{DATA / 'io_results.csv'}:2")
+    assert rows[1].kmesh == "12x12x1"  # "12, 12, 1" normalised
+    assert rows[3].notes == "multi\nline note" and rows[3].source.endswith(":13")
+
+
+@pytest.mark.parametrize(
+    ("line", "value", "reason"),
+    [
+        (1, "queue", "column is not used"),
+        (4, "nan", "spillage is not finite"),
+        (5, "-0.2", "spillage is negative"),
+        (6, "", "spillage is missing"),
+        (7, "high", "spillage is not a number"),
+        (8, "12x12", "kmesh is not three positive integers"),
+        (9, "0.4", "id 'dup-diff' appears 2 times with different values (9: 0.4; 10: 0.6)"),
+        (10, "0.6", "id 'dup-diff' appears 2 times with different values"),
+    ],
+)
+def test_csv_rejections_name_line_value_reason(line, value, reason):
+    _, rejections = read_results(DATA / "io_results.csv")
+    assert len(rejections) == 8
+    rejection = _by_line(rejections)[line]
+    assert rejection.path == str(DATA / "io_results.csv")
+    assert rejection.value == value
+    assert rejection.reason.startswith(reason), rejection.reason
+
+
+@pytest.mark.parametrize(("policy", "kept"), [("first", 0.4), ("last", 0.6)])
+def test_conflict_policy_keeps_one_row(policy, kept):
+    rows, rejections = read_results(DATA / "io_results.csv", on_conflict=policy)
+    assert [r.spillage for r in rows if r.id == "dup-diff"] == [kept]
+    dup = [r for r in rejections if "dup-diff" in r.reason]
+    assert len(dup) == 1 and f"kept the {policy} one" in dup[0].reason
+
+
+def test_unknown_policy_is_an_error():
+    with pytest.raises(InputError, match="unknown conflict policy"):
+        read_results(DATA / "io_results.csv", on_conflict="mean")
+
+
+def test_reading_twice_gives_the_same_result():
+    assert read_results(DATA / "io_results.csv") == read_results(DATA / "io_results.csv")
+
+
+def test_json_rows_and_rejections():
+    rows, rejections = read_results(DATA / "io_results.json")
+    assert [(r.id, r.spillage, r.kmesh) for r in rows] == [("MoS2", 0.12, "12x12x1"), ("WTe2", 0.83, None)]
+    got = _by_line(rejections)
+    assert got["[2]"].reason.startswith("spillage is not finite")
+    assert got["[3]"].reason.startswith("spillage is not a number") and got["[3]"].value == "True"
+    assert "unsafe characters '/'" in got["[4]"].reason
+    assert got["[5]"].reason == "entry is not a JSON object"
+
+
+def test_non_utf8_line_is_rejected_and_others_land():
+    rows, rejections = read_results(DATA / "io_results_latin1.csv")
+    assert [r.id for r in rows] == ["A1", "A3"]
+    (rejection,) = rejections
+    assert rejection.line == 3
+    assert rejection.reason.startswith("bytes that are not UTF-8 at byte offset 24 (byte 0xff); the line was skipped")
+
+
+def test_undecodable_file_names_byte_offset():
+    with pytest.raises(InputError, match=r"io_results_utf16.csv:1: bytes that are not UTF-8 at byte offset 0 \(byte 0xff\)"):
+        read_results(DATA / "io_results_utf16.csv")
+
+
+def test_non_utf8_json_names_byte_offset(tmp_path):
+    path = tmp_path / "r.json"
+    path.write_bytes(b'[{"id": "A", "spillage": 0.1, "notes": "caf\xe9"}]')
+    with pytest.raises(InputError, match=r"r.json:1: bytes that are not UTF-8 at byte offset 43 \(byte 0xe9\)"):
+        read_results(path)
+
+
+@pytest.mark.parametrize(
+    ("content", "message"),
+    [
+        ("name,spillage\nA,0.1\n", r"no 'id' column"),
+        ("id,value\nA,0.1\n", r"no 'spillage' column"),
+        ("id,spillage,ID\nA,0.1,B\n", r"column 'id' appears twice"),
+    ],
+)
+def test_missing_or_repeated_columns(tmp_path, content, message):
+    path = tmp_path / "r.csv"
+    path.write_text(content)
+    with pytest.raises(InputError, match=message):
+        read_results(path)
+
+
+def test_invalid_json_is_an_error(tmp_path):
+    path = tmp_path / "r.json"
+    path.write_text('[{"id": "A", "spillage": 0.1,}]')
+    with pytest.raises(InputError, match=r"r.json:1: invalid JSON"):
+        read_results(path)
+
+
+def test_row_with_extra_fields_is_rejected(tmp_path):
+    path = tmp_path / "r.csv"
+    path.write_text("id,spillage\nA,0.1\nB,0.2,extra\nC,0.3\n")
+    rows, rejections = read_results(path)
+    assert [r.id for r in rows] == ["A", "C"]
+    assert rejections[0].line == 3 and "row has 3 fields but the header has 2" in rejections[0].reason
+
+
+def test_unknown_ids_helper():
+    rows, _ = read_results(DATA / "io_results.json")
+    (rejection,) = unknown_ids(rows, ["MoS2"])
+    assert rejection.path == str(DATA / "io_results.json") and rejection.line == "[1]"
+    assert rejection.value == "WTe2" and "not a candidate of this campaign" in rejection.reason
+    assert unknown_ids(rows, {"MoS2", "WTe2"}) == []
+
+
+def test_json_top_level_must_be_list(tmp_path):
+    path = tmp_path / "r.json"
+    path.write_text(json.dumps({"id": "A", "spillage": 0.1}))
+    with pytest.raises(InputError, match="JSON document is not a list of results"):
+        read_results(path)
