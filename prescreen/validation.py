@@ -39,6 +39,9 @@ __all__ = [
     "LOG_LOSS_CLIP",
     "parse_formulas",
     "chemistry_keys",
+    "integer_reduced_formula",
+    "MAX_FORMULA_MULTIPLIER",
+    "FORMULA_INTEGER_TOL",
     "formula_groups",
     "grouped_folds",
     "classification_metrics",
@@ -48,8 +51,16 @@ __all__ = [
 ]
 
 #: Keys a grouping can use: pymatgen's ``Composition.chemical_system`` (e.g. ``"Mo-S"``)
-#: and ``Composition.reduced_formula`` (e.g. ``"MoS2"``).
+#: and the reduced formula (e.g. ``"MoS2"``, see :func:`integer_reduced_formula`).
 GROUP_KEYS: tuple[str, ...] = ("chemsys", "reduced_formula")
+
+#: Largest factor tried to turn fractional amounts into integers (``Fe0.5O0.5`` -> ``FeO``,
+#: ``Mo0.3333S0.6667`` -> ``MoS2``); common practice.
+MAX_FORMULA_MULTIPLIER: int = 24
+
+#: Absolute tolerance on "integer" after scaling (atoms per formula unit); hand-written
+#: fractional formulas carry three or four decimals (``0.3333``), common practice.
+FORMULA_INTEGER_TOL: float = 1e-3
 
 #: Equal-width probability bins of the expected calibration error (common practice:
 #: Naeini et al. 2015 and Guo et al., ICML 2017, report ECE with 10 or 15 bins).
@@ -78,10 +89,11 @@ def parse_formulas(formulas: Sequence[str]) -> list["Composition"]:
     Raises
     ------
     InputError
-        A formula pymatgen cannot read, or one with no atoms; names the entry (0-based
-        position) and the formula.
+        A formula pymatgen cannot read, one with no atoms, or one with a symbol that is
+        not an element (pymatgen would read ``"Xx2"`` as a dummy species); names the
+        entry (0-based position) and the formula.
     """
-    from pymatgen.core import Composition
+    from pymatgen.core import Composition, Element
 
     cache: dict[str, Composition] = {}
     out = []
@@ -91,6 +103,9 @@ def parse_formulas(formulas: Sequence[str]) -> list["Composition"]:
                 comp = Composition(str(formula))
                 if comp.num_atoms <= 0:
                     raise ValueError("no atoms")
+                unknown = [str(el) for el in comp.elements if not isinstance(el, Element)]
+                if unknown:  # pymatgen reads "Xx2" as a dummy species
+                    raise ValueError(f"not a chemical element: {', '.join(unknown)}")
             except Exception as exc:  # pymatgen raises several types for bad formulas
                 raise InputError(
                     f"cannot read the formula: {exc}",
@@ -118,8 +133,28 @@ def chemistry_keys(formulas: Sequence[str]) -> pd.DataFrame:
     """
     comps = parse_formulas(formulas)
     return pd.DataFrame(
-        [(c.reduced_formula, c.chemical_system) for c in comps], columns=["reduced_formula", "chemsys"]
+        [(integer_reduced_formula(c), c.chemical_system) for c in comps], columns=["reduced_formula", "chemsys"]
     )
+
+
+def integer_reduced_formula(comp: "Composition") -> str:
+    """pymatgen's reduced formula after scaling fractional amounts to integers.
+
+    pymatgen keeps ``Composition("Fe0.5O0.5").reduced_formula == "Fe0.5O0.5"`` while
+    ``Composition("FeO").reduced_formula == "FeO"``; for grouping these must agree. The
+    amounts are multiplied by the smallest factor up to :data:`MAX_FORMULA_MULTIPLIER`
+    that makes all of them integers within :data:`FORMULA_INTEGER_TOL`; formulas with no
+    such factor keep pymatgen's reduced formula of the fractional composition.
+    """
+    from pymatgen.core import Composition
+
+    amounts = np.array(list(comp.values()), dtype=np.float64)
+    for factor in range(1, MAX_FORMULA_MULTIPLIER + 1):
+        scaled = amounts * factor
+        if np.all(np.abs(scaled - np.round(scaled)) <= FORMULA_INTEGER_TOL):
+            whole = Composition({el: round(a * factor) for el, a in comp.items()})
+            return whole.reduced_formula
+    return comp.fractional_composition.reduced_formula
 
 
 def formula_groups(formulas: Sequence[str], *, by: Sequence[str] = GROUP_KEYS) -> NDArray[np.intp]:
