@@ -296,8 +296,13 @@ class SPSquare(_LatticeModel):
     Four electrons per cell (the two p bands of each spin). Basis (s, p_x, p_y) x
     (up, down), orbital-major.
 
-    Without spin-orbit coupling the defaults give a trivial insulator whose smallest gap,
-    ``gap_gamma = E_s(Gamma) - E_p(Gamma)``, is at Gamma, where s and p do not hybridise.
+    Without spin-orbit coupling the defaults give a trivial insulator whose smallest gap
+    (direct and indirect), ``gap_gamma = E_s(Gamma) - E_p(Gamma)``, is at Gamma, where s
+    and p do not hybridise. The defaults keep sigma bonds only (V_pp_pi = 0, as in the
+    p_x/p_y honeycomb of Wu, Bergman, Balents and Das Sarma, PRL 99, 070401 (2007),
+    recalled from memory):
+    a pi bond would lift the p maximum to X above its value at Gamma, and the model would
+    turn semimetallic (bands overlapping) near the transition.
     For ``lambda_so > 2 * gap_gamma`` the upper p Kramers pair (j_z = +-3/2, like the
     heavy holes of Bernevig, Hughes and Zhang, Science 314, 1757 (2006)) lies above the
     s pair at Gamma: the inverted band order that BHZ show makes a quantum spin Hall
@@ -313,12 +318,12 @@ class SPSquare(_LatticeModel):
         Spin-orbit constant of the p shell.
     """
 
-    e_s: float = 3.1
+    e_s: float = 3.3
     e_p: float = 0.0
     v_sss: float = -0.5
     v_sps: float = 0.5
     v_pps: float = 0.5
-    v_ppp: float = -0.1
+    v_ppp: float = 0.0
     lambda_so: float = 0.0
 
     n_occupied = 4
