@@ -1,0 +1,150 @@
+"""Cost model: shape, fit against scikit-learn least squares, interval, overrides, JSON."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pandas as pd
+import pytest
+from ase.build import mx2
+from ase.calculators.calculator import kptdensity2monkhorstpack
+from pymatgen.io.ase import AseAtomsAdaptor
+from sklearn.linear_model import LinearRegression
+
+from prescreen.acquire.cost import (
+    COST_TERMS,
+    DEFAULT_EXPONENTS,
+    CostModel,
+    descriptors_for_structure,
+    kpoints_for_cell,
+    valence_electrons,
+)
+from prescreen.errors import InputError
+
+
+def _records(n, seed=0, exps=(1.7, 1.1, 0.8, 0.4), c0=-9.0, sigma=0.2):
+    """Synthetic wall times from a known power law (generated, not reference data)."""
+    rng = np.random.default_rng(seed)
+    table = pd.DataFrame({
+        "n_electrons": rng.integers(6, 120, n).astype(float),
+        "n_kpoints": rng.integers(1, 200, n).astype(float),
+        "volume": rng.uniform(80, 900, n),
+        "n_atoms": rng.integers(1, 20, n).astype(float),
+    })
+    logt = c0 + np.log(table[list(COST_TERMS)].to_numpy()) @ np.asarray(exps)
+    table["core_hours"] = np.exp(logt + rng.normal(0, sigma, n))
+    return table
+
+
+def test_default_shape_scales_as_documented():
+    base = pd.DataFrame({"n_electrons": [26.0], "n_kpoints": [20.0], "volume": [200.0], "n_atoms": [3.0]})
+    model = CostModel()
+    t0 = model.predict(base)[0]
+    for term, exponent in DEFAULT_EXPONENTS.items():
+        doubled = base.copy()
+        doubled[term] *= 2
+        assert model.predict(doubled)[0] / t0 == pytest.approx(2.0**exponent)
+    # the SOC run costs soc_factor times the scalar run: total scales with (1 + soc_factor)
+    assert model.with_coefficients(soc_factor=1.0).predict(base)[0] / t0 == pytest.approx(2 / 4)
+    assert model.scaled(2.5).predict(base)[0] == pytest.approx(2.5 * t0)
+
+
+def test_unpenalised_fit_equals_ordinary_least_squares():
+    rec = _records(60)
+    fitted = CostModel().fit(rec, ridge=0.0)
+    # reference: scikit-learn LinearRegression on the log-transformed columns
+    ols = LinearRegression().fit(np.log(rec[list(COST_TERMS)]), np.log(rec["core_hours"]))
+    assert [fitted.exponents[t] for t in COST_TERMS] == pytest.approx(ols.coef_, abs=1e-8)
+    assert np.log(fitted.predict(rec)) == pytest.approx(ols.predict(np.log(rec[list(COST_TERMS)])), abs=1e-8)
+    assert fitted.n_fitted == 60
+
+
+def test_fit_recovers_a_known_power_law_and_interval_covers():
+    fitted = CostModel().fit(_records(400, seed=1))
+    assert [fitted.exponents[t] for t in COST_TERMS] == pytest.approx([1.7, 1.1, 0.8, 0.4], abs=0.05)
+    assert fitted.log_sigma == pytest.approx(0.2, rel=0.15)
+    fresh = _records(2000, seed=2)
+    pred, low, high = fitted.predict_interval(fresh, level=0.9)
+    inside = np.mean((fresh["core_hours"] >= low) & (fresh["core_hours"] <= high))
+    assert 0.86 <= inside <= 0.94
+    assert np.all(low < pred) and np.all(pred < high)
+
+
+def test_few_records_move_the_scale_not_the_shape():
+    rec = _records(2, seed=3)
+    fitted = CostModel().fit(rec, ridge=1e6)
+    assert [fitted.exponents[t] for t in COST_TERMS] == pytest.approx(
+        [DEFAULT_EXPONENTS[t] for t in COST_TERMS], abs=1e-3)
+    assert fitted.log_sigma == CostModel().log_sigma  # too few records for a spread
+
+
+def test_json_round_trip_and_user_override(tmp_path):
+    model = CostModel().fit(_records(30)).with_coefficients(exponents={"n_atoms": 3.0}).scaled(1.5)
+    path = tmp_path / "cost.json"
+    model.save(path)
+    again = CostModel.load(path)
+    rec = _records(5, seed=9)
+    assert again.predict(rec).tobytes() == model.predict(rec).tobytes()
+    data = json.loads(path.read_text())
+    data["multiplier"] = -2
+    path.write_text(json.dumps(data))
+    with pytest.raises(InputError, match=r"cost\.json:multiplier: cost multiplier must be > 0"):
+        CostModel.load(path)
+    data["multiplier"] = 1
+    data["exponents"]["n_bands"] = 1
+    path.write_text(json.dumps(data))
+    with pytest.raises(InputError, match="exponents.n_bands: unknown cost term"):
+        CostModel.load(path)
+    path.write_text("{not json")
+    with pytest.raises(InputError, match="not valid JSON"):
+        CostModel.load(path)
+
+
+@pytest.mark.parametrize(
+    "column, value, match",
+    [("volume", 0.0, "cost descriptor volume must be > 0"),
+     ("core_hours", -1.0, "core_hours must be > 0"),
+     ("n_kpoints", np.nan, "cost descriptor n_kpoints")],
+)
+def test_bad_records_are_reported_with_the_row(column, value, match):
+    rec = _records(4)
+    rec.index = ["a", "b", "c", "d"]
+    rec.loc["c", column] = value
+    with pytest.raises(InputError, match=f"times.csv:c: {match}"):
+        CostModel().fit(rec, path="times.csv")
+
+
+def test_unknown_term_override_is_refused():
+    with pytest.raises(InputError, match="unknown cost term"):
+        CostModel().with_coefficients(exponents={"ecut": 1.0})
+
+
+@pytest.mark.parametrize("density", [2.0, 3.5, 6.0])
+@pytest.mark.parametrize("formula, a", [("MoS2", 3.18), ("WSe2", 3.32)])
+def test_kpoints_match_ase(formula, a, density):
+    atoms = mx2(formula=formula, kind="2H", a=a, vacuum=9.0)
+    atoms.pbc = (True, True, False)
+    # reference: ASE kptdensity2monkhorstpack (same density convention)
+    ref = np.prod(kptdensity2monkhorstpack(atoms, kptdensity=density, even=False))
+    structure = AseAtomsAdaptor.get_structure(atoms)
+    assert kpoints_for_cell(structure, density) == ref
+    desc = descriptors_for_structure(structure, density)
+    assert desc["area"] == pytest.approx(a * a * np.sqrt(3) / 2)  # hexagonal cell area
+    assert desc["volume"] == pytest.approx(atoms.get_volume())  # reference: ASE
+    assert desc["n_atoms"] == 3.0
+
+
+# one element per rule: s/p main group, p-block over a filled d shell, transition metal,
+# p-block over filled 4f and 5d, 5d metal over filled 4f (mendeleev is slow: ~0.5 s each)
+@pytest.mark.parametrize("symbol", ["S", "Se", "Mo", "Bi", "W"])
+def test_valence_electrons_match_mendeleev(symbol):
+    from mendeleev import element
+
+    # reference: mendeleev Element.nvalence()
+    assert valence_electrons(symbol) == element(symbol).nvalence()
+
+
+def test_unknown_element():
+    with pytest.raises(InputError, match="unknown element"):
+        valence_electrons("Xx")
