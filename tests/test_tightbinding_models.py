@@ -153,6 +153,15 @@ def test_kane_mele_rashba_published_points(lambda_v: float, lambda_r: float, z2:
         assert (soc_spillage(model, MESH).max >= SPILLAGE_THRESHOLD) == bool(z2)
 
 
+@pytest.mark.parametrize("factor", [1.1, 1.3])
+def test_kane_mele_gap_closes_above_the_rashba_limit(factor: float) -> None:
+    # Kane and Mele, PRL 95, 226801 (2005) (from memory): at lambda_v = 0 the gap closes
+    # for lambda_R > 2 sqrt(3) lambda_SO (at K, which the Wilson loops sample)
+    model = KaneMele(lambda_so=LAMBDA_SO, lambda_r=factor * 2 * np.sqrt(3) * LAMBDA_SO)
+    with pytest.raises(InputError, match="bands touch"):
+        z2_invariant(model.hamiltonian, 2)
+
+
 @pytest.mark.parametrize("lambda_r", [0.03, 0.1, 0.15, 0.2])
 @pytest.mark.parametrize("lambda_v", [0.05, 0.15, 0.25, 0.35])
 def test_spillage_agrees_with_z2_with_rashba(lambda_v: float, lambda_r: float) -> None:
