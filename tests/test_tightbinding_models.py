@@ -155,7 +155,8 @@ def test_kane_mele_rashba_published_points(lambda_v: float, lambda_r: float, z2:
 
 @pytest.mark.parametrize("factor", [1.1, 1.3])
 def test_kane_mele_gap_closes_above_the_rashba_limit(factor: float) -> None:
-    # Kane and Mele, PRL 95, 226801 (2005) (from memory): at lambda_v = 0 the gap closes
+    # Kane and Mele, PRL 95, 226801 (2005) and Fig. 1 of PRL 95, 146802 (2005) (both from
+    # memory): at lambda_v = 0 the gap closes
     # for lambda_R > 2 sqrt(3) lambda_SO (at K, which the Wilson loops sample)
     model = KaneMele(lambda_so=LAMBDA_SO, lambda_r=factor * 2 * np.sqrt(3) * LAMBDA_SO)
     with pytest.raises(InputError, match="bands touch"):
