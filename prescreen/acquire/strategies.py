@@ -198,7 +198,7 @@ def random_selection(view: PoolView, budget: float, rng: np.random.Generator) ->
     """Uniformly random order, first fit within the budget (the reference)."""
     scores = M.random_score(view, rng)
     sel = _select(view, scores, budget, rng, diversity=0.0, clusters=None)
-    return _propose(view, scores, sel, "random", budget)
+    return _propose(view, scores, sel, "random_selection", budget)
 
 
 @dataclass(frozen=True)
