@@ -97,6 +97,9 @@ class LayerCheck:
         For structures without a 2D cluster: the lattice axis with the widest gap.
     reason
         Plain-language explanation of the status.
+    normal
+        Cartesian unit vector normal to the 2D layer(s), shape (3,); ``None`` when there
+        is no 2D cluster.
     """
 
     status: Status
@@ -106,6 +109,7 @@ class LayerCheck:
     vacuum_A: float
     axis: int
     reason: str
+    normal: tuple[float, float, float] | None = None
 
 
 def _arrays(structure: Any) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
@@ -289,8 +293,11 @@ def check_monolayer(
     n_layers = len(layer_ids)
     n_other = n_comp - n_layers
 
+    g = h @ np.linalg.inv(lattice).T
+    normal = tuple(float(x) for x in g / np.linalg.norm(g))
+
     def result(status: Status, reason: str) -> LayerCheck:
-        return LayerCheck(status, dim, n_comp, thickness, vacuum, axis, reason)
+        return LayerCheck(status, dim, n_comp, thickness, vacuum, axis, reason, normal)
 
     if any(not np.array_equal(other, h) for other, _ in normals[1:]):
         return result("ambiguous", f"{n_layers} 2D layers that are not parallel")
