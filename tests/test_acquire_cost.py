@@ -50,6 +50,16 @@ def test_default_shape_scales_as_documented():
     assert model.scaled(2.5).predict(base)[0] == pytest.approx(2.5 * t0)
 
 
+def test_lcao_preset_is_cubic_in_atoms():
+    base = pd.DataFrame({"n_electrons": [26.0], "n_kpoints": [20.0], "volume": [200.0], "n_atoms": [3.0]})
+    model = CostModel.for_code("lcao")
+    assert model.predict(base)[0] == pytest.approx(CostModel().predict(base)[0])  # same reference cell
+    bigger = base.assign(n_atoms=6.0, volume=400.0, n_electrons=52.0)
+    assert model.predict(bigger)[0] / model.predict(base)[0] == pytest.approx(8.0)
+    with pytest.raises(InputError, match="unknown code kind"):
+        CostModel.for_code("tight-binding")
+
+
 def test_unpenalised_fit_equals_ordinary_least_squares():
     rec = _records(60)
     fitted = CostModel().fit(rec, ridge=0.0)

@@ -41,6 +41,7 @@ __all__ = [
     "CostModel",
     "COST_TERMS",
     "DEFAULT_EXPONENTS",
+    "LCAO_EXPONENTS",
     "DEFAULT_SOC_FACTOR",
     "DEFAULT_LOG_SIGMA",
     "DEFAULT_RIDGE",
@@ -55,6 +56,12 @@ COST_TERMS: tuple[str, ...] = ("n_electrons", "n_kpoints", "volume", "n_atoms")
 #: Default exponents (plane-wave scaling, see module docstring; common practice).
 DEFAULT_EXPONENTS: dict[str, float] = {"n_electrons": 2.0, "n_kpoints": 1.0, "volume": 1.0,
                                        "n_atoms": 0.0}
+
+#: Asymptotic LCAO shape: dense diagonalisation ~ N_basis^3 per k-point with N_basis
+#: proportional to the number of atoms (common practice). For small cells the real-space
+#: grid work (~ volume, vacuum included) can dominate instead; fit to recorded times.
+LCAO_EXPONENTS: dict[str, float] = {"n_electrons": 0.0, "n_kpoints": 1.0, "volume": 0.0,
+                                    "n_atoms": 3.0}
 
 #: Cost of the SOC run relative to the run without SOC. Two-component spinors double the
 #: basis and make the Hamiltonian complex; 2-4x is common practice (from memory); 3 is used.
@@ -103,6 +110,18 @@ class CostModel:
     n_fitted: int = 0
 
     # ------------------------------------------------------------------ build / override
+    @classmethod
+    def for_code(cls, kind: str) -> "CostModel":
+        """Default model with the scaling shape of ``"plane-wave"`` or ``"lcao"`` codes.
+
+        The intercept puts the reference cell of the module docstring at 1 core-hour.
+        """
+        shapes = {"plane-wave": DEFAULT_EXPONENTS, "lcao": LCAO_EXPONENTS}
+        if kind not in shapes:
+            raise InputError("unknown code kind", value=kind, expected="'plane-wave' or 'lcao'")
+        exps = dict(shapes[kind])
+        return cls(intercept=_default_intercept(exps), exponents=exps)
+
     def with_coefficients(self, *, intercept: float | None = None,
                           exponents: dict[str, float] | None = None,
                           soc_factor: float | None = None) -> "CostModel":
