@@ -117,10 +117,11 @@ def _arrays(structure: Any) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndar
     if hasattr(structure, "get_atomic_numbers"):  # ASE Atoms
         return (np.asarray(structure.cell[:], float), np.asarray(structure.positions, float),
                 np.asarray(structure.get_atomic_numbers(), int), np.ones(3, dtype=np.int64))
-    if not structure.is_ordered:
+    try:
+        numbers = np.fromiter((site.specie.Z for site in structure), dtype=int, count=len(structure))
+    except AttributeError as exc:  # Site.specie exists only for fully occupied sites
         raise InputError("structure has partially occupied sites", value=structure.composition.formula,
-                         expected="an ordered structure")
-    numbers = np.fromiter((site.specie.Z for site in structure), dtype=int, count=len(structure))
+                         expected="an ordered structure") from exc
     return (np.asarray(structure.lattice.matrix, float), np.asarray(structure.cart_coords, float), numbers,
             np.ones(3, dtype=np.int64))
 
@@ -180,24 +181,34 @@ def component_dimensionality(
         Distinct non-zero cycle translations (in lattice-vector units) of each cluster;
         the matrix rank of cluster ``c``'s array is its dimensionality.
     """
-    from scipy.sparse import csr_matrix
-    from scipy.sparse.csgraph import breadth_first_order, connected_components
-
-    mask = i != j
-    graph = csr_matrix((np.ones(int(mask.sum())), (i[mask], j[mask])), shape=(n_atoms, n_atoms))
-    n_comp, labels = connected_components(graph, directed=False)
-    keys = i * n_atoms + j
-    unique_keys, first = np.unique(keys, return_index=True)
-    offsets = np.zeros((n_atoms, 3), dtype=np.int64)
-    roots = np.unique(labels, return_index=True)[1]
-    for root in roots:
-        order, pred = breadth_first_order(graph, int(root), directed=False, return_predecessors=True)
-        if len(order) > 1:
-            nodes = order[1:]
-            edge = first[np.searchsorted(unique_keys, pred[nodes] * n_atoms + nodes)]
-            step = images[edge]
-            for node, parent, delta in zip(nodes.tolist(), pred[nodes].tolist(), step):
-                offsets[node] = offsets[parent] + delta
+    # Depth-first walk over the bonds sorted by first atom: a spanning forest that assigns
+    # each atom the lattice image it sits in when its cluster is unwrapped.
+    order = np.argsort(i, kind="stable")
+    starts = np.searchsorted(i[order], np.arange(n_atoms + 1)).tolist()
+    targets = j[order].tolist()
+    steps = images[order].tolist()
+    labels_list = [-1] * n_atoms
+    offsets_list: list[list[int]] = [[0, 0, 0]] * n_atoms
+    n_comp = 0
+    for root in range(n_atoms):
+        if labels_list[root] >= 0:
+            continue
+        labels_list[root] = n_comp
+        offsets_list[root] = [0, 0, 0]
+        stack = [root]
+        while stack:
+            u = stack.pop()
+            ou = offsets_list[u]
+            for e in range(starts[u], starts[u + 1]):
+                v = targets[e]
+                if labels_list[v] < 0:
+                    labels_list[v] = n_comp
+                    step = steps[e]
+                    offsets_list[v] = [ou[0] + step[0], ou[1] + step[1], ou[2] + step[2]]
+                    stack.append(v)
+        n_comp += 1
+    labels = np.array(labels_list, dtype=np.int64)
+    offsets = np.array(offsets_list, dtype=np.int64).reshape(n_atoms, 3)
     cycles = offsets[i] + images - offsets[j]
     translations = []
     edge_labels = labels[i]
