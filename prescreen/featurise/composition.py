@@ -279,7 +279,9 @@ class IonicCharacterFeaturiser:
         ``sum_{i<j} x_i x_j I_ij`` over distinct pairs, as matminer ``IonProperty``
         computes it (Ward et al. 2016 write the sum over all ordered pairs, twice this).
     ``electronegativity std``
-        composition-weighted standard deviation of X (matminer ``PropertyStats.std_dev``).
+        composition-weighted (population) standard deviation of X. matminer's
+        ``PropertyStats.std_dev`` applies a reliability-weight correction that depends on
+        how the formula is scaled (FeO vs Fe2O2); that is deliberately not mirrored.
     """
 
     name = "ionic_character"
