@@ -248,3 +248,28 @@ def test_ase_db_does_not_modify_foreign_sqlite(tmp_path):
     (rejection,) = list(iter_candidates(path))
     assert "not an ASE database" in rejection.reason
     assert path.read_bytes() == before
+
+
+def test_non_utf8_structure_file_names_byte_offset(tmp_path):
+    path = tmp_path / "latin.cif"
+    text = (GOOD / "MoS2.cif").read_bytes()
+    path.write_bytes(text.replace(b"# generated using pymatgen", b"# caf\xe9"))
+    (rejection,) = list(iter_candidates(path))
+    assert rejection.line == 1
+    assert rejection.reason.startswith("bytes that are not UTF-8 at byte offset 5 (byte 0xe9)")
+
+
+def test_formula_csv_without_formula_column(tmp_path):
+    path = tmp_path / "f.csv"
+    path.write_text("id,composition\na,MoS2\n")
+    (rejection,) = list(iter_candidates(path))
+    assert rejection.reason == "no formula column 'formula' in the header"
+    candidates, rejections = _split(iter_candidates(path, formula_column="Composition"))
+    assert [(c.id, c.formula) for c in candidates] == [("a", "MoS2")] and rejections == []
+
+
+def test_formula_csv_without_id_column_numbers_rows(tmp_path):
+    path = tmp_path / "list.csv"
+    path.write_text("formula\nMoS2\nWTe2\n")
+    candidates, _ = _split(iter_candidates(path))
+    assert [c.id for c in candidates] == ["list-1", "list-2"]

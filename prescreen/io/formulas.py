@@ -17,7 +17,7 @@ from prescreen.candidate import Candidate
 from prescreen.errors import InputError, Rejection
 from prescreen.io.ids import validate_id
 
-__all__ = ["CsvRecord", "iter_csv_records", "iter_formula_csv", "parse_formula"]
+__all__ = ["CsvRecord", "iter_csv_records", "iter_formula_csv", "parse_formula", "read_utf8_text"]
 
 #: ``(line, fields)``: 1-based physical line where the record starts, and the record
 #: as a mapping from (stripped) header name to (stripped) cell text.
@@ -37,6 +37,26 @@ def _undecodable(path: Path, lineno: int, offset: int, raw: bytes, exc: UnicodeD
         value=repr(snippet)[:_SHOWN_BYTES * 2],
         expected="a UTF-8 text file",
     )
+
+
+def read_utf8_text(path: str | Path, *, expected: str = "a UTF-8 text file") -> str:
+    """Read a whole (small) text file as UTF-8, dropping a byte-order mark.
+
+    Raises
+    ------
+    InputError
+        Naming the line and byte offset of the first byte that is not UTF-8.
+    """
+    path = Path(path)
+    data = path.read_bytes()
+    try:
+        return data.decode("utf-8-sig")
+    except UnicodeDecodeError as exc:
+        raise InputError(
+            f"bytes that are not UTF-8 at byte offset {exc.start} (byte {data[exc.start]:#04x})",
+            path=path, line=data.count(b"\n", 0, exc.start) + 1,
+            value=data[max(exc.start - 10, 0) : exc.start + 10], expected=expected,
+        ) from exc
 
 
 def iter_csv_records(path: str | Path) -> Iterator[CsvRecord | Rejection]:

@@ -29,7 +29,7 @@ from pathlib import Path
 from typing import Any, Literal
 
 from prescreen.errors import InputError, Rejection
-from prescreen.io.formulas import iter_csv_records
+from prescreen.io.formulas import iter_csv_records, read_utf8_text
 from prescreen.io.ids import validate_id
 
 __all__ = ["RESULT_COLUMNS", "ResultRow", "read_results", "unknown_ids"]
@@ -161,13 +161,7 @@ def _require(mapping: dict[str, str], path: Path) -> None:
 
 
 def _iter_json(path: Path) -> Iterable[tuple[int | str, str, dict[str, Any]] | Rejection]:
-    data = path.read_bytes()
-    try:
-        text = data.decode("utf-8-sig")
-    except UnicodeDecodeError as exc:
-        raise InputError(f"bytes that are not UTF-8 at byte offset {exc.start} (byte {data[exc.start]:#04x})",
-                         path=path, line=data.count(b"\n", 0, exc.start) + 1,
-                         value=data[max(exc.start - 10, 0) : exc.start + 10], expected="a UTF-8 JSON file") from exc
+    text = read_utf8_text(path, expected="a UTF-8 JSON file")
     try:
         document = json.loads(text)
     except json.JSONDecodeError as exc:

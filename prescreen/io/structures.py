@@ -44,7 +44,7 @@ import numpy as np
 
 from prescreen.candidate import Candidate
 from prescreen.errors import InputError, Rejection
-from prescreen.io.formulas import iter_formula_csv
+from prescreen.io.formulas import iter_formula_csv, read_utf8_text
 from prescreen.io.ids import validate_id
 
 __all__ = ["FORMAT_BY_SUFFIX", "detect_format", "iter_candidates", "read_poscar"]
@@ -191,19 +191,6 @@ def _candidate(ident: str, structure: Any, source: str, *, path: Path, line: int
                      structure=structure, meta=meta or {})
 
 
-def _read_text(path: Path) -> str:
-    data = path.read_bytes()
-    try:
-        return data.decode("utf-8-sig")
-    except UnicodeDecodeError as exc:
-        line = data.count(b"\n", 0, exc.start) + 1
-        raise InputError(
-            f"bytes that are not UTF-8 at byte offset {exc.start} (byte {data[exc.start]:#04x})",
-            path=path, line=line, value=data[max(exc.start - 10, 0) : exc.start + 10],
-            expected="a UTF-8 text file",
-        ) from exc
-
-
 def _warning_text(caught: list[warnings.WarningMessage]) -> str:
     messages = []
     for item in caught:
@@ -219,7 +206,7 @@ def _warning_text(caught: list[warnings.WarningMessage]) -> str:
 def _iter_cif(path: Path) -> Iterator[Candidate | Rejection]:
     from pymatgen.io.cif import CifParser
 
-    text = _read_text(path)
+    text = read_utf8_text(path)
     lines = text.splitlines(keepends=True)
     starts = [k for k, line in enumerate(lines) if line.lstrip().lower().startswith("data_")]
     if not starts:
@@ -364,7 +351,7 @@ def read_poscar(text: str, *, path: str | Path = "<string>") -> Any:
 
 def _iter_poscar(path: Path) -> Iterator[Candidate | Rejection]:
     try:
-        structure = read_poscar(_read_text(path), path=path)
+        structure = read_poscar(read_utf8_text(path), path=path)
         yield _candidate(path.stem or path.name, structure, str(path), path=path, line=None)
     except InputError as exc:
         yield Rejection.from_error(exc)
@@ -374,7 +361,7 @@ def _iter_poscar(path: Path) -> Iterator[Candidate | Rejection]:
 
 
 def _iter_extxyz(path: Path) -> Iterator[Candidate | Rejection]:
-    text = _read_text(path)
+    text = read_utf8_text(path)
     lines = text.splitlines(keepends=True)
     k = 0
     frame = 0
@@ -488,7 +475,7 @@ def _iter_ase_db(path: Path) -> Iterator[Candidate | Rejection]:
 def _iter_pymatgen_json(path: Path) -> Iterator[Candidate | Rejection]:
     from pymatgen.core import Structure
 
-    text = _read_text(path)
+    text = read_utf8_text(path)
     try:
         data = json.loads(text)
     except json.JSONDecodeError as exc:
