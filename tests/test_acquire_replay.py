@@ -135,3 +135,27 @@ def test_summary_baseline_columns_and_plot(data, tmp_path):
 def test_bad_replay_arguments(data, kw, match):
     with pytest.raises(InputError, match=match):
         _run(data, st.greedy_probability, **kw)
+
+
+def test_median_curve_never_decreases(data):
+    from prescreen.acquire.replay import _median_curve
+
+    curves = _run(data, st.random_selection, seeds=(0, 1, 2), until=0.5)
+    grid = np.linspace(0, curves["n_runs"].max(), 200)
+    med, lo, hi = _median_curve(curves, "n_runs", grid)
+    ok = ~np.isnan(med)
+    assert ok.sum() > 50 and np.all(np.diff(med[ok]) >= 0)
+    assert np.all(lo[ok] <= med[ok]) and np.all(med[ok] <= hi[ok])
+
+
+def test_benchmark_says_when_labels_are_missing(tmp_path, capsys):
+    import importlib.util
+    from pathlib import Path
+
+    spec = importlib.util.spec_from_file_location(
+        "bench_replay", Path(__file__).resolve().parents[1] / "benchmarks" / "replay.py")
+    bench = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(bench)
+    assert bench.main([str(tmp_path / "plot.png"), "--data", str(tmp_path)]) == 2
+    assert "NOT RUN" in capsys.readouterr().out
+    assert not (tmp_path / "plot.png").exists()

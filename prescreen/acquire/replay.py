@@ -340,22 +340,20 @@ def summarise(curves: pd.DataFrame, y, *, fractions: Sequence[float] = (0.5, 0.8
 
 
 def _median_curve(block: pd.DataFrame, xcol: str, grid: np.ndarray) -> tuple[np.ndarray, ...]:
+    """Median, min and max over seeds of step curves on ``grid``; NaN once any seed ended."""
     curves = []
     for _, g in block.groupby("seed", sort=True):
         g = g.sort_values(xcol)
         pos = np.searchsorted(g[xcol].to_numpy(), grid, side="right") - 1
         vals = np.where(pos >= 0, g["hits"].to_numpy()[np.maximum(pos, 0)], 0.0)
-        vals = np.where(grid > g[xcol].max(), np.nan, vals)  # campaign ended
-        curves.append(vals)
+        curves.append(np.where(grid > g[xcol].max(), np.nan, vals))
     A = np.vstack(curves)
-    with np.errstate(all="ignore"):
-        ok = np.sum(~np.isnan(A), axis=0) > 0
-        med = np.full(grid.shape, np.nan)
-        lo = med.copy()
-        hi = med.copy()
-        med[ok] = np.nanmedian(A[:, ok], axis=0)
-        lo[ok] = np.nanmin(A[:, ok], axis=0)
-        hi[ok] = np.nanmax(A[:, ok], axis=0)
+    live = ~np.isnan(A).any(axis=0)
+    med = np.full(grid.shape, np.nan)
+    lo, hi = med.copy(), med.copy()
+    med[live] = np.median(A[:, live], axis=0)
+    lo[live] = A[:, live].min(axis=0)
+    hi[live] = A[:, live].max(axis=0)
     return med, lo, hi
 
 
