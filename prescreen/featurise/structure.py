@@ -217,7 +217,7 @@ def monolayer_features(
     lg, has_inv, has_mirror = _layer_symmetry(matrix, inv, frac, numbers, axis, normal, symprec)
     return np.array(
         [n_atoms, thickness, buckling, height_std, vacuum, area / n_atoms,
-         area * formula_units / n_atoms, la, lb, gamma, cn.mean(), cn.min(), cn.max(),
+         area / formula_units, la, lb, gamma, cn.mean(), cn.min(), cn.max(),
          *bond_stats, lg, has_inv, has_mirror],
         dtype=float,
     )
