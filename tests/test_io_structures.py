@@ -273,3 +273,11 @@ def test_formula_csv_without_id_column_numbers_rows(tmp_path):
     path.write_text("formula\nMoS2\nWTe2\n")
     candidates, _ = _split(iter_candidates(path))
     assert [c.id for c in candidates] == ["list-1", "list-2"]
+
+
+def test_plain_poscar_files_take_their_folder_name(tmp_path):
+    for name in ("MoS2-1H", "hBN-x"):
+        (tmp_path / name).mkdir()
+        shutil.copy(GOOD / "hBN.vasp", tmp_path / name / ("POSCAR" if name == "MoS2-1H" else "CONTCAR"))
+    candidates, rejections = _split(iter_candidates(tmp_path))
+    assert [c.id for c in candidates] == ["MoS2-1H", "hBN-x"] and rejections == []

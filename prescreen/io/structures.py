@@ -11,8 +11,8 @@ Formats (chosen by extension, else by looking at the first bytes):
 format                    recognised by                               identifier
 ========================  ==========================================  ===================================
 CIF (several blocks ok)   ``.cif``, a ``data_`` line                  file stem; ``stem-block`` if several
-POSCAR / CONTCAR (VASP 5) name ``POSCAR*``/``CONTCAR*``, ``.vasp``,   file stem (or the file name)
-                          ``.poscar``
+POSCAR / CONTCAR (VASP 5) name ``POSCAR*``/``CONTCAR*``, ``.vasp``,   file stem; folder name if the
+                          ``.poscar``                                 file is just POSCAR or CONTCAR
 extended XYZ (frames)     ``.xyz``, ``.extxyz``                       ``id``/``name`` info key, else
                                                                       ``stem-<frame>`` (0-based)
 ASE SQLite database       ``.db``, SQLite header                      ``id``/``name`` key-value pair, else
@@ -352,7 +352,10 @@ def read_poscar(text: str, *, path: str | Path = "<string>") -> Any:
 def _iter_poscar(path: Path) -> Iterator[Candidate | Rejection]:
     try:
         structure = read_poscar(read_utf8_text(path), path=path)
-        yield _candidate(path.stem or path.name, structure, str(path), path=path, line=None)
+        ident = path.stem
+        if path.name.upper() in ("POSCAR", "CONTCAR"):  # one folder per material: use the folder name
+            ident = path.resolve().parent.name
+        yield _candidate(ident, structure, str(path), path=path, line=None)
     except InputError as exc:
         yield Rejection.from_error(exc)
 
