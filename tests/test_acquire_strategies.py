@@ -5,6 +5,7 @@ from __future__ import annotations
 from functools import partial
 
 import numpy as np
+import pandas as pd
 import pytest
 from sklearn.datasets import make_classification
 from sklearn.ensemble import RandomForestClassifier
@@ -96,3 +97,15 @@ def test_two_phase_schedule():
 def test_budget_too_small_gives_empty_proposal(pool):
     prop = st.greedy_probability(pool, 0.1, np.random.default_rng(0))
     assert len(prop) == 0 and prop.total_cost == 0.0 and prop.expected_hits == 0.0
+
+
+def test_reason_shows_cost_interval_when_given():
+    from prescreen.acquire.cost import CostModel
+
+    desc = pd.DataFrame({"n_electrons": [26.0, 52.0], "n_kpoints": [20.0, 20.0],
+                         "volume": [200.0, 400.0], "n_atoms": [3.0, 6.0]})
+    cost, low, high = CostModel().predict_interval(desc)
+    view = PoolView.build(["a", "b"], np.eye(2), [0.6, 0.3], [0.1, 0.1], cost,
+                          cost_low=low, cost_high=high)
+    prop = st.greedy_probability(view, 1e6, np.random.default_rng(0))
+    assert prop.reasons[0].startswith(f"p=0.60±0.10, {cost[0]:.1f} ({low[0]:.1f}-{high[0]:.1f}) core-h")

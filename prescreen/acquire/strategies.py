@@ -108,7 +108,10 @@ def _propose(view: PoolView, scores: np.ndarray, selection: S.Selection, name: s
     idx = selection.indices
     reasons = []
     for i, note in zip(idx, selection.notes):
-        parts = [f"p={view.mean[i]:.2f}±{view.std[i]:.2f}", f"{view.cost[i]:.1f} core-h"]
+        cost = f"{view.cost[i]:.1f} core-h"
+        if view.cost_low is not None and view.cost_high is not None:
+            cost = f"{view.cost[i]:.1f} ({view.cost_low[i]:.1f}-{view.cost_high[i]:.1f}) core-h"
+        parts = [f"p={view.mean[i]:.2f}±{view.std[i]:.2f}", cost]
         if lead:
             parts.append(lead.format(score=scores[i]))
         parts.append(note)
