@@ -25,7 +25,9 @@ formula CSV               ``.csv``                                    id column,
 
 Hidden files and folders (name starting with ``.``) inside a folder are skipped; every
 other file that is not one of these formats gives a Rejection. Structures are checked
-to hold real chemical elements, full site occupancies and a cell of non-zero volume.
+to hold real chemical elements, full site occupancies and a cell of non-zero volume;
+every structure is periodic along its three lattice vectors (an extended XYZ or ASE
+row with ``pbc`` false along the stacking direction keeps its cell, vacuum included).
 """
 
 from __future__ import annotations
