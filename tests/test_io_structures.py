@@ -281,3 +281,29 @@ def test_plain_poscar_files_take_their_folder_name(tmp_path):
         shutil.copy(GOOD / "hBN.vasp", tmp_path / name / ("POSCAR" if name == "MoS2-1H" else "CONTCAR"))
     candidates, rejections = _split(iter_candidates(tmp_path))
     assert [c.id for c in candidates] == ["MoS2-1H", "hBN-x"] and rejections == []
+
+
+@pytest.mark.parametrize("variant", ["selective", "cartesian-scaled", "vasp6-species"])
+def test_read_poscar_variants_match_pymatgen(variant):
+    from pymatgen.io.vasp import Poscar
+
+    structure = Structure.from_file(GOOD / "POSCAR_NaCl")
+    if variant == "selective":
+        text = Poscar(structure, selective_dynamics=[[True, True, False]] * len(structure)).get_str()
+    elif variant == "cartesian-scaled":
+        lines = Poscar(structure).get_str(direct=False).splitlines()
+        lines[1] = "2.0"  # VASP multiplies lattice and Cartesian positions by the scale
+        lines[2:5] = ["  ".join(f"{x / 2:.10f}" for x in row) for row in structure.lattice.matrix]
+        lines[8:] = ["  ".join(f"{x / 2:.10f}" for x in site.coords) for site in structure]
+        text = "\n".join(lines) + "\n"
+    else:
+        text = Poscar(structure).get_str().replace("\nNa Cl\n", "\nNa_pv/1a2b3c Cl/4d5e6f\n")
+    ours = read_poscar(text)
+    assert ours.composition == structure.composition
+    np.testing.assert_allclose(ours.lattice.matrix, structure.lattice.matrix, atol=1e-8)
+    np.testing.assert_allclose(ours.cart_coords, structure.cart_coords, atol=1e-8)
+    if variant != "vasp6-species":
+        ref = Poscar.from_str(text).structure  # pymatgen's reader as reference
+        assert [str(sp) for sp in ours.species] == [str(sp) for sp in ref.species]
+        np.testing.assert_allclose(ours.lattice.matrix, ref.lattice.matrix, atol=1e-8)
+        np.testing.assert_allclose(ours.frac_coords, ref.frac_coords, atol=1e-8)
