@@ -126,8 +126,10 @@ def _propose(view: PoolView, scores: np.ndarray, selection: S.Selection, name: s
     )
 
 
-def _select(view: PoolView, scores: np.ndarray, budget: float, rng: np.random.Generator, *,
-            diversity: float, clusters: int | None, knapsack: bool = False) -> S.Selection:
+def _pick(view: PoolView, scores: np.ndarray, budget: float, rng: np.random.Generator,
+          name: str, *, diversity: float = 0.0, clusters: int | None = None,
+          knapsack: bool = False, lead: str | None = None) -> Proposal:
+    """Choose the selector for the options, run it, and build the proposal."""
     if clusters is not None:
         sel = S.clustered_within_budget(scores, view.X, view.cost, budget,
                                         n_clusters=clusters, rng=rng)
@@ -138,15 +140,15 @@ def _select(view: PoolView, scores: np.ndarray, budget: float, rng: np.random.Ge
         sel = S.knapsack_greedy(view.mean, view.cost, budget)
     else:
         sel = S.top_within_budget(scores, view.cost, budget)
-    return sel
+    return _propose(view, scores, sel, name, budget, lead)
 
 
 def greedy_probability(view: PoolView, budget: float, rng: np.random.Generator, *,
                        diversity: float = 0.0, clusters: int | None = None) -> Proposal:
     """Most probable hits first (exploitation)."""
     scores = M.probability_score(view)
-    sel = _select(view, scores, budget, rng, diversity=diversity, clusters=clusters)
-    return _propose(view, scores, sel, "greedy_probability", budget)
+    return _pick(view, scores, budget, rng, "greedy_probability", diversity=diversity,
+                 clusters=clusters)
 
 
 def expected_hits_per_core_hour(view: PoolView, budget: float, rng: np.random.Generator, *,
@@ -157,10 +159,8 @@ def expected_hits_per_core_hour(view: PoolView, budget: float, rng: np.random.Ge
     ``mean`` with cost; with diversity the score ``mean / cost`` feeds the diverse selector.
     """
     scores = M.cost_efficiency_score(view)
-    sel = _select(view, scores, budget, rng, diversity=diversity, clusters=clusters,
-                  knapsack=True)
-    return _propose(view, scores, sel, "expected_hits_per_core_hour", budget,
-                    lead="{score:.3f} hits/core-h")
+    return _pick(view, scores, budget, rng, "expected_hits_per_core_hour", diversity=diversity,
+                 clusters=clusters, knapsack=True, lead="{score:.3f} hits/core-h")
 
 
 def upper_confidence_bound(view: PoolView, budget: float, rng: np.random.Generator, *,
@@ -168,40 +168,38 @@ def upper_confidence_bound(view: PoolView, budget: float, rng: np.random.Generat
                            clusters: int | None = None) -> Proposal:
     """Optimism under uncertainty: ``mean + kappa * std``."""
     scores = M.ucb_score(view, kappa)
-    sel = _select(view, scores, budget, rng, diversity=diversity, clusters=clusters)
-    return _propose(view, scores, sel, f"upper_confidence_bound(kappa={kappa:g})", budget,
-                    lead="UCB {score:.2f}")
+    return _pick(view, scores, budget, rng, f"upper_confidence_bound(kappa={kappa:g})",
+                 diversity=diversity, clusters=clusters, lead="UCB {score:.2f}")
 
 
 def thompson_sampling(view: PoolView, budget: float, rng: np.random.Generator, *,
                       diversity: float = 0.0, clusters: int | None = None) -> Proposal:
     """Rank by one draw from the ensemble (see :func:`~prescreen.acquire.measures.thompson_score`)."""
     scores = M.thompson_score(view, rng)
-    sel = _select(view, scores, budget, rng, diversity=diversity, clusters=clusters)
-    return _propose(view, scores, sel, "thompson_sampling", budget, lead="draw {score:.2f}")
+    return _pick(view, scores, budget, rng, "thompson_sampling", diversity=diversity,
+                 clusters=clusters, lead="draw {score:.2f}")
 
 
 def explore_spread(view: PoolView, budget: float, rng: np.random.Generator, *,
                    diversity: float = 0.0, clusters: int | None = None) -> Proposal:
     """Pure exploration: largest model spread first."""
     scores = M.spread_score(view)
-    sel = _select(view, scores, budget, rng, diversity=diversity, clusters=clusters)
-    return _propose(view, scores, sel, "explore_spread", budget)
+    return _pick(view, scores, budget, rng, "explore_spread", diversity=diversity,
+                 clusters=clusters)
 
 
 def explore_distance(view: PoolView, budget: float, rng: np.random.Generator, *,
                      diversity: float = 0.5) -> Proposal:
     """Pure exploration: farthest from the labelled set, greedy max-min within the batch."""
     scores = M.novelty_score(view)
-    sel = _select(view, scores, budget, rng, diversity=diversity, clusters=None)
-    return _propose(view, scores, sel, "explore_distance", budget, lead="distance {score:.2f}")
+    return _pick(view, scores, budget, rng, "explore_distance", diversity=diversity,
+                 lead="distance {score:.2f}")
 
 
 def random_selection(view: PoolView, budget: float, rng: np.random.Generator) -> Proposal:
     """Uniformly random order, first fit within the budget (the reference)."""
     scores = M.random_score(view, rng)
-    sel = _select(view, scores, budget, rng, diversity=0.0, clusters=None)
-    return _propose(view, scores, sel, "random_selection", budget)
+    return _pick(view, scores, budget, rng, "random_selection")
 
 
 @dataclass(frozen=True)
