@@ -49,6 +49,8 @@ HEAVY_Z_THRESHOLDS: tuple[int, ...] = (37, 55)
 #: Largest denominator accepted when a fractional formula is reduced to integers for
 #: the electron-count parity (e.g. Fe0.5O0.5 -> FeO); beyond it parity is NaN.
 MAX_DENOMINATOR = 1000
+#: Largest common denominator of a formula handled (keeps the integer counts in int64).
+MAX_COMMON_DENOMINATOR = 10**12
 #: Relative tolerance when checking that an amount equals its rational approximation.
 RATIONAL_RTOL = 1e-6
 
@@ -79,6 +81,24 @@ def spin_orbit_table() -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     return p, d, covered
 
 
+def _rationals(values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Numerators and denominators (int64, same shape) of the closest fractions with
+    denominator <= MAX_DENOMINATOR; denominator 0 where no such fraction is within
+    RATIONAL_RTOL. Zeros (padding) give 0/1. Each distinct value is converted once."""
+    uniq, inv = np.unique(values, return_inverse=True)
+    num = np.zeros(len(uniq), dtype=np.int64)
+    den = np.ones(len(uniq), dtype=np.int64)
+    for j, u in enumerate(uniq.tolist()):
+        if u == 0.0:
+            continue
+        f = Fraction(u).limit_denominator(MAX_DENOMINATOR)
+        if abs(float(f) - u) <= RATIONAL_RTOL * abs(u):
+            num[j], den[j] = f.numerator, f.denominator
+        else:
+            den[j] = 0
+    return num[inv].reshape(values.shape), den[inv].reshape(values.shape)
+
+
 def _electron_parity(z: np.ndarray, amount: np.ndarray, n_valence: np.ndarray) -> np.ndarray:
     """Parity (0 even, 1 odd) of the valence electrons per reduced integer formula unit."""
     n = len(z)
@@ -91,15 +111,19 @@ def _electron_parity(z: np.ndarray, amount: np.ndarray, n_valence: np.ndarray) -
     g = np.gcd.reduce(ints, axis=1) if len(ints) else np.zeros(0, dtype=np.int64)
     nv = np.rint(n_valence[z[integer]]).astype(np.int64)
     out[integer] = ((ints // np.maximum(g, 1)[:, None]) * nv).sum(axis=1) % 2
-    for i in np.flatnonzero(valid & ~integer):
-        fr = [Fraction(float(a)).limit_denominator(MAX_DENOMINATOR) for a in amount[i, mask[i]]]
-        if any(abs(float(f) - a) > RATIONAL_RTOL * a for f, a in zip(fr, amount[i, mask[i]])):
-            continue
-        lcm = int(np.lcm.reduce([f.denominator for f in fr]))
-        counts = np.array([int(f * lcm) for f in fr], dtype=np.int64)
-        counts //= int(np.gcd.reduce(counts))
-        nv_i = np.rint(n_valence[z[i, mask[i]]]).astype(np.int64)
-        out[i] = int((counts * nv_i).sum()) % 2
+    rows = np.flatnonzero(valid & ~integer)
+    if len(rows):
+        sub = amount[rows]
+        num, den = _rationals(sub)
+        ok = np.all(den > 0, axis=1)
+        lcm = np.lcm.reduce(np.where(den > 0, den, 1), axis=1)
+        ok &= lcm <= MAX_COMMON_DENOMINATOR
+        lcm = np.where(ok, lcm, 1)
+        counts = num * (lcm[:, None] // np.where(den > 0, den, 1))
+        g = np.maximum(np.gcd.reduce(counts, axis=1), 1)
+        nv_sub = np.rint(n_valence[z[rows]]).astype(np.int64)
+        parity = ((counts // g[:, None]) * nv_sub).sum(axis=1) % 2
+        out[rows[ok]] = parity[ok]
     return out
 
 

@@ -84,48 +84,124 @@ def _images(ra: int, rb: int, rc: int) -> np.ndarray:
 
 
 def reduce_2d_basis(a: np.ndarray, b: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Lagrange-Gauss reduction of a 2D lattice basis (shortest two independent vectors).
+    """Lagrange-Gauss reduction of 2D lattice bases (shortest two independent vectors).
 
     Parameters
     ----------
     a, b
-        ``(3,)`` in-plane lattice vectors in angstrom.
+        ``(3,)`` or ``(B, 3)`` in-plane lattice vectors in angstrom.
 
     Returns
     -------
     a, b
-        Reduced basis with ``|a| <= |b|`` and ``|a.b| <= |a|^2 / 2``.
+        Reduced bases, same shapes, with ``|a| <= |b|`` and ``|a.b| <= |a|^2 / 2``.
     """
-    a = np.asarray(a, dtype=float)
-    b = np.asarray(b, dtype=float)
-    if a @ a > b @ b:
-        a, b = b, a
-    for _ in range(100):
-        mu = np.rint((a @ b) / (a @ a))
-        b = b - mu * a
-        if b @ b >= a @ a:
+    single = np.ndim(a) == 1
+    a = np.atleast_2d(np.asarray(a, dtype=float)).copy()
+    b = np.atleast_2d(np.asarray(b, dtype=float)).copy()
+    for _ in range(200):
+        swap = (a * a).sum(axis=1) > (b * b).sum(axis=1) + 1e-12
+        a[swap], b[swap] = b[swap], a[swap].copy()
+        mu = np.rint((a * b).sum(axis=1) / (a * a).sum(axis=1))
+        if not mu.any():
             break
-        a, b = b, a
-    return a, b
+        b -= mu[:, None] * a
+    return (a[0], b[0]) if single else (a, b)
 
 
-def _cross(a: np.ndarray, b: np.ndarray) -> np.ndarray:
-    """Cross product of two 3-vectors (cheaper than numpy.cross for single vectors)."""
-    return np.array([a[1] * b[2] - a[2] * b[1], a[2] * b[0] - a[0] * b[2], a[0] * b[1] - a[1] * b[0]])
+_EYE3 = np.eye(3)
+#: Lattice-vector index pairs spanning the plane for each out-of-plane axis.
+_IN_PLANE = np.array([[1, 2], [2, 0], [0, 1]])
 
 
-def _out_of_plane_axis(frac: np.ndarray, widths: np.ndarray) -> tuple[int, np.ndarray]:
-    """Axis with the widest empty gap (angstrom across the layer) and the unwrapped coords.
+def _batch_features(matrix: np.ndarray, frac: np.ndarray, numbers: np.ndarray,
+                    axis: int | None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Geometry and bonding features of B structures with the same atom count N.
 
-    ``widths`` are the spacings of the lattice planes of each axis (angstrom).
+    Parameters
+    ----------
+    matrix, frac, numbers
+        ``(B, 3, 3)`` lattice rows (angstrom), ``(B, N, 3)`` fractional coordinates and
+        ``(B, N)`` atomic numbers.
+    axis
+        Out-of-plane lattice vector index, or ``None`` to detect it per structure.
+
+    Returns
+    -------
+    values, axes, normals, inverses
+        ``(B, len(STRUCTURE_FEATURES))`` with the symmetry columns left NaN, the ``(B,)``
+        out-of-plane axis indices, the ``(B, 3)`` unit layer normals and the ``(B, 3, 3)``
+        inverse lattice matrices.
     """
-    f = np.sort(np.mod(frac, 1.0), axis=0)  # (N, 3)
-    gaps = np.diff(np.concatenate([f, f[:1] + 1.0]), axis=0)  # (N, 3)
-    g = gaps.argmax(axis=0)
-    widest = gaps[g, np.arange(3)] * widths
-    ax = int(np.argmax(widest + np.array([0.0, 0.0, 1e-9])))  # ties go to c
-    start = f[(g[ax] + 1) % len(f), ax]
-    return ax, np.mod(frac[:, ax] - start + 1e-12, 1.0)
+    nb, n, _ = frac.shape
+    rows = np.arange(nb)
+    inv = np.linalg.inv(matrix)
+    widths = 1.0 / np.sqrt((inv**2).sum(axis=1))  # (B, 3) spacing of lattice planes
+    f = np.sort(np.mod(frac, 1.0), axis=1)
+    gaps = np.diff(np.concatenate([f, f[:, :1] + 1.0], axis=1), axis=1)  # (B, N, 3)
+    g = gaps.argmax(axis=1)  # (B, 3)
+    if axis is None:
+        widest = np.take_along_axis(gaps, g[:, None, :], axis=1)[:, 0, :] * widths
+        ax = np.argmax(widest + np.array([0.0, 0.0, 1e-9]), axis=1)  # ties go to c
+    else:
+        ax = np.full(nb, axis)
+    start = f[rows, (g[rows, ax] + 1) % n, ax]
+    f_perp = np.mod(frac[rows, :, ax] - start[:, None] + 1e-12, 1.0)  # (B, N)
+    i1, i2 = _IN_PLANE[ax, 0], _IN_PLANE[ax, 1]
+    va, vb = matrix[rows, i1], matrix[rows, i2]
+    normal = np.cross(va, vb)
+    area = np.sqrt((normal**2).sum(axis=1))
+    normal /= area[:, None]
+    spacing = widths[rows, ax]
+    heights = f_perp * spacing[:, None]
+    thickness = heights.max(axis=1) - heights.min(axis=1)
+    vacuum = spacing - thickness
+    height_std = np.sqrt(((heights - heights.mean(axis=1, keepdims=True)) ** 2).mean(axis=1))
+    same = numbers[:, :, None] == numbers[:, None, :]  # (B, N, N)
+    formula_units = np.gcd.reduce(same.sum(axis=2), axis=1)
+    ra, rb = reduce_2d_basis(va, vb)
+    la, lb = np.sqrt((ra**2).sum(axis=1)), np.sqrt((rb**2).sum(axis=1))
+    cosg = np.clip((ra * rb).sum(axis=1) / (la * lb), -1.0, 1.0)
+    gamma = np.degrees(np.arccos(np.abs(cosg)))  # min(gamma, 180 - gamma)
+    # neighbour search over periodic images, all pairs, numpy over the batch
+    radii = _covalent_radii()[numbers]  # (B, N)
+    rcut = BOND_SCALE * 2.0 * radii.max(axis=1)
+    reach = np.ceil(rcut[:, None] / widths).astype(int)  # (B, 3)
+    reach[rows, ax] = np.where(vacuum > rcut, 0, reach[rows, ax])  # nothing bonds across vacuum
+    r = reach.max(axis=0)
+    images = _images(int(r[0]), int(r[1]), int(r[2]))  # (m, 3) shared by the batch
+    cart = np.einsum("bni,bij->bnj", frac, matrix)
+    shifts = np.einsum("mi,bij->bmj", images.astype(float), matrix)  # (B, m, 3)
+    disp = (cart[:, None, :, None, :] + shifts[:, None, None, :, :]
+            - cart[:, :, None, None, :])  # (B, N, N, m, 3)
+    dist = np.sqrt((disp**2).sum(axis=-1))  # (B, N, N, m)
+    pair_r = radii[:, :, None] + radii[:, None, :]  # (B, N, N)
+    bonded = (dist < BOND_SCALE * pair_r[..., None]) & (dist > 1e-8)
+    cn = bonded.sum(axis=(2, 3)).astype(float)  # (B, N)
+    count = bonded.sum(axis=(1, 2, 3))
+    has = count > 0
+    safe = np.maximum(count, 1)
+    d_b = np.where(bonded, dist, 0.0)
+    mean = d_b.sum(axis=(1, 2, 3)) / safe
+    rel = np.where(bonded, dist / pair_r[..., None], 0.0)
+    rel_mean = rel.sum(axis=(1, 2, 3)) / safe
+    std = np.sqrt((np.where(bonded, (dist - mean[:, None, None, None]) ** 2, 0.0)).sum(axis=(1, 2, 3)) / safe)
+    flat = (nb, -1)
+    bmin = np.where(bonded, dist, np.inf).reshape(flat).min(axis=1)
+    bmax = np.where(bonded, dist, -np.inf).reshape(flat).max(axis=1)
+    rmin = np.where(bonded, dist / pair_r[..., None], np.inf).reshape(flat).min(axis=1)
+    rmax = rel.reshape(flat).max(axis=1)
+    rise = np.abs(np.einsum("bijmk,bk->bijm", disp, normal))
+    buckling = np.where(bonded & same[..., None], rise, 0.0).reshape(flat).max(axis=1)
+    bond_cols = np.stack([mean, bmin, bmax, std, rel_mean, rmin, rmax], axis=1)
+    bond_cols[~has] = np.nan
+    nan = np.full(nb, np.nan)
+    values = np.column_stack([
+        np.full(nb, float(n)), thickness, buckling, height_std, vacuum, area / n,
+        area / formula_units, la, lb, gamma, cn.mean(axis=1), cn.min(axis=1), cn.max(axis=1),
+        bond_cols, nan, nan, nan,
+    ])
+    return values, ax, normal, inv
 
 
 def monolayer_features(
@@ -158,74 +234,38 @@ def monolayer_features(
         angstrom^2, angle in degrees, flags 0/1; NaN where undefined (no bonds, spglib
         failure).
     """
-    matrix = np.asarray(matrix, dtype=float)
-    frac = np.asarray(frac, dtype=float)
-    numbers = np.asarray(numbers, dtype=np.int64)
-    n_atoms = len(numbers)
-    inv = np.linalg.inv(matrix)
-    widths = 1.0 / np.sqrt((inv**2).sum(axis=0))  # spacing of the lattice planes per axis
-    if axis is None:
-        axis, f_perp = _out_of_plane_axis(frac, widths)
-    else:
-        one = np.zeros(3)
-        one[axis] = 1.0
-        _, f_perp = _out_of_plane_axis(frac * one, np.where(one > 0, 1.0, 0.0))
-    i1, i2 = [k for k in range(3) if k != axis]
-    a, b = matrix[i1], matrix[i2]
-    normal = _cross(a, b)
-    area = float(np.sqrt(normal @ normal))
-    normal /= area
-    spacing = float(widths[axis])
-    heights = f_perp * spacing
-    thickness = float(heights.max() - heights.min())
-    vacuum = spacing - thickness
-    height_std = float(np.sqrt(((heights - heights.mean()) ** 2).mean()))
-    counts = np.bincount(numbers)
-    counts = counts[counts > 0]
-    formula_units = int(np.gcd.reduce(counts))
-    ra, rb = reduce_2d_basis(a, b)
-    la, lb = float(np.sqrt(ra @ ra)), float(np.sqrt(rb @ rb))
-    gamma = float(np.degrees(np.arccos(min(1.0, max(-1.0, float(ra @ rb) / (la * lb))))))
-    gamma = min(gamma, 180.0 - gamma)
-    # neighbour search over periodic images (numpy, all pairs)
-    radii = _covalent_radii()[numbers]
-    rcut = BOND_SCALE * 2.0 * float(radii.max())
-    reach = np.ceil(rcut / widths).astype(int)
-    if vacuum > rcut:  # no bond can cross the vacuum: skip out-of-plane images
-        reach[axis] = 0
-    images = _images(int(reach[0]), int(reach[1]), int(reach[2]))
-    cart = frac @ matrix
-    shifts = images @ matrix  # (m, 3)
-    disp = cart[None, :, None, :] + shifts[None, None, :, :] - cart[:, None, None, :]
-    dist = np.sqrt((disp**2).sum(axis=-1))  # (N, N, m)
-    limit = BOND_SCALE * (radii[:, None] + radii[None, :])  # (N, N)
-    bonded = (dist < limit[:, :, None]) & (dist > 1e-8)
-    cn = bonded.sum(axis=(1, 2)).astype(float)
-    ii, jj, _ = np.nonzero(bonded)
-    bonds = dist[bonded]
-    if len(bonds):
-        rel = bonds / (radii[ii] + radii[jj])
-        same = numbers[ii] == numbers[jj]
-        rise = np.abs(disp[bonded] @ normal)  # out-of-plane component of each bond
-        buckling = float(rise[same].max()) if same.any() else 0.0
-        mean = bonds.mean()
-        bond_stats = [mean, bonds.min(), bonds.max(), np.sqrt(((bonds - mean) ** 2).mean()),
-                      rel.mean(), rel.min(), rel.max()]
-    else:
-        buckling = 0.0
-        bond_stats = [np.nan] * 7
-    lg, has_inv, has_mirror = _layer_symmetry(matrix, inv, frac, numbers, axis, normal, symprec)
-    return np.array(
-        [n_atoms, thickness, buckling, height_std, vacuum, area / n_atoms,
-         area / formula_units, la, lb, gamma, cn.mean(), cn.min(), cn.max(),
-         *bond_stats, lg, has_inv, has_mirror],
-        dtype=float,
-    )
+    return _features_same_size(np.asarray(matrix, dtype=float)[None],
+                               np.asarray(frac, dtype=float)[None],
+                               np.asarray(numbers, dtype=np.int64)[None], axis, symprec)[0]
 
 
-def _layer_symmetry(matrix: np.ndarray, inv: np.ndarray, frac: np.ndarray, numbers: np.ndarray, axis: int,
-                    normal: np.ndarray, symprec: float) -> tuple[float, float, float]:
-    """Layer group number, inversion centre present, horizontal mirror present."""
+#: Structures per vectorised sub-batch (bounds the (B, N, N, images, 3) work array).
+SUB_BATCH = 512
+
+
+def _features_same_size(matrix: np.ndarray, frac: np.ndarray, numbers: np.ndarray,
+                        axis: int | None, symprec: float) -> np.ndarray:
+    """Features of B structures with the same atom count, symmetry included."""
+    out = []
+    for lo in range(0, len(matrix), SUB_BATCH):
+        sl = slice(lo, lo + SUB_BATCH)
+        m, fr, nu = matrix[sl], frac[sl], numbers[sl]
+        values, ax, normal, inv = _batch_features(m, fr, nu, axis)
+        # Cartesian images of the layer-plane mirror, one per structure
+        mirrors = _EYE3 - 2.0 * normal[:, :, None] * normal[:, None, :]
+        for k in range(len(values)):
+            values[k, -3:] = _layer_symmetry(m[k], inv[k], fr[k], nu[k], int(ax[k]),
+                                             mirrors[k], symprec)
+        out.append(values)
+    return np.concatenate(out) if out else np.zeros((0, len(STRUCTURE_FEATURES)))
+
+
+def _layer_symmetry(matrix: np.ndarray, inv: np.ndarray, frac: np.ndarray, numbers: np.ndarray,
+                    axis: int, mirror: np.ndarray, symprec: float) -> tuple[float, float, float]:
+    """Layer group number, inversion centre present, horizontal mirror present.
+
+    ``inv`` is the inverse of ``matrix`` and ``mirror`` the Cartesian reflection through
+    the layer plane."""
     import spglib
 
     with warnings.catch_warnings():
@@ -234,11 +274,8 @@ def _layer_symmetry(matrix: np.ndarray, inv: np.ndarray, frac: np.ndarray, numbe
     if data is None:
         return np.nan, np.nan, np.nan
     rots = np.asarray(data.rotations, dtype=float)  # (s, 3, 3) in the lattice basis
-    lt = matrix.T
-    inv_lt = inv.T  # inverse of the transpose
-    cart = lt @ rots @ inv_lt  # (s, 3, 3) Cartesian
-    mirror = np.eye(3) - 2.0 * np.outer(normal, normal)
-    has_inv = bool(np.any(np.all(np.abs(cart + np.eye(3)) < ROTATION_TOL, axis=(1, 2))))
+    cart = matrix.T @ rots @ inv.T  # (s, 3, 3) Cartesian; inv.T is the inverse of matrix.T
+    has_inv = bool(np.any(np.all(np.abs(cart + _EYE3) < ROTATION_TOL, axis=(1, 2))))
     has_mirror = bool(np.any(np.all(np.abs(cart - mirror) < ROTATION_TOL, axis=(1, 2))))
     return float(data.number), float(has_inv), float(has_mirror)
 
@@ -279,16 +316,28 @@ class MonolayerStructureFeaturiser:
         if self.axis not in (None, 0, 1, 2):
             raise InputError("axis must be 0, 1, 2 or None", value=self.axis,
                              expected="the index of the out-of-plane lattice vector")
-        for i, s in enumerate(batch.structures):
-            if s is None:
+        groups: dict[int, list[tuple[int, np.ndarray, np.ndarray, np.ndarray]]] = {}
+        for i, st in enumerate(batch.structures):
+            if st is None:
                 continue
             try:
-                if not s.is_ordered:
+                if not st.is_ordered:
                     raise ValueError("disordered (partially occupied) sites are not supported")
-                values[i] = monolayer_features(
-                    s.lattice.matrix, s.frac_coords, np.array(s.atomic_numbers),
-                    axis=self.axis, symprec=self.symprec)
-            except (ValueError, np.linalg.LinAlgError, AttributeError, TypeError) as exc:
+                item = (i, np.asarray(st.lattice.matrix, dtype=float),
+                        np.asarray(st.frac_coords, dtype=float),
+                        np.asarray(st.atomic_numbers, dtype=np.int64))
+                if item[2].shape != (len(item[3]), 3) or len(item[3]) == 0:
+                    raise ValueError(f"{len(item[3])} sites with coordinates of shape {item[2].shape}")
+                if abs(np.linalg.det(item[1])) < 1e-6:
+                    raise ValueError("the lattice vectors are linearly dependent")
+            except (ValueError, AttributeError, TypeError) as exc:
                 errors[i] = (f"entry {batch.first_row + i}: structure features failed: {exc} "
                              "(expected an ordered periodic pymatgen Structure)")
+                continue
+            groups.setdefault(len(item[3]), []).append(item)
+        for items in groups.values():
+            idx = [it[0] for it in items]
+            values[idx] = _features_same_size(
+                np.stack([it[1] for it in items]), np.stack([it[2] for it in items]),
+                np.stack([it[3] for it in items]), self.axis, self.symprec)
         return FeatureBlock(values=values, errors=errors)
