@@ -489,9 +489,11 @@ class Campaign:
             for rej in rejections:
                 self._record_rejection(conn, "result", rej, now)
             for i, row in enumerate(rows):
-                path, _, line = row.source.rpartition(":")
+                path, _, line_text = row.source.rpartition(":")
+                line: int | str | None = (int(line_text) if line_text.isdigit()
+                                          else line_text or None)
                 if row.id not in known:
-                    rej = Rejection(path=path, line=line or None, value=row.id,
+                    rej = Rejection(path=path, line=line, value=row.id,
                                     reason="unknown candidate ID; expected an ID of "
                                     f"campaign {self.name!r}")
                     self._record_rejection(conn, "result", rej, now)
@@ -510,7 +512,7 @@ class Campaign:
                         continue
                     if on_conflict == "error":
                         rej = Rejection(
-                            path=path, line=line or None, value=f"{row.id}={row.spillage!r}",
+                            path=path, line=line, value=f"{row.id}={row.spillage!r}",
                             reason=f"conflicts with the stored spillage {old[1]!r} for this "
                             "ID; expected the same value, or choose on_conflict "
                             "'keep' or 'replace'",
@@ -552,8 +554,8 @@ class Campaign:
         if kind is not None:
             sql += " WHERE kind=?"
             args = (kind,)
-        return [Rejection(p, line, v, r) for p, line, v, r in
-                self._conn.execute(sql + " ORDER BY seq", args)]
+        return [Rejection(p, int(line) if line is not None and line.isdigit() else line, v, r)
+                for p, line, v, r in self._conn.execute(sql + " ORDER BY seq", args)]
 
     # ------------------------------------------------------------------ status
     def status(self) -> CampaignStatus:

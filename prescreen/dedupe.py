@@ -21,13 +21,13 @@ candidate seen wins, so the outcome depends only on the input order.
 
 from __future__ import annotations
 
-from collections.abc import Iterable
+from collections.abc import Callable, Iterable
 from typing import Any
 
 from prescreen.candidate import Candidate
 from prescreen.errors import Rejection
 
-__all__ = ["FRACTION_DECIMALS", "MATCH_VACUUM_A", "composition_key", "find_duplicates", "matching_form"]
+__all__ = ["DuplicateFinder", "FRACTION_DECIMALS", "MATCH_VACUUM_A", "composition_key", "find_duplicates", "matching_form"]
 
 #: Decimal places of the atomic fractions that define "same reduced composition"
 #: (FeO, Fe2O2 and Fe0.5O0.5 share a key; common practice).
@@ -104,6 +104,68 @@ def composition_key(formula_or_composition: Any) -> tuple[tuple[str, float], ...
     return tuple(sorted((str(el), round(float(amount), FRACTION_DECIMALS)) for el, amount in fractions.items()))
 
 
+class DuplicateFinder:
+    """Incremental duplicate search: feed candidates one at a time, in order.
+
+    Parameters
+    ----------
+    existing
+        Optional loader ``existing(group_key) -> [(id, structure or None), ...]`` giving
+        the non-duplicate candidates already stored for a group, first seen first (the
+        campaign store passes one so that new candidates are compared with old ones).
+        Called once per group.
+    matcher
+        A pymatgen ``StructureMatcher``; default ``StructureMatcher(scale=False)``.
+    """
+
+    def __init__(self, existing: Callable[[str], list[tuple[str, Any]]] | None = None, *,
+                 matcher: Any = None) -> None:
+        if matcher is None:
+            from pymatgen.analysis.structure_matcher import StructureMatcher
+
+            matcher = StructureMatcher(scale=False)
+        self._matcher = matcher
+        self._existing = existing
+        self._formula_first: dict[Any, str] = {}
+        self._groups: dict[Any, list[tuple[str, Any]]] = {}
+
+    def _group(self, key: Any, loader_key: str | None) -> list[tuple[str, Any]]:
+        group = self._groups.get(key)
+        if group is None:
+            group = []
+            if self._existing is not None and loader_key is not None:
+                for ident, structure in self._existing(loader_key):
+                    if structure is None:
+                        self._formula_first.setdefault(key, ident)
+                    else:
+                        group.append((ident, matching_form(structure)))
+            self._groups[key] = group
+        return group
+
+    def duplicate_of(self, ident: str, group_key: str, structure: Any | None) -> str | None:
+        """Return the id ``ident`` repeats (and remember it otherwise).
+
+        Parameters
+        ----------
+        ident
+            The candidate's id.
+        group_key
+            Its reduced formula (or any key shared exactly by equal compositions).
+        structure
+            Its structure, or ``None`` for a composition-only candidate.
+        """
+        group = self._group(group_key, group_key)
+        if structure is None:
+            first = self._formula_first.setdefault(group_key, ident)
+            return None if first == ident else first
+        form = matching_form(structure)
+        for other, other_form in group:
+            if self._matcher.fit(other_form, form):
+                return other
+        group.append((ident, form))
+        return None
+
+
 def find_duplicates(candidates: Iterable[Candidate | Rejection], *, matcher: Any = None) -> dict[str, str]:
     """Map each repeated candidate's id to the id of the first candidate it repeats.
 
@@ -122,29 +184,13 @@ def find_duplicates(candidates: Iterable[Candidate | Rejection], *, matcher: Any
         ``{duplicate_id: first_id}``; candidates that repeat nothing are absent.
         Memory: one representative structure per distinct structure kept.
     """
-    if matcher is None:
-        from pymatgen.analysis.structure_matcher import StructureMatcher
-
-        matcher = StructureMatcher(scale=False)
+    finder = DuplicateFinder(matcher=matcher)
     duplicates: dict[str, str] = {}
-    first_formula: dict[tuple, str] = {}
-    representatives: dict[tuple, list[tuple[str, Any]]] = {}
     for candidate in candidates:
         if not isinstance(candidate, Candidate):
             continue
-        if candidate.structure is None:
-            key = composition_key(candidate.formula)
-            first = first_formula.setdefault(key, candidate.id)
-            if first != candidate.id:
-                duplicates[candidate.id] = first
-            continue
-        key = composition_key(candidate.structure.composition)
-        group = representatives.setdefault(key, [])
-        form = matching_form(candidate.structure)
-        for ident, structure in group:
-            if matcher.fit(structure, form):
-                duplicates[candidate.id] = ident
-                break
-        else:
-            group.append((candidate.id, form))
+        comp = candidate.formula if candidate.structure is None else candidate.structure.composition
+        first = finder.duplicate_of(candidate.id, composition_key(comp), candidate.structure)
+        if first is not None:
+            duplicates[candidate.id] = first
     return duplicates

@@ -102,7 +102,7 @@ def test_results_ingest_valid_rows_land_unknown_rejected(campaign):
     rep = campaign.ingest_results(([result("mos2", 0.01), result("ghost", 0.9, line=3)], []))
     assert rep.added == 1
     [rej] = rep.rejections
-    assert (rej.path, rej.line, rej.value) == ("r.csv", "3", "ghost")
+    assert (rej.path, rej.line, rej.value) == ("r.csv", 3, "ghost")
     assert "unknown candidate ID" in rej.reason
     assert campaign.labels().loc["mos2", "spillage"] == 0.01
 

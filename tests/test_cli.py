@@ -1,0 +1,67 @@
+"""The command line: exit codes, one-line errors, light start-up."""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+
+import pytest
+from ase.build import graphene, mx2
+from ase.io import write
+
+from prescreen.cli.main import main
+
+
+@pytest.fixture
+def sources(tmp_path):
+    folder = tmp_path / "in"
+    folder.mkdir()
+    write(folder / "mos2.cif", mx2("MoS2", "2H", a=3.18, thickness=3.13, vacuum=9.0))
+    write(folder / "hbn.vasp", graphene("BN", a=2.50, vacuum=9.0), format="vasp")
+    (folder / "wish.csv").write_text("id,formula\nw1,Bi2Se3\nw2,Qq2\n")
+    return folder
+
+
+def test_help_imports_no_heavy_library():
+    # `prescreen --help` must answer at once: none of the slow scientific stacks may load.
+    code = (
+        "import sys\nfrom prescreen.cli.main import main\n"
+        "try:\n    main(['--help'])\nexcept SystemExit:\n    pass\n"
+        "heavy = [m for m in ('lightgbm', 'shap', 'matminer', 'pymatgen', 'sklearn', 'pandas',"
+        " 'gpaw', 'ase') if m in sys.modules]\n"
+        "print('HEAVY:' + ','.join(heavy))"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         check=True).stdout
+    assert out.strip().splitlines()[-1] == "HEAVY:"
+
+
+def test_create_status_ingest_round_trip(tmp_path, sources, capsys):
+    camp = tmp_path / "camp"
+    assert main(["create", str(camp), str(sources), "--no-progress"]) == 0
+    out, err = capsys.readouterr()
+    assert "added" in out
+    assert "Qq2" in err  # the unknown element is reported, with its file
+    assert "wish.csv" in err
+    results = tmp_path / "r.csv"
+    results.write_text("id,spillage\nmos2,0.004\nhbn,0.0\n")
+    assert main(["ingest", str(camp), str(results)]) == 0
+    capsys.readouterr()
+    assert main(["status", str(camp), "--json"]) == 0
+    st = json.loads(capsys.readouterr().out)
+    assert (st["candidates"], st["monolayers"], st["formula_only"], st["labelled"]) == (3, 2, 1, 2)
+
+
+def test_user_error_is_one_line_and_exit_2(tmp_path, capsys):
+    assert main(["status", str(tmp_path / "nowhere")]) == 2
+    err = capsys.readouterr().err
+    assert err.startswith("error: ") and err.count("\n") == 1
+    assert "nowhere" in err
+
+
+def test_traceback_flag_shows_the_trace(tmp_path):
+    from prescreen.errors import CampaignError
+
+    with pytest.raises(CampaignError):
+        main(["--traceback", "status", str(tmp_path / "nowhere")])
