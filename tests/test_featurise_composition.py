@@ -155,15 +155,26 @@ def test_invariant_to_formula_scaling(featuriser):
         np.testing.assert_allclose(row, vals[0], rtol=1e-12, atol=1e-12)
 
 
-@pytest.mark.parametrize("formula", ["Ca(OH)2", "[Fe(CN)6]K3", "CH3COOH", "CuSO4·5H2O",
-                                     "Mg3(PO4)2", "Bi2Se3", "Fe0.5O0.5", "(MoS2)3", "{Al2O3}"])
-def test_parser_matches_pymatgen(formula):
+@pytest.mark.parametrize(
+    ("formula", "pymatgen_formula"),
+    [("Ca(OH)2", None), ("[Fe(CN)6]K3", None), ("CH3COOH", None), ("Mg3(PO4)2", None),
+     ("Bi2Se3", None), ("Fe0.5O0.5", None), ("(MoS2)3", None), ("{Al2O3}", None),
+     # pymatgen has no hydrate notation: compare with the summed parts
+     ("CuSO4·5H2O", ("CuSO4", 5, "H2O")), ("Na2CO3*10H2O", ("Na2CO3", 10, "H2O"))],
+)
+def test_parser_matches_pymatgen(formula, pymatgen_formula):
     from pymatgen.core import Composition
 
-    ref = Composition(formula.replace("·", "*") if "·" not in formula else "CuSO9H10")
+    if pymatgen_formula is None:
+        ref = Composition(formula)
+    else:
+        ref = Composition(pymatgen_formula[0]) + pymatgen_formula[1] * Composition(pymatgen_formula[2])
     ours = parse_one(formula)
-    assert {k: pytest.approx(v) for k, v in ours.items()} == {
-        str(k): v for k, v in ref.get_el_amt_dict().items()}
+    assert ours == pytest.approx({str(k): v for k, v in ref.get_el_amt_dict().items()})
+    batch = parse_formulas([formula])
+    assert batch.errors[0] is None
+    assert dict(zip(batch.z[0][batch.z[0] > 0], batch.amount[0][batch.z[0] > 0])) == pytest.approx(
+        {el.Z: v for el, v in ref.items()})
 
 
 @pytest.mark.parametrize(
@@ -177,6 +188,8 @@ def test_parser_matches_pymatgen(formula):
         ("Mo$S2", r"unexpected character '\$'"),
         ("mos2", "unexpected character 'm'"),
         ("Fe()", "empty brackets"),
+        ("5", "number '5' does not follow an element"),
+        ("CuSO4··H2O", "empty part in a hydrate formula"),
     ],
 )
 def test_bad_formulas_are_refused_with_the_value(formula, match):
@@ -185,8 +198,9 @@ def test_bad_formulas_are_refused_with_the_value(formula, match):
 
 
 def test_batch_keeps_every_row_and_names_the_bad_entry():
-    frame = featurise(["MoS2", "XxO", "Bi2Se3", 42], progress=False)
-    assert len(frame) == 4
+    frame = featurise(["MoS2", "XxO", "Bi2Se3", 42, None], progress=False)
+    assert len(frame) == 5
+    assert "entry 4: formula is missing" in frame["error"][4]
     assert frame["error"][0] is None and frame["error"][2] is None
     assert "entry 1" in frame["error"][1] and "'XxO'" in frame["error"][1]
     assert "entry 3" in frame["error"][3] and "text" in frame["error"][3]

@@ -162,7 +162,8 @@ def parse_one(formula: str, *, line: int | str | None = None) -> dict[str, float
         part = part.strip()
         m = re.match(rf"^{_NUM}", part)
         factor = 1.0
-        if m and part[m.end():m.end() + 1].isalpha() or (m and part[m.end():m.end() + 1] in "([{"):
+        after = part[m.end():m.end() + 1] if m else ""
+        if after and (after.isalpha() or after in "([{"):
             factor = float(m.group(0))
             part = part[m.end():]
         if not part:
@@ -285,7 +286,12 @@ def parse_formulas(formulas: Sequence[str], *, first_line: int = 0) -> ParsedFor
     err_u = np.array(errors_u + [None], dtype=object)[:n_u]
     errors[:] = err_u[codes] if n else []
     for row in np.flatnonzero(pd.notna(errors)):
-        err = InputError(str(errors[row]), line=first_line + int(row), value=formulas[row],
-                         expected=_EXPECTED)
+        value = formulas[row]
+        reason = str(errors[row])
+        if value is None:
+            reason = "formula is missing"
+        elif not isinstance(value, str):
+            reason = f"formula must be text, not {type(value).__name__}"
+        err = InputError(reason, line=first_line + int(row), value=value, expected=_EXPECTED)
         errors[row] = str(err)
     return ParsedFormulas(z=z_u[codes], amount=amt_u[codes], errors=errors)
