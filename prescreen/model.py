@@ -52,6 +52,7 @@ from __future__ import annotations
 import hashlib
 import json
 import os
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from importlib import metadata as importlib_metadata
 from pathlib import Path
@@ -293,7 +294,8 @@ class SpillageClassifier(ClassifierMixin, BaseEstimator):
         Seed (int), ``numpy.random.Generator`` or ``None``; every seed used in the fit is
         drawn from one generator made from it.
     n_jobs
-        LightGBM threads; ``None`` means 1, ``-1`` means all cores.
+        Boosters trained or evaluated at the same time, each on one LightGBM thread;
+        ``None`` means 1, ``-1`` means all cores. Results do not depend on it.
 
     Attributes
     ----------
@@ -402,7 +404,7 @@ class SpillageClassifier(ClassifierMixin, BaseEstimator):
             "feature_fraction_seed": seed,
             "deterministic": True,
             "force_row_wise": True,
-            "num_threads": self._threads(),
+            "num_threads": 1,  # parallel over boosters instead, see _map
             "verbose": -1,
         }
 
@@ -510,24 +512,48 @@ class SpillageClassifier(ClassifierMixin, BaseEstimator):
             )
             return lgb.train(self._booster_params(seed), ds, num_boost_round=int(self.n_estimators))
 
-        # 1. out-of-fold margins for the calibrator
+        # every booster (one per calibration fold, then the members) is independent:
+        # draw all seeds first, then train them side by side
+        folds = [] if self.calibration is None else self._calibration_folds(
+            y01, w, group_arr, int(self.calibration_cv), rng
+        )
+        fold_seeds = rng.integers(1, 2**31 - 1, size=len(folds))
+        member_seeds = rng.integers(1, 2**31 - 1, size=int(self.n_models))
+        jobs = [(tr, int(s)) for (tr, _), s in zip(folds, fold_seeds)] + [(None, int(s)) for s in member_seeds]
+        boosters = self._map(lambda job: train(*job), jobs)
+        self.members_ = boosters[len(folds) :]
+
         if self.calibration is None:
             calibrator = Calibrator("identity", ())
             self.calibration_scores_ = {}
-        else:
-            folds = self._calibration_folds(y01, w, group_arr, int(self.calibration_cv), rng)
+        else:  # out-of-fold margins of the fold boosters -> calibration map
             oof = np.full(X.shape[0], np.nan)
-            for train_rows, test_rows in folds:
-                booster = train(train_rows, int(rng.integers(1, 2**31 - 1)))
-                oof[test_rows] = booster.predict(X[test_rows], raw_score=True, num_threads=self._threads())
+            margins = self._map(
+                lambda pair: pair[0].predict(X[pair[1]], raw_score=True, num_threads=1),
+                [(booster, te) for booster, (_, te) in zip(boosters, folds)],
+            )
+            for (_, te), margin in zip(folds, margins):
+                oof[te] = margin
             calibrator = self._choose_calibrator(oof, y01, w, group_arr, rng)
         self.calibration_method_ = calibrator.method
-
-        # 2. the ensemble on all rows
-        seeds = rng.integers(1, 2**31 - 1, size=int(self.n_models))
-        self.members_ = [train(None, int(s)) for s in seeds]
         self.calibrators_ = [calibrator] * int(self.n_models)
         return self
+
+    def _map(self, fn: Callable[[Any], Any], items: Sequence[Any]) -> list[Any]:
+        """``[fn(item) for item in items]``, on ``n_jobs`` threads when more than one.
+
+        LightGBM releases the GIL, so single-threaded boosters run side by side; this
+        scales better than LightGBM's own OpenMP threads on a busy machine, where its
+        spinning barriers lose most of the time (measured here: one booster on 2
+        OpenMP threads took 17x longer than on 1 while other jobs shared the cores).
+        """
+        threads = min(self._threads(), len(items))
+        if threads <= 1:
+            return [fn(item) for item in items]
+        from concurrent.futures import ThreadPoolExecutor
+
+        with ThreadPoolExecutor(max_workers=threads) as pool:
+            return list(pool.map(fn, items))
 
     def _calibration_folds(
         self, y01: NDArray, w: NDArray, groups: NDArray | None, n_splits: int, rng: np.random.Generator
@@ -583,7 +609,7 @@ class SpillageClassifier(ClassifierMixin, BaseEstimator):
 
     # -------------------------------------------------------------------- predict
     def _margins(self, X: NDArray) -> NDArray[np.float64]:
-        return np.stack([b.predict(X, raw_score=True, num_threads=self._threads()) for b in self.members_])
+        return np.stack(self._map(lambda b: b.predict(X, raw_score=True, num_threads=1), self.members_))
 
     def ensemble_proba(self, X: pd.DataFrame | ArrayLike) -> NDArray[np.float64]:
         """Calibrated probability of the positive class from every member.

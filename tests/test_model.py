@@ -100,12 +100,14 @@ def test_ensemble_outputs_agree(split_data):
     assert np.median(std) > 0  # the seeds really differ
 
 
-def test_same_seed_same_model_other_seed_differs(split_data):
+def test_same_seed_same_model_any_n_jobs_other_seed_differs(split_data):
     Xtr, ytr, Xte, _ = split_data
     a = SpillageClassifier(**SMALL).fit(Xtr, ytr).ensemble_proba(Xte)
     b = SpillageClassifier(**SMALL).fit(Xtr, ytr).ensemble_proba(Xte)
     c = SpillageClassifier(**(SMALL | {"random_state": 1})).fit(Xtr, ytr).ensemble_proba(Xte)
+    threaded = SpillageClassifier(**SMALL, n_jobs=2).fit(Xtr, ytr).ensemble_proba(Xte)
     np.testing.assert_array_equal(a, b)
+    np.testing.assert_array_equal(a, threaded)  # n_jobs does not change the model
     assert not np.array_equal(a, c)
 
 
