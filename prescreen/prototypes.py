@@ -777,9 +777,11 @@ def structure_columns(structure: "Structure") -> dict[str, object]:
         "a_A": round(float(lat.a), 6),
         "b_A": round(float(lat.b), 6),
         "gamma_deg": round(float(lat.gamma), 4),
-        "lattice": [round(float(v), 8) for v in lat.matrix.ravel()],
+        # full double precision: rounding symmetric positions (1/3 -> 0.33333333) leaves
+        # ~1e-8 A noise, enough to upset symmetry finders such as GPAW's
+        "lattice": [float(v) for v in lat.matrix.ravel()],
         "species": [site.specie.symbol for site in structure],
-        "frac_coords": [round(float(v), 8) for v in structure.frac_coords.ravel()],
+        "frac_coords": [float(v) for v in structure.frac_coords.ravel()],
     }
 
 

@@ -1,0 +1,714 @@
+"""Build data_open/: the candidate pool, relaxed and spillage-labelled monolayers, datasheet.
+
+One command regenerates everything from scratch and resumes after an interruption::
+
+    python scripts/build_open_dataset.py                    # all stages, whole subset
+    python scripts/build_open_dataset.py --limit 20         # first 20 of the subset
+    python scripts/build_open_dataset.py --stage pool       # only the pool
+    python scripts/build_open_dataset.py --stage pack       # only tables + datasheet
+
+Stages
+------
+pool
+    Generate the candidate pool (:mod:`prescreen.prototypes`) and write
+    ``pool.parquet`` and ``pool.extxyz.gz``. Reused when present with the same seed.
+relax
+    Walk the stratified subset (cells of at most ``--max-atoms`` atoms first, round
+    robin over prototypes, rarest elements first; see :func:`stratified_order`) and relax
+    each candidate with :func:`prescreen.physics.dft.relax_monolayer` (PBE, LCAO dzp,
+    coarser k mesh). Each outcome, with its residual force, is appended to
+    ``<work>/relax.jsonl``; structures that do not converge or that fall apart
+    (:func:`prescreen.prototypes.check_intact_monolayer`) are recorded and left out.
+label
+    Label the relaxed structures with :func:`prescreen.physics.labeller.run_labelling`
+    (resumable; JSONL records and one ``.npz`` per id in ``<work>/labels``).
+pack
+    Write ``labelled.parquet``, ``relaxation.parquet``, ``labelled.extxyz.gz``, the
+    datasheet ``README.md`` (every number computed here) and ``MANIFEST.json`` (SHA-256
+    of every shipped file).
+all
+    pool, then batches of relax + label + pack until ``--limit`` is reached.
+
+Everything is checkpointed per structure: killing the command (even ``kill -9``) loses
+at most the structures in progress, and rerunning it skips what is done.
+"""
+
+from __future__ import annotations
+
+import argparse
+import gzip
+import hashlib
+import io
+import json
+import math
+import multiprocessing as mp
+import os
+import platform
+import sys
+import time
+import traceback
+from collections import Counter, defaultdict
+from pathlib import Path
+from typing import TYPE_CHECKING, Any, Iterable, Sequence
+
+import numpy as np
+
+ROOT = Path(__file__).resolve().parents[1]
+if str(ROOT) not in sys.path:  # run as a plain script from a checkout
+    sys.path.insert(0, str(ROOT))
+
+from prescreen.errors import InputError  # noqa: E402
+from prescreen.prototypes import (  # noqa: E402
+    COVALENT_RADII_SOURCE,
+    DEFAULT_SEED,
+    PROTOTYPES,
+    VACUUM_A,
+    check_intact_monolayer,
+    generate_pool,
+    pool_table,
+    structure_columns,
+    structure_from_row,
+)
+
+if TYPE_CHECKING:  # pragma: no cover - typing only
+    import pandas as pd
+    from pymatgen.core import Structure
+
+__all__ = [
+    "POSITIVE_THRESHOLD",
+    "RELAX_KPT_DENSITY",
+    "RELAX_SCALES",
+    "stratified_order",
+    "build_pool",
+    "relax_stage",
+    "label_stage",
+    "pack_stage",
+    "main",
+]
+
+#: Spillage at or above which a monolayer counts as positive (common practice).
+POSITIVE_THRESHOLD = 0.5
+
+#: k-point density (points per reciprocal angstrom, |b| with the 2 pi) of the
+#: relaxations: coarser than the labels' default (5.0) to keep relaxations affordable;
+#: common practice for geometry (forces converge faster in k than band inversions).
+RELAX_KPT_DENSITY = 2.5
+
+#: In-plane scale factors tried by the relaxation. Starting lattices from summed
+#: covalent radii are off by -9 % to +14 % for known layers (tests/test_prototypes.py),
+#: so the scan spans +-10 %; a second attempt re-centres it when the first ends at an edge.
+RELAX_SCALES = (0.90, 0.95, 1.00, 1.05, 1.10)
+
+#: Residual-force tolerance of the relaxations (eV/angstrom); common practice.
+RELAX_FMAX = 0.05
+#: Largest number of BFGS steps per position relaxation.
+RELAX_STEPS = 60
+#: Relaxation attempts per structure (a second one restarts from the first's result,
+#: which re-centres the lattice-constant scan when the first ended at its edge).
+RELAX_ATTEMPTS = 2
+
+#: Cells of at most this many atoms are relaxed and labelled first.
+DEFAULT_MAX_ATOMS = 6
+
+#: Licence of everything in data_open/.
+LICENCE = "CC-BY-4.0"
+
+POOL_PARQUET = "pool.parquet"
+POOL_XYZ = "pool.extxyz.gz"
+LABELLED_PARQUET = "labelled.parquet"
+LABELLED_XYZ = "labelled.extxyz.gz"
+RELAX_PARQUET = "relaxation.parquet"
+MANIFEST = "MANIFEST.json"
+DATASHEET = "README.md"
+
+
+# --- small helpers ------------------------------------------------------------------
+def _sha256(path: Path) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for chunk in iter(lambda: fh.read(1 << 20), b""):
+            h.update(chunk)
+    return h.hexdigest()
+
+
+def _versions() -> dict[str, str]:
+    import ase
+    import pymatgen.core
+    import spglib
+
+    from prescreen import __version__
+
+    out = {"prescreen": __version__, "python": platform.python_version(),
+           "numpy": np.__version__, "pymatgen": pymatgen.core.__version__,
+           "ase": ase.__version__, "spglib": spglib.__version__}
+    try:
+        import gpaw
+
+        out["gpaw"] = gpaw.__version__
+    except ImportError:
+        pass
+    return out
+
+
+def _write_parquet(df: "pd.DataFrame", path: Path) -> None:
+    tmp = path.with_suffix(path.suffix + ".tmp")
+    df.to_parquet(tmp, index=False, compression="zstd")
+    os.replace(tmp, path)
+
+
+def _write_extxyz_gz(structures: Iterable[tuple["Structure", dict[str, Any]]], path: Path) -> None:
+    """Compressed extended XYZ, byte-reproducible (gzip header without time or name)."""
+    from ase.io import write
+    from pymatgen.io.ase import AseAtomsAdaptor
+
+    buf = io.StringIO()
+    frames = []
+    for structure, info in structures:
+        atoms = AseAtomsAdaptor.get_atoms(structure)
+        atoms.pbc = (True, True, False)
+        atoms.info = dict(info)
+        frames.append(atoms)
+    write(buf, frames, format="extxyz")
+    tmp = path.with_suffix(path.suffix + ".tmp")
+    with open(tmp, "wb") as raw, gzip.GzipFile(filename="", mode="wb", fileobj=raw,
+                                               mtime=0, compresslevel=9) as gz:
+        gz.write(buf.getvalue().encode())
+    os.replace(tmp, path)
+
+
+def _read_jsonl(path: Path) -> list[dict[str, Any]]:
+    """Records of a JSONL checkpoint; a torn last line (after kill -9) is ignored."""
+    if not path.exists():
+        return []
+    out = []
+    with open(path, encoding="utf-8") as fh:
+        lines = fh.readlines()
+    for n, line in enumerate(lines, start=1):
+        if not line.strip():
+            continue
+        try:
+            out.append(json.loads(line))
+        except json.JSONDecodeError as exc:
+            if n == len(lines):
+                break
+            raise InputError("damaged checkpoint line", path=path, line=n, value=line[:80],
+                             expected="one JSON object per line") from exc
+    return out
+
+
+def _append_jsonl(path: Path, record: dict[str, Any]) -> None:
+    with open(path, "a", encoding="utf-8") as fh:
+        fh.write(json.dumps(record, sort_keys=True) + "\n")
+        fh.flush()
+        os.fsync(fh.fileno())
+
+
+# --- pool ---------------------------------------------------------------------------
+def build_pool(out: Path, seed: int, *, force: bool = False, progress: bool = True) -> "pd.DataFrame":
+    """Generate (or reuse) the pool files in ``out``; returns the pool table."""
+    import pandas as pd
+    import pyarrow.parquet as pq
+
+    path = out / POOL_PARQUET
+    if path.exists() and not force:
+        meta = pq.read_schema(path).metadata or {}
+        if meta.get(b"prescreen.seed") == str(seed).encode():
+            print(f"pool: reusing {path}")
+            return pd.read_parquet(path)
+        print(f"pool: {path} has another seed; regenerating")
+    t0 = time.perf_counter()
+    pool = generate_pool(seed, progress=progress)
+    table = pool_table(pool)
+    out.mkdir(parents=True, exist_ok=True)
+    import pyarrow as pa
+
+    arrow = pa.Table.from_pandas(table, preserve_index=False)
+    arrow = arrow.replace_schema_metadata({**(arrow.schema.metadata or {}),
+                                           b"prescreen.seed": str(seed).encode()})
+    tmp = path.with_suffix(".parquet.tmp")
+    pq.write_table(arrow, tmp, compression="zstd")
+    os.replace(tmp, path)
+    _write_extxyz_gz(((c.structure, {"id": c.id, "prototype": c.prototype}) for c in pool),
+                     out / POOL_XYZ)
+    print(f"pool: {len(table)} candidates, {table.groupby(['prototype', 'reduced_formula']).ngroups}"
+          f" distinct (prototype, reduced formula) in {time.perf_counter() - t0:.0f} s")
+    return table
+
+
+def stratified_order(pool: "pd.DataFrame", seed: int, max_atoms: int = DEFAULT_MAX_ATOMS) -> list[str]:
+    """Order in which candidates are relaxed and labelled.
+
+    Cells with at most ``max_atoms`` atoms come first, then the rest, each tier
+    ordered the same way: prototypes take turns (round robin in table order), and each
+    turn picks, among the prototype's remaining candidates in a seeded random order,
+    the first one whose rarest-so-far element count is smallest (looking ahead at most
+    64 candidates), so that elements are covered evenly.
+
+    Parameters
+    ----------
+    pool
+        Pool table with ``id``, ``prototype``, ``elements`` and ``n_atoms``.
+    seed
+        Seed of the random order.
+    max_atoms
+        Size of the cells in the first tier.
+
+    Returns
+    -------
+    list of str
+        Every pool id exactly once.
+    """
+    rng = np.random.default_rng(seed)
+    names = [p.name for p in PROTOTYPES]
+    order: list[str] = []
+    for tier in (pool[pool["n_atoms"] <= max_atoms], pool[pool["n_atoms"] > max_atoms]):
+        queues: dict[str, list[tuple[str, tuple[str, ...]]]] = {}
+        for name in names:
+            sub = tier[tier["prototype"] == name]
+            perm = rng.permutation(len(sub))
+            queues[name] = [(sub["id"].iat[i], tuple(sub["elements"].iat[i].split())) for i in perm]
+        seen: Counter[str] = Counter()
+        while any(queues.values()):
+            for name in names:
+                q = queues[name]
+                if not q:
+                    continue
+                look = q[:64]
+                scores = [max(seen[e] for e in els) * 1000 + sum(seen[e] for e in els) for _, els in look]
+                k = int(np.argmin(scores))
+                ident, els = q.pop(k)
+                seen.update(els)
+                order.append(ident)
+    return order
+
+
+# --- relaxation ---------------------------------------------------------------------
+def _relax_one(ident: str, row: dict[str, Any], kpt_density: float, result_path: str) -> None:
+    """Child process: relax one structure and write a JSON result file."""
+    from prescreen.physics.dft import LabelSettings, relax_monolayer
+
+    os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+    t0 = time.perf_counter()
+    rec: dict[str, Any] = {"id": ident, "attempts": 0}
+    try:
+        settings = LabelSettings(kpt_density=kpt_density)
+        structure = structure_from_row(row)
+        converged, residual = False, math.nan
+        for attempt in range(1, RELAX_ATTEMPTS + 1):
+            rec["attempts"] = attempt
+            structure, residual, converged = relax_monolayer(
+                structure, settings, fmax=RELAX_FMAX, steps=RELAX_STEPS, scales=RELAX_SCALES)
+            if converged:
+                break
+        intact, why = check_intact_monolayer(structure)
+        rec.update(residual_fmax_eV_per_A=float(residual), converged=bool(converged),
+                   **structure_columns(structure))
+        if not intact:
+            rec.update(status="fell_apart", reason=why)
+        elif not converged:
+            rec.update(status="not_converged",
+                       reason=f"residual force {residual:.3f} eV/A or lattice scan at its edge "
+                              f"after {RELAX_ATTEMPTS} attempts")
+        else:
+            rec.update(status="ok", reason="")
+    except Exception as exc:  # recorded, not raised: one failure must not stop the run
+        rec.update(status="failed", reason=f"{type(exc).__name__}: {exc}",
+                   traceback=traceback.format_exc(limit=3))
+    rec["wall_s"] = round(time.perf_counter() - t0, 2)
+    tmp = result_path + ".tmp"
+    with open(tmp, "w", encoding="utf-8") as fh:
+        json.dump(rec, fh)
+    os.replace(tmp, result_path)
+
+
+def relax_stage(pool: "pd.DataFrame", ids: Sequence[str], work: Path, *, workers: int = 1,
+                timeout_s: float = 3600.0, kpt_density: float = RELAX_KPT_DENSITY,
+                progress: bool = True) -> list[dict[str, Any]]:
+    """Relax ``ids`` not yet in ``<work>/relax.jsonl``; returns all relaxation records.
+
+    Each structure runs in its own process (``workers`` at a time) and is stopped after
+    ``timeout_s`` seconds; the outcome is appended to the checkpoint as soon as it is
+    known.
+    """
+    from tqdm.auto import tqdm
+
+    work.mkdir(parents=True, exist_ok=True)
+    log = work / "relax.jsonl"
+    done = {r["id"] for r in _read_jsonl(log)}
+    todo = [i for i in ids if i not in done]
+    rows = pool.set_index("id")
+    tmpdir = work / "relax_tmp"
+    tmpdir.mkdir(exist_ok=True)
+    ctx = mp.get_context("fork")
+    running: dict[str, tuple[Any, float, Path]] = {}
+    bar = tqdm(total=len(todo), desc="relaxing", unit="struct", disable=not progress)
+    queue = list(todo)
+    while queue or running:
+        while queue and len(running) < max(1, workers):
+            ident = queue.pop(0)
+            row = rows.loc[ident]
+            payload = {"id": ident, "lattice": list(row["lattice"]), "species": list(row["species"]),
+                       "frac_coords": list(row["frac_coords"])}
+            result = tmpdir / f"{ident}.json"
+            result.unlink(missing_ok=True)
+            proc = ctx.Process(target=_relax_one, args=(ident, payload, kpt_density, str(result)))
+            proc.start()
+            running[ident] = (proc, time.perf_counter(), result)
+        time.sleep(0.2)
+        for ident, (proc, start, result) in list(running.items()):
+            elapsed = time.perf_counter() - start
+            if proc.is_alive() and elapsed < timeout_s:
+                continue
+            if proc.is_alive():
+                proc.kill()
+            proc.join()
+            if result.exists():
+                rec = json.loads(result.read_text(encoding="utf-8"))
+                result.unlink()
+            else:
+                why = (f"timeout after {timeout_s:.0f} s" if elapsed >= timeout_s
+                       else f"worker died with exit code {proc.exitcode}")
+                rec = {"id": ident, "status": "failed", "reason": why,
+                       "wall_s": round(elapsed, 2)}
+            _append_jsonl(log, rec)
+            del running[ident]
+            bar.update(1)
+            bar.set_postfix_str(f"{ident}: {rec['status']}")
+    bar.close()
+    return _read_jsonl(log)
+
+
+# --- labelling ----------------------------------------------------------------------
+def label_stage(relaxed: Sequence[dict[str, Any]], work: Path, *, workers: int = 1,
+                timeout_s: float = 1800.0, progress: bool = True) -> Any:
+    """Label the relaxed structures with status ``ok`` (resumable; see labeller)."""
+    from prescreen.physics.dft import LabelSettings
+    from prescreen.physics.labeller import run_labelling
+
+    jobs = [(r["id"], structure_from_row(r)) for r in relaxed if r.get("status") == "ok"]
+    return run_labelling(jobs, work / "labels", settings=LabelSettings(), workers=workers,
+                         timeout_s=timeout_s, progress=progress)
+
+
+def _label_records(work: Path) -> list[Any]:
+    label_dir = work / "labels"
+    if not label_dir.exists():
+        return []
+    from prescreen.physics.labeller import load_records
+
+    return list(load_records(label_dir))
+
+
+# --- pack ---------------------------------------------------------------------------
+def _labelled_table(pool: "pd.DataFrame", relax: Sequence[dict[str, Any]],
+                    records: Sequence[Any]) -> "pd.DataFrame":
+    import pandas as pd
+
+    meta = pool.set_index("id")
+    relax_by_id = {r["id"]: r for r in relax}
+    rows = []
+    for rec in records:
+        if not rec.ok or rec.id not in relax_by_id:
+            continue
+        r = relax_by_id[rec.id]
+        p = meta.loc[rec.id]
+        rows.append({
+            "id": rec.id, "prototype": p["prototype"], "family": p["family"],
+            "reduced_formula": p["reduced_formula"], "elements": p["elements"],
+            "n_atoms": int(p["n_atoms"]),
+            "spillage": float(rec.spillage), "high_spillage": bool(rec.spillage >= POSITIVE_THRESHOLD),
+            "k_max": [float(v) for v in rec.k_max],
+            "gap_nosoc_eV": float(rec.gap_nosoc_eV), "gap_soc_eV": float(rec.gap_soc_eV),
+            "is_metal": bool(rec.is_metal), "magmom_muB": float(rec.magmom),
+            "kmesh": list(rec.settings.get("kmesh", [])),
+            "wall_s": float(rec.wall_s), "core_hours": float(rec.core_hours),
+            "relax_wall_s": float(r.get("wall_s", math.nan)),
+            "residual_fmax_eV_per_A": float(r["residual_fmax_eV_per_A"]),
+            "a_A": r["a_A"], "b_A": r["b_A"], "gamma_deg": r["gamma_deg"],
+            "lattice": r["lattice"], "species": r["species"], "frac_coords": r["frac_coords"],
+            "gamma_k": np.asarray(rec.gamma, dtype=np.float32).tolist(),
+            "kpts": np.asarray(rec.kpts, dtype=np.float32).ravel().tolist(),
+            "settings": json.dumps(rec.settings, sort_keys=True, default=str),
+            "versions": json.dumps(rec.versions, sort_keys=True),
+        })
+    cols = ["id", "prototype", "family", "reduced_formula", "elements", "n_atoms", "spillage",
+            "high_spillage", "k_max", "gap_nosoc_eV", "gap_soc_eV", "is_metal", "magmom_muB",
+            "kmesh", "wall_s", "core_hours", "relax_wall_s", "residual_fmax_eV_per_A", "a_A",
+            "b_A", "gamma_deg", "lattice", "species", "frac_coords", "gamma_k", "kpts",
+            "settings", "versions"]
+    df = pd.DataFrame(rows, columns=cols)
+    return df.sort_values("id").reset_index(drop=True)
+
+
+def _relax_table(relax: Sequence[dict[str, Any]], records: Sequence[Any]) -> "pd.DataFrame":
+    import pandas as pd
+
+    label_status = {rec.id: ("ok" if rec.ok else f"failed: {rec.error}") for rec in records}
+    rows = [{"id": r["id"], "status": r.get("status", "failed"), "reason": r.get("reason", ""),
+             "converged": bool(r.get("converged", False)),
+             "residual_fmax_eV_per_A": float(r.get("residual_fmax_eV_per_A", math.nan)),
+             "attempts": int(r.get("attempts", 0)), "wall_s": float(r.get("wall_s", math.nan)),
+             "label_status": label_status.get(r["id"], "not labelled")}
+            for r in relax]
+    cols = ["id", "status", "reason", "converged", "residual_fmax_eV_per_A", "attempts",
+            "wall_s", "label_status"]
+    return pd.DataFrame(rows, columns=cols).sort_values("id").reset_index(drop=True)
+
+
+def _md_table(header: Sequence[str], rows: Iterable[Sequence[Any]]) -> str:
+    lines = ["| " + " | ".join(header) + " |", "|" + "---|" * len(header)]
+    lines += ["| " + " | ".join(str(c) for c in row) + " |" for row in rows]
+    return "\n".join(lines)
+
+
+def _rate(pos: int, n: int) -> str:
+    return f"{pos / n:.3f}" if n else "n/a"
+
+
+def datasheet(pool: "pd.DataFrame", labelled: "pd.DataFrame", relax: "pd.DataFrame",
+              seed: int, versions: dict[str, str]) -> str:
+    """The text of ``data_open/README.md``; every number is computed from the tables."""
+    n_pool = len(pool)
+    n_keys = pool.groupby(["prototype", "reduced_formula"]).ngroups
+    n_lab = len(labelled)
+    n_pos = int(labelled["high_spillage"].sum()) if n_lab else 0
+    status = relax["status"].value_counts().to_dict() if len(relax) else {}
+    core_h = float(labelled["core_hours"].sum()) if n_lab else 0.0
+    relax_h = float(relax["wall_s"].fillna(0).sum()) / 3600.0 if len(relax) else 0.0
+    lab_by_proto = labelled.groupby("prototype") if n_lab else None
+    proto_rows = []
+    for p in PROTOTYPES:
+        sub = pool[pool["prototype"] == p.name]
+        if lab_by_proto is not None and p.name in lab_by_proto.groups:
+            lab = lab_by_proto.get_group(p.name)
+            n, pos = len(lab), int(lab["high_spillage"].sum())
+            med = f"{lab['spillage'].median():.3f}"
+        else:
+            n, pos, med = 0, 0, "n/a"
+        proto_rows.append((p.name, p.n_atoms, p.description, len(sub), n, pos, _rate(pos, n), med))
+    el_pool: Counter[str] = Counter(e for s in pool["elements"] for e in s.split())
+    el_lab: Counter[str] = Counter()
+    el_pos: Counter[str] = Counter()
+    for s, hi in zip(labelled["elements"], labelled["high_spillage"]):
+        for e in s.split():
+            el_lab[e] += 1
+            el_pos[e] += int(hi)
+    el_rows = [(e, el_pool[e], el_lab[e], el_pos[e], _rate(el_pos[e], el_lab[e]))
+               for e in sorted(el_pool, key=lambda x: (-el_lab[x], -el_pool[x], x))]
+    ver = ", ".join(f"{k} {v}" for k, v in sorted(versions.items()))
+    status_text = ", ".join(f"{k}: {v}" for k, v in sorted(status.items())) or "none yet"
+    resid = (f"{relax.loc[relax['status'] == 'ok', 'residual_fmax_eV_per_A'].max():.3f}"
+             if status.get("ok") else "n/a")
+    return f"""# data_open: generated monolayers with spin-orbit spillage labels
+
+Licence: **{LICENCE}** (Creative Commons Attribution 4.0 International,
+https://creativecommons.org/licenses/by/4.0/). Every structure here was generated by
+this project; nothing comes from any external materials database.
+
+*This file is written by `scripts/build_open_dataset.py --stage pack`; do not edit the
+numbers by hand (the integrity test checks the file's hash).*
+
+## Contents
+
+| file | what |
+|---|---|
+| `{POOL_PARQUET}` | the unlabelled pool, one row per candidate: `id`, `prototype`, `family`, `reduced_formula`, `formula`, `elements` (space-separated), `n_elements`, `n_atoms`, `decoration` (JSON, site role -> element), `a_A`, `b_A`, `gamma_deg`, `lattice` (9 floats, row vectors, angstrom), `species`, `frac_coords` (3 per atom) |
+| `{POOL_XYZ}` | the same starting geometries as compressed extended XYZ (`id`, `prototype` per frame) |
+| `{LABELLED_PARQUET}` | relaxed and labelled monolayers: pool columns, `spillage` (max over k of gamma(k), electrons), `high_spillage` (spillage >= {POSITIVE_THRESHOLD}), `k_max`, `gap_nosoc_eV`, `gap_soc_eV`, `is_metal`, `magmom_muB`, `kmesh`, `wall_s`, `core_hours`, `relax_wall_s`, `residual_fmax_eV_per_A`, relaxed `lattice`/`species`/`frac_coords`, `gamma_k` and `kpts` (the whole gamma(k) on the mesh), `settings`, `versions` |
+| `{LABELLED_XYZ}` | relaxed labelled structures as compressed extended XYZ (`id`, `spillage` per frame) |
+| `{RELAX_PARQUET}` | every relaxation attempted, with `status` (ok, not_converged, fell_apart, failed), `reason`, residual force and the labelling outcome |
+| `{MANIFEST}` | SHA-256 and size of every file above and of this datasheet |
+
+## Counts
+
+- Pool: **{n_pool}** candidates, {n_keys} distinct (prototype, reduced formula) pairs,
+  {len(PROTOTYPES)} prototypes, {len(el_pool)} elements, seed {seed}.
+- Relaxations attempted: {len(relax)} ({status_text}); largest residual force among the
+  kept ones: {resid} eV/A.
+- Labelled: **{n_lab}**; positives at spillage >= {POSITIVE_THRESHOLD}: {n_pos}
+  (positive rate {_rate(n_pos, n_lab)}).
+- Compute: {core_h:.2f} core-hours of labelling and {relax_h:.2f} core-hours of
+  relaxation (wall time of single-core jobs).
+
+## How it was made
+
+```
+python scripts/build_open_dataset.py --seed {seed} --workers 1
+```
+
+1. **Pool** (`prescreen/prototypes.py`): {len(PROTOTYPES)} monolayer prototypes used in the
+   2D-materials literature, decorated with elements by group and valence rules (ionic
+   prototypes: a charge-balancing assignment of known oxidation states from
+   `pymatgen.core.Element.oxidation_states`; covalent prototypes: the octet rule by
+   group). Mirror-image decorations are generated once, and candidates sharing
+   prototype and reduced formula are compared with pymatgen's `StructureMatcher`.
+   Starting bond lengths are sums of covalent radii ({COVALENT_RADII_SOURCE}); ideal
+   coordination polyhedra give lattice constants and heights; {VACUUM_A:.0f} A of vacuum.
+   Identifiers `o2d-<prototype code>-<10 hex digits of BLAKE2b(seed, prototype,
+   decoration)>` are this project's own.
+2. **Subset**: cells of at most {DEFAULT_MAX_ATOMS} atoms first; prototypes take turns and each
+   turn takes the candidate whose elements are least covered so far (seeded order).
+3. **Relaxation** (`prescreen.physics.dft.relax_monolayer`): GPAW LCAO, PBE, dzp basis,
+   k-point density {RELAX_KPT_DENSITY} per reciprocal angstrom; positions by BFGS to
+   {RELAX_FMAX} eV/A (at most {RELAX_STEPS} steps), in-plane lattice by an isotropic
+   energy scan over scales {RELAX_SCALES} with a parabola fit (the in-plane cell shape
+   is not optimised); up to {RELAX_ATTEMPTS} attempts. Structures that do not converge,
+   or that are no longer one bonded, 2-periodic sheet with at least 8 A of vacuum
+   (covalent radii x 1.25 bond test), are recorded in `{RELAX_PARQUET}` and left out.
+4. **Labels** (`prescreen.physics.labeller.run_labelling` with default
+   `LabelSettings`): LCAO PBE dzp ground state, Gamma-centred k mesh (hexagonal meshes
+   contain K), Fermi-Dirac smearing, spin-orbit coupling added non-self-consistently,
+   spillage of Liu and Vanderbilt, Phys. Rev. B 90, 125133 (2014), with occupations
+   from the Fermi level at each k. Spin-paired (non-magnetic) ground states.
+
+Versions: {ver}.
+
+## Per prototype
+
+{_md_table(("prototype", "atoms", "description", "pool", "labelled", "positives", "positive rate", "median spillage"), proto_rows)}
+
+## Per element
+
+{_md_table(("element", "in pool", "labelled", "positives", "positive rate"), el_rows)}
+
+## Known limits
+
+- All structures are **hypothetical**: decorated prototypes, not known compounds. They
+  are **not screened for thermodynamic or dynamical stability**; many would not exist.
+- Labels are **PBE with non-self-consistent spin-orbit coupling** in an **LCAO (dzp)
+  basis**: band gaps are underestimated, and inversions close to the Fermi level can
+  appear or vanish with a better functional or basis.
+- Spin-paired calculations: magnetic ground states are not sought; labels of magnetic
+  compounds describe the non-magnetic state.
+- The relaxation keeps the starting cell shape and optimises the in-plane lattice
+  isotropically; distorted phases (1T') keep their starting distortion pattern.
+- A high spillage is a strong hint of a band inversion, not a proof of a topological
+  phase; confirm with an invariant.
+- The labelled subset is stratified over prototypes and elements but biased towards
+  small cells (at most {DEFAULT_MAX_ATOMS} atoms first).
+
+## How to cite
+
+> prescreen developers, *data_open: generated monolayers with spin-orbit spillage
+> labels* (version {versions.get('prescreen', '?')}), part of the prescreen software, licensed {LICENCE}.
+
+Please also cite the spillage method (S. Liu and D. Vanderbilt, Phys. Rev. B 90, 125133
+(2014)), the DFT code (GPAW: J. J. Mortensen et al., J. Chem. Phys. 160, 092503 (2024))
+and the covalent radii ({COVALENT_RADII_SOURCE}).
+"""
+
+
+def pack_stage(out: Path, work: Path, seed: int) -> dict[str, Any]:
+    """Write the labelled tables, the datasheet and the manifest; returns the manifest."""
+    import pandas as pd
+
+    pool = pd.read_parquet(out / POOL_PARQUET)
+    relax = _read_jsonl(work / "relax.jsonl")
+    records = _label_records(work)
+    labelled = _labelled_table(pool, relax, records)
+    relax_df = _relax_table(relax, records)
+    _write_parquet(labelled, out / LABELLED_PARQUET)
+    _write_parquet(relax_df, out / RELAX_PARQUET)
+    _write_extxyz_gz(((structure_from_row(r), {"id": r["id"], "spillage": r["spillage"]})
+                      for r in labelled.to_dict("records")), out / LABELLED_XYZ)
+    versions = _versions()
+    if len(labelled):
+        versions.update(json.loads(labelled["versions"].iloc[0]))
+    (out / DATASHEET).write_text(datasheet(pool, labelled, relax_df, seed, versions), encoding="utf-8")
+    files = [POOL_PARQUET, POOL_XYZ, LABELLED_PARQUET, LABELLED_XYZ, RELAX_PARQUET, DATASHEET]
+    manifest = {
+        "licence": LICENCE,
+        "seed": seed,
+        "positive_threshold": POSITIVE_THRESHOLD,
+        "counts": {"pool": int(len(pool)), "labelled": int(len(labelled)),
+                   "positives": int(labelled["high_spillage"].sum()) if len(labelled) else 0,
+                   "relaxations": int(len(relax_df))},
+        "files": {f: {"sha256": _sha256(out / f), "bytes": (out / f).stat().st_size} for f in files},
+    }
+    (out / MANIFEST).write_text(json.dumps(manifest, indent=2, sort_keys=True) + "\n", encoding="utf-8")
+    print(f"pack: {len(pool)} pool, {len(relax_df)} relaxations, {len(labelled)} labelled, "
+          f"{manifest['counts']['positives']} positive")
+    return manifest
+
+
+# --- command line -------------------------------------------------------------------
+def _parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(description=(__doc__ or "").splitlines()[0])
+    p.add_argument("--stage", choices=("all", "pool", "relax", "label", "pack"), default="all")
+    p.add_argument("--limit", type=int, default=None,
+                   help="relax and label only the first N of the stratified subset")
+    p.add_argument("--workers", type=int, default=1, help="parallel single-core jobs")
+    p.add_argument("--seed", type=int, default=DEFAULT_SEED)
+    p.add_argument("--max-atoms", type=int, default=DEFAULT_MAX_ATOMS,
+                   help="cells up to this size come first in the subset")
+    p.add_argument("--batch", type=int, default=10,
+                   help="structures relaxed before each label + pack round (stage all)")
+    p.add_argument("--timeout", type=float, default=1800.0, help="seconds per structure and step")
+    p.add_argument("--relax-kpt-density", type=float, default=RELAX_KPT_DENSITY)
+    p.add_argument("--out", type=Path, default=ROOT / "data_open")
+    p.add_argument("--work", type=Path, default=ROOT / "build" / "open_dataset",
+                   help="checkpoints and raw label files (not shipped)")
+    p.add_argument("--force-pool", action="store_true", help="regenerate the pool even if present")
+    p.add_argument("--no-progress", action="store_true")
+    p.add_argument("--traceback", action="store_true", help="show full tracebacks on error")
+    return p
+
+
+def run(args: argparse.Namespace) -> int:
+    progress = not args.no_progress
+    os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+    if args.stage in ("all", "pool"):
+        pool = build_pool(args.out, args.seed, force=args.force_pool, progress=progress)
+        if args.stage == "pool":
+            return 0
+    else:
+        import pandas as pd
+
+        if not (args.out / POOL_PARQUET).exists():
+            raise InputError("no pool yet", path=args.out / POOL_PARQUET,
+                             expected="run with --stage pool first")
+        pool = pd.read_parquet(args.out / POOL_PARQUET)
+    order = stratified_order(pool, args.seed, args.max_atoms)
+    if args.limit is not None:
+        order = order[: max(0, args.limit)]
+    relax_kw = dict(workers=args.workers, timeout_s=args.timeout,
+                    kpt_density=args.relax_kpt_density, progress=progress)
+    if args.stage == "relax":
+        relax_stage(pool, order, args.work, **relax_kw)
+    elif args.stage == "label":
+        label_stage(_read_jsonl(args.work / "relax.jsonl"), args.work, workers=args.workers,
+                    timeout_s=args.timeout, progress=progress)
+    elif args.stage == "pack":
+        pack_stage(args.out, args.work, args.seed)
+    else:
+        batch = max(1, args.batch)
+        # finish labelling what an interrupted run relaxed, then continue in batches
+        label_stage(_read_jsonl(args.work / "relax.jsonl"), args.work, workers=args.workers,
+                    timeout_s=args.timeout, progress=progress)
+        for start in range(0, len(order), batch):
+            done = {r["id"] for r in _read_jsonl(args.work / "relax.jsonl")}
+            chunk = [i for i in order[start:start + batch] if i not in done]
+            if not chunk:
+                continue
+            relaxed = relax_stage(pool, chunk, args.work, **relax_kw)
+            label_stage(relaxed, args.work, workers=args.workers, timeout_s=args.timeout,
+                        progress=progress)
+            pack_stage(args.out, args.work, args.seed)
+        pack_stage(args.out, args.work, args.seed)
+    return 0
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Command-line entry point; returns the exit code."""
+    args = _parser().parse_args(argv)
+    try:
+        return run(args)
+    except Exception as exc:
+        if args.traceback:
+            raise
+        print(f"{type(exc).__name__}: {exc}", file=sys.stderr)
+        return 1
+
+
+if __name__ == "__main__":
+    sys.exit(main())
