@@ -45,8 +45,8 @@ __all__ = [
 ]
 
 #: Columns of every discovery-curve table, in order.
-CURVE_COLUMNS: tuple[str, ...] = ("strategy", "seed", "round", "n_runs", "core_hours", "hits",
-                                  "fraction_found", "batch_size", "model_fitted", "used")
+CURVE_COLUMNS: tuple[str, ...] = ("strategy", "seed", "round", "item", "n_runs", "core_hours",
+                                  "hits", "fraction_found", "batch_size", "model_fitted", "used")
 
 
 class ModelLike(Protocol):
@@ -158,9 +158,11 @@ def replay(
     Returns
     -------
     DataFrame
-        Columns :data:`CURVE_COLUMNS`: one row per (seed, round); round 0 is the initial
-        set; ``n_runs``, ``core_hours`` and ``hits`` are cumulative; ``used`` names the
-        strategy that picked the batch.
+        Columns :data:`CURVE_COLUMNS`: one row per evaluation, in the order computed
+        (within a round, in the strategy's pick order); round 0 is the initial set;
+        ``item`` is the row of ``X`` evaluated; ``n_runs``, ``core_hours`` and ``hits`` are
+        cumulative; ``batch_size`` is the size
+        of that round; ``used`` names the strategy that picked the batch.
     """
     from tqdm.auto import tqdm
 
@@ -190,9 +192,17 @@ def replay(
         labelled = np.zeros(N, dtype=bool)
         first = rng.choice(N, size=n_initial, replace=False)
         labelled[first] = True
-        spent = float(cost_arr[first].sum())
-        rows.append((label, seed, 0, int(n_initial), spent, int(y_arr[first].sum()),
-                     y_arr[first].sum() / P, int(n_initial), False, "initial random"))
+        count = {"runs": 0, "hours": 0.0, "hits": 0}
+
+        def record(picked: np.ndarray, r: int, fitted: bool, used: str) -> None:
+            for i in picked:  # pick order within the round
+                count["runs"] += 1
+                count["hours"] += float(cost_arr[i])
+                count["hits"] += int(y_arr[i])
+                rows.append((label, seed, r, int(i), count["runs"], count["hours"], count["hits"],
+                             count["hits"] / P, int(picked.size), fitted, used))
+
+        record(first, 0, False, "initial random")
         r = 0
         while True:
             hits = int(y_arr[labelled].sum())
@@ -213,9 +223,9 @@ def replay(
                           groups=None if groups is None else groups[lab_idx])
                 mean, std = model.predict_uncertainty(take(pool))
                 members = model.ensemble_proba(take(pool)) if hasattr(model, "ensemble_proba") else None
-                chosen = strategy.for_round(r - 1, spent) if hasattr(strategy, "for_round") else strategy
+                chosen = strategy.for_round(r - 1, count["hours"]) if hasattr(strategy, "for_round") else strategy
             else:
-                mean = np.full(pool.size, P / N)  # not used by random selection
+                mean = np.full(pool.size, counts[1] / counts.sum())  # unused by random selection
                 std = np.zeros(pool.size)
                 members = None
                 chosen = random_selection
@@ -226,10 +236,7 @@ def replay(
                 break
             picked = np.asarray([int(i) for i in proposal.ids], dtype=int)
             labelled[picked] = True
-            spent += float(cost_arr[picked].sum())
-            hits = int(y_arr[labelled].sum())
-            rows.append((label, seed, r, int(labelled.sum()), spent, hits, hits / P,
-                         int(picked.size), fitted, strategy_name(chosen)))
+            record(picked, r, fitted, strategy_name(chosen))
         bar.update(1)
     bar.close()
     return pd.DataFrame(rows, columns=list(CURVE_COLUMNS))
@@ -245,7 +252,8 @@ def random_reference(y, cost) -> pd.DataFrame:
     N, P = y_arr.shape[0], int(y_arr.sum())
     n = np.arange(N + 1)
     hits = n * P / N
-    return pd.DataFrame({"strategy": "random (expected)", "seed": -1, "round": n, "n_runs": n,
+    return pd.DataFrame({"strategy": "random (expected)", "seed": -1, "round": n, "item": -1,
+                         "n_runs": n,
                          "core_hours": n * c.mean(), "hits": hits, "fraction_found": hits / P,
                          "batch_size": 1, "model_fitted": False, "used": "random (expected)"})
 
@@ -259,7 +267,8 @@ def oracle_reference(y, cost) -> pd.DataFrame:
     hits = np.concatenate([[0], np.cumsum(y_arr[order])])
     spent = np.concatenate([[0.0], np.cumsum(c[order])])
     n = np.arange(N + 1)
-    return pd.DataFrame({"strategy": "oracle", "seed": -1, "round": n, "n_runs": n,
+    return pd.DataFrame({"strategy": "oracle", "seed": -1, "round": n,
+                         "item": np.concatenate([[-1], order]), "n_runs": n,
                          "core_hours": spent, "hits": hits, "fraction_found": hits / P,
                          "batch_size": 1, "model_fitted": False, "used": "oracle"})
 
