@@ -8,6 +8,9 @@ The cost is log-linear (a power law) in the size descriptors of the calculation:
                          + a_v log(volume) + a_n log(n_atoms) + log(1 + soc_factor) - log(1 + soc_factor0)
 
 so that ``core_hours = (t_scalar + t_soc)`` with ``t_soc = soc_factor * t_scalar``.
+The in-plane cell area enters through the k-mesh: at a fixed k-point density the
+number of k-points falls as 1/area (see :func:`kpoints_for_cell`); the vacuum enters
+through the volume.
 The *shape* of the default follows the usual textbook scaling of a plane-wave code
 (common practice): every irreducible k-point is an independent problem (``a_k = 1``);
 the number of plane waves at fixed cutoff is proportional to the cell volume,
