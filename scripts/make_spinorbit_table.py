@@ -32,7 +32,6 @@ import shutil
 import subprocess
 import sys
 import tempfile
-from dataclasses import dataclass
 from pathlib import Path
 
 from pymatgen.core import Element
@@ -56,21 +55,6 @@ SPLIT_LEVEL_RE = re.compile(
     r"^\s*(\d+)\s+(\d)\s+(\d\.\d)\s+(\d[SPDF])\s+\d+\(\s*([\d.]+)\)\s+(-?[\d.]+)\s+(-?[\d.]+)\s+(-?[\d.]+)\s*$"
 )
 L_LETTER = {"s": 0, "p": 1, "d": 2, "f": 3}
-
-
-@dataclass(frozen=True)
-class ShellResult:
-    """Spin-orbit split levels of one shell (energies in eV)."""
-
-    label: str
-    occupation: float
-    e_low_j: float
-    e_high_j: float
-    note: str = ""
-
-    @property
-    def splitting(self) -> float:
-        return self.e_high_j - self.e_low_j
 
 
 def _config(element: Element) -> tuple[str, dict[str, float]]:
@@ -215,7 +199,8 @@ def main(argv: list[str] | None = None) -> int:
         "rydberg_eV": RYDBERG_EV,
         "script": "scripts/make_spinorbit_table.py",
     }
-    OUT_JSON.write_text(json.dumps(meta, indent=2) + "\n") if args.out == OUT_CSV else None
+    if args.out == OUT_CSV:
+        OUT_JSON.write_text(json.dumps(meta, indent=2) + "\n")
     failed = [r["symbol"] for r in rows if "did not converge" in str(r["note"]) or "timed" in str(r["note"])]
     print(f"wrote {args.out} ({len(rows)} elements; failed: {failed or 'none'})")
     return 0

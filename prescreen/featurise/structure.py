@@ -18,16 +18,12 @@ from __future__ import annotations
 
 import warnings
 from functools import lru_cache
-from typing import TYPE_CHECKING
 
 import numpy as np
 
 from prescreen.errors import InputError
 from prescreen.featurise.base import FeatureBatch, FeatureBlock
 from prescreen.prototypes import BOND_SCALE, COVALENT_RADII_SOURCE
-
-if TYPE_CHECKING:  # pragma: no cover - typing only
-    from pymatgen.core import Structure
 
 __all__ = [
     "SYMPREC_A",
