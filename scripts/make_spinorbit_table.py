@@ -39,9 +39,9 @@ from tqdm import tqdm
 
 __all__ = ["main", "run_element", "SPLIT_LEVEL_RE"]
 
-#: Rydberg energy in eV, CODATA 2018 (recorded in the metadata; energies are read from the
-#: e(eV) column ld1.x prints, which uses its own value 13.60569312 eV)
-RYDBERG_EV = 13.605693122994
+#: Energies are read from the e(eV) column ld1.x prints (it converts with 1 Ry =
+#: 13.60569312 eV).
+
 #: Exchange-correlation functional used in the atomic runs (Perdew-Burke-Ernzerhof GGA).
 DFT = "PBE"
 #: Seconds allowed for one ld1.x run before the element is recorded as failed.
@@ -160,6 +160,12 @@ def _version(ld1: str) -> str:
     return f"ld1.x {m.group(1) if m else 'unknown'} (Debian quantum-espresso {deb or 'unknown'})"
 
 
+def _pymatgen_version() -> str:
+    from importlib.metadata import version
+
+    return version("pymatgen")
+
+
 def main(argv: list[str] | None = None) -> int:
     """Regenerate the spin-orbit splitting table; return the process exit code."""
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
@@ -196,7 +202,8 @@ def main(argv: list[str] | None = None) -> int:
         },
         "shells": "p: n p with n the period; d: (n-1) d for groups 1-12 and the f block from "
         "period 4 (filled semicore d of groups 13-18 not recorded)",
-        "rydberg_eV": RYDBERG_EV,
+        "resolution_eV": "1e-4 (ld1.x prints eigenvalues in eV with four decimals)",
+        "pymatgen_version": _pymatgen_version(),
         "script": "scripts/make_spinorbit_table.py",
     }
     if args.out == OUT_CSV:

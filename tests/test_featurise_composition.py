@@ -246,3 +246,16 @@ def test_every_featuriser_has_names_and_citations():
     for f in base_mod.default_featurisers():
         assert isinstance(f, base_mod.Featuriser)
         assert f.feature_names() and f.citations()
+
+
+def test_featurise_candidates_indexes_by_id():
+    from prescreen.candidate import Candidate
+    from prescreen.featurise import featurise_candidates
+
+    cands = [Candidate(id="a", formula="MoS2", source="x.csv:2"),
+             Candidate(id="b", formula="Bi2Se3", source="x.csv:3")]
+    frame = featurise_candidates(cands, progress=False)
+    assert list(frame.index) == ["a", "b"]
+    expected = featurise(["MoS2", "Bi2Se3"], progress=False)
+    np.testing.assert_array_equal(frame.drop(columns="error").to_numpy(),
+                                  expected.drop(columns="error").to_numpy())

@@ -6,6 +6,8 @@ Use :func:`featurise` for a table; :func:`schema_version` identifies the feature
 
 from __future__ import annotations
 
+from typing import TYPE_CHECKING, Sequence
+
 from prescreen.featurise.base import (
     ERROR_COLUMN,
     FeatureBatch,
@@ -24,6 +26,11 @@ from prescreen.featurise.composition import (
 from prescreen.featurise.formula import ParsedFormulas, parse_formulas, parse_one
 from prescreen.featurise.spinorbit import SpinOrbitFeaturiser
 from prescreen.featurise.structure import MonolayerStructureFeaturiser
+
+if TYPE_CHECKING:  # pragma: no cover - typing only
+    import pandas as pd
+
+    from prescreen.candidate import Candidate
 
 __all__ = [
     "ERROR_COLUMN",
@@ -46,7 +53,13 @@ __all__ = [
 ]
 
 
-def featurise_candidates(candidates, *, featurisers=None, progress=True, n_jobs=1):
+def featurise_candidates(
+    candidates: Sequence[Candidate],
+    *,
+    featurisers: Sequence[Featuriser] | None = None,
+    progress: bool = True,
+    n_jobs: int = 1,
+) -> pd.DataFrame:
     """Featurise :class:`prescreen.candidate.Candidate` records (see :func:`featurise`).
 
     Parameters
