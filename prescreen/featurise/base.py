@@ -170,10 +170,15 @@ def _check_names(featurisers: Sequence[Featuriser]) -> list[str]:
 
 
 def _fill_formulas(formulas: Sequence[str], structures: Sequence["Structure | None"]) -> list:
+    """Take a missing (None, NaN) or blank formula from the row's structure, if it has one."""
     out = []
     for f, s in zip(formulas, structures):
-        if (f is None or (isinstance(f, str) and not f.strip())) and s is not None:
-            f = s.composition.formula.replace(" ", "")
+        blank = f is None or (isinstance(f, float) and f != f) or (isinstance(f, str) and not f.strip())
+        if blank and s is not None:
+            try:
+                f = s.composition.formula.replace(" ", "")
+            except AttributeError:  # not a Structure: the structure featuriser reports it
+                pass
         out.append(f)
     return out
 
