@@ -76,6 +76,7 @@ __all__ = [
     "MODEL_FORMAT",
     "ISOTONIC_MIN_POSITIVES",
     "SCORE_CHUNK_ROWS",
+    "MAX_BIN",
 ]
 
 #: Identifier written into every model file; bumped when the layout changes.
@@ -92,6 +93,11 @@ ISOTONIC_MIN_POSITIVES: int = 100
 #: Rows scored per block in :meth:`SpillageClassifier.ensemble_proba`; bounds the extra
 #: memory of scoring to about ``n_models * SCORE_CHUNK_ROWS * 8`` bytes per block.
 SCORE_CHUNK_ROWS: int = 131_072
+
+#: Histogram bins per feature. LightGBM's default is 255; 63 halved the fit time on
+#: 10,000 x 176 features here (1.78 -> 0.91 CPU s per booster) and is ample for a few
+#: thousand labelled rows (measured in this project, not a published value).
+MAX_BIN: int = 63
 
 #: Folds of the nested comparison of Platt against isotonic under ``"auto"``.
 _AUTO_FOLDS: int = 5
@@ -322,7 +328,7 @@ class SpillageClassifier(ClassifierMixin, BaseEstimator):
         num_leaves: int = 15,
         min_child_samples: int = 10,
         subsample: float = 0.8,
-        colsample: float = 0.8,
+        colsample: float = 0.5,
         calibration: str | None = "auto",
         calibration_cv: int = 5,
         class_weight: str | None = "balanced",
@@ -507,7 +513,7 @@ class SpillageClassifier(ClassifierMixin, BaseEstimator):
                 label=y01 if rows is None else y01[rows],
                 weight=tree_w if rows is None else tree_w[rows],
                 feature_name=[f"f{i}" for i in range(X.shape[1])],
-                params={"verbose": -1, "max_bin": 255, "min_data_in_bin": 1},
+                params={"verbose": -1, "max_bin": MAX_BIN, "min_data_in_bin": 1},
                 free_raw_data=True,
             )
             return lgb.train(self._booster_params(seed), ds, num_boost_round=int(self.n_estimators))
