@@ -570,7 +570,7 @@ class SpillageClassifier(ClassifierMixin, BaseEstimator):
         X_dummy = np.zeros((len(y01), 1))
         if groups is not None:
             n_groups = len(np.unique(groups))
-            k = min(n_splits, n_groups)
+            k = min(n_splits, n_groups, max(smallest, 2))
             if k < 2:
                 raise InputError(
                     "calibration by grouped cross-validation needs at least 2 groups",
@@ -678,7 +678,8 @@ class SpillageClassifier(ClassifierMixin, BaseEstimator):
         Parameters
         ----------
         path
-            Folder to write (created; files of an earlier save are overwritten).
+            Folder to write (created; model files of an earlier save are replaced,
+            other files are left alone).
         feature_schema
             Version string of the featurisers that produced the training columns.
         training_data_hash
@@ -703,6 +704,10 @@ class SpillageClassifier(ClassifierMixin, BaseEstimator):
             text = booster.model_to_string(num_iteration=-1).encode()
             (path / name).write_bytes(text)
             member_files.append({"file": name, "sha256": _sha256_bytes(text)})
+        written = {entry["file"] for entry in member_files}
+        for stale in path.glob("member_*.txt"):  # members of an earlier, larger save
+            if stale.name not in written:
+                stale.unlink()
         names = getattr(self, "feature_names_in_", None)
         meta = {
             "format": MODEL_FORMAT,

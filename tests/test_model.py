@@ -216,3 +216,12 @@ def test_wrong_columns_at_predict_time(split_data, magpie_names):
     model = SpillageClassifier(**SMALL).fit(pd.DataFrame(Xtr, columns=magpie_names), ytr)
     with pytest.raises(ValueError, match="feature names"):
         model.predict_proba(pd.DataFrame(Xte, columns=magpie_names[::-1]))
+
+
+def test_saving_a_smaller_model_removes_old_members(tmp_path, split_data):
+    Xtr, ytr, Xte, _ = split_data
+    SpillageClassifier(**SMALL).fit(Xtr, ytr).save(tmp_path, feature_schema="s1")
+    small = SpillageClassifier(**(SMALL | {"n_models": 2})).fit(Xtr, ytr)
+    small.save(tmp_path, feature_schema="s1")
+    assert sorted(p.name for p in tmp_path.glob("member_*.txt")) == ["member_00.txt", "member_01.txt"]
+    np.testing.assert_array_equal(SpillageClassifier.load(tmp_path).predict_proba(Xte), small.predict_proba(Xte))
