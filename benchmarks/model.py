@@ -156,6 +156,32 @@ def find_labelled_table(root: Path) -> Path | None:
     return None
 
 
+def _structure(lattice, species, frac_coords):
+    from pymatgen.core import Lattice, Structure
+
+    return Structure(Lattice(np.reshape(np.asarray(lattice, float), (3, 3))), list(species),
+                     np.reshape(np.asarray(frac_coords, float), (-1, 3)))
+
+
+def table_structures(table, root: Path) -> tuple[list | None, str]:
+    """pymatgen Structures of the labelled rows, from their own columns or the pool's."""
+    import pandas as pd
+
+    cols = ("lattice", "species", "frac_coords")
+    source = table
+    if not set(cols) <= set(table.columns):
+        pool = root / "pool.parquet"
+        if "id" not in table.columns or not pool.is_file():
+            return None, "formula only: no structure columns"
+        pool_table = pd.read_parquet(pool, columns=["id", *cols]).set_index("id")
+        known = table["id"].isin(pool_table.index)
+        if not known.all():
+            return None, f"formula only: {int((~known).sum())} labelled ids not in {pool.name}"
+        source = pool_table.loc[table["id"]].reset_index()
+    structures = [_structure(*row) for row in source[list(cols)].itertuples(index=False)]
+    return structures, "formula and structure"
+
+
 def part_cv(seed: int, data: Path) -> None:
     import pandas as pd
 
@@ -173,12 +199,15 @@ def part_cv(seed: int, data: Path) -> None:
     table = table.dropna(subset=["spillage"]).reset_index(drop=True)
     formulas = table["formula"].astype(str).tolist()
     y = (table["spillage"].to_numpy(dtype=float) >= SPILLAGE_THRESHOLD).astype(int)
+    structures, structure_note = table_structures(table, table_path.parent)
     try:
         from prescreen.featurise import featurise, schema_version
 
-        features = featurise(formulas, progress=False)
+        features = featurise(formulas, structures, progress=False)
+        n_failed = int(features["error"].notna().sum()) if "error" in features.columns else 0
         features = features.drop(columns=[c for c in ("error",) if c in features.columns])
-        feature_note = f"{features.shape[1]} features from prescreen.featurise (formula only), schema {schema_version()[:12]}"
+        feature_note = (f"{features.shape[1]} features from prescreen.featurise ({structure_note}; "
+                        f"{n_failed} rows with a featurisation error, kept with NaN), schema {schema_version()[:12]}")
     except Exception as exc:
         from prescreen.baselines import magpie_features
 
