@@ -18,6 +18,7 @@ their recorded wall times are reported).
 from __future__ import annotations
 
 import argparse
+import os
 import statistics
 import tempfile
 import time
@@ -93,7 +94,7 @@ def main(argv: list[str] | None = None) -> int:
 
     print(f"output folder: {out}")
     print(f"{'id':<20} {'atoms':>5} {'mesh':>7} {'spillage':>8} {'k_max':>16} "
-          f"{'gap':>6} {'gapSOC':>6} {'metal':>5} {'wall_s':>7}")
+          f"{'gap':>6} {'gapSOC':>6} {'metal':>5} {'wall_s':>7} {'cpu_s':>7}")
     for r in records:
         if not r.ok:
             print(f"{r.id:<20} {atoms_of[r.id]:>5} FAILED after {r.wall_s:.1f} s: {r.error}")
@@ -101,7 +102,8 @@ def main(argv: list[str] | None = None) -> int:
         mesh = "x".join(map(str, r.settings["kmesh"][:2]))
         k = "(" + ",".join(f"{x:+.2f}" for x in r.k_max[:2]) + ")"
         print(f"{r.id:<20} {atoms_of[r.id]:>5} {mesh:>7} {r.spillage:8.3f} {k:>16} "
-              f"{r.gap_nosoc_eV:6.2f} {r.gap_soc_eV:6.2f} {str(r.is_metal):>5} {r.wall_s:7.1f}")
+              f"{r.gap_nosoc_eV:6.2f} {r.gap_soc_eV:6.2f} {str(r.is_metal):>5} {r.wall_s:7.1f} "
+              f"{r.cpu_s:7.1f}")
     ok = [r for r in records if r.ok]
     walls = [r.wall_s for r in ok]
     if not walls:
@@ -118,8 +120,18 @@ def main(argv: list[str] | None = None) -> int:
     for n, w in sorted(by_size.items()):
         print(f"  {n}-atom cells: {len(w)} structures, median {statistics.median(w):.1f} s, "
               f"{3600.0 / statistics.mean(w):.0f} per core-hour")
+    cpu = [r.cpu_s for r in ok]
     print(f"monolayers per core-hour (all): {len(ok) / core_h:.0f} "
           f"({core_h:.3f} core-hours in total, one core per calculation)")
+    print(f"CPU time per structure: median {statistics.median(cpu):.1f} s; "
+          f"monolayers per CPU-hour {3600.0 * len(ok) / sum(cpu):.0f} "
+          "(equals the per-core-hour figure on an otherwise idle machine)")
+    try:
+        load = os.getloadavg()[0]
+        print(f"load average at the end: {load:.1f} on {os.cpu_count()} cores "
+              "(wall times grow when other work shares the cores)")
+    except OSError:
+        pass
     if summary.n_skipped == 0:
         print(f"wall clock for the whole set with {args.workers} workers: {wall:.0f} s "
               f"= {3600.0 * len(ok) / wall:.0f} monolayers per hour on this machine")

@@ -197,6 +197,8 @@ class LabelRecord:
         Wall time (s) of the calculation.
     core_hours
         Cores times wall time (hours); every calculation runs on one core.
+    cpu_s
+        CPU time (s) the calculation used; below ``wall_s`` when the core was shared.
     gamma
         Shape (nk,), gamma(k) on the full mesh (electrons).
     kpts
@@ -223,6 +225,7 @@ class LabelRecord:
     kpts: np.ndarray = field(repr=False)
     status: str = "ok"
     error: str | None = None
+    cpu_s: float = math.nan
 
     def __post_init__(self) -> None:
         if self.status not in ("ok", "failed"):
@@ -272,14 +275,15 @@ class LabelRecord:
     def from_dict(cls, data: dict[str, Any]) -> "LabelRecord":
         """Inverse of :meth:`as_dict` (missing arrays become empty)."""
         names = [f.name for f in fields(cls)]
-        required = [n for n in names if n not in ("gamma", "kpts", "status", "error")]
+        required = [n for n in names
+                    if n not in ("gamma", "kpts", "status", "error", "cpu_s")]
         missing = [n for n in required if n not in data]
         if missing:
             raise InputError("label record lacks keys", value=sorted(data),
                              expected=f"also {missing}")
         d = {n: data[n] for n in names if n in data}
-        for key in ("spillage", "gap_nosoc_eV", "gap_soc_eV", "magmom"):
-            d[key] = math.nan if d[key] is None else float(d[key])
+        for key in ("spillage", "gap_nosoc_eV", "gap_soc_eV", "magmom", "cpu_s"):
+            d[key] = math.nan if d.get(key) is None else float(d[key])
         d["k_max"] = np.full(3, np.nan) if d["k_max"] is None else d["k_max"]
         d.setdefault("gamma", np.zeros(0))
         d.setdefault("kpts", np.zeros((0, 3)))
@@ -529,7 +533,7 @@ def label_structure(structure: "Structure | Atoms",
     """
     from prescreen.physics.spillage import occupations_at_fermi_level, spillage_from_overlap
 
-    t0 = time.perf_counter()
+    t0, c0 = time.perf_counter(), time.process_time()
     atoms = prepare_monolayer(structure, settings.vacuum_A, name=id)
     formula = _formula(atoms)
     kmesh = choose_kpts(atoms, settings)
@@ -584,7 +588,7 @@ def label_structure(structure: "Structure | Atoms",
                        k_max=kpts[k_arg], gap_nosoc_eV=gap_nosoc, gap_soc_eV=gap_soc,
                        is_metal=metal, magmom=magmom, settings=sdict,
                        versions=code_versions(), wall_s=wall, core_hours=wall / 3600.0,
-                       gamma=gamma, kpts=kpts)
+                       gamma=gamma, kpts=kpts, cpu_s=time.process_time() - c0)
 
 
 def relax_monolayer(structure: "Structure | Atoms",
