@@ -61,7 +61,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 from numpy.typing import ArrayLike, NDArray
-from sklearn.base import BaseEstimator, ClassifierMixin
+from sklearn.base import BaseEstimator, ClassifierMixin, RegressorMixin
 from sklearn.isotonic import IsotonicRegression
 from sklearn.model_selection import StratifiedGroupKFold, StratifiedKFold
 from sklearn.utils.multiclass import check_classification_targets
@@ -71,6 +71,7 @@ from prescreen.errors import InputError, SchemaMismatchError
 
 __all__ = [
     "SpillageClassifier",
+    "SpillageRegressor",
     "Calibrator",
     "training_data_hash",
     "MODEL_FORMAT",
@@ -264,8 +265,242 @@ def _package_versions() -> dict[str, str]:
     return out
 
 
+# ----------------------------------------------------------------------- shared machinery
+class _BoostedEnsemble:
+    """What the LightGBM ensembles share: parameter checks, parallel boosters, model files.
+
+    A mixin for estimators that hold ``n_models``, ``n_estimators``, ``learning_rate``,
+    ``num_leaves``, ``min_child_samples``, ``subsample``, ``colsample``,
+    ``random_state`` and ``n_jobs``.
+    """
+
+    #: LightGBM objective of the members.
+    _objective: str = "binary"
+
+    def _check_params(self) -> None:
+        integral = (int, np.integer)
+        checks = [
+            ("n_models", isinstance(self.n_models, integral) and self.n_models >= 1, "an int >= 1"),
+            ("n_estimators", isinstance(self.n_estimators, integral) and self.n_estimators >= 1, "an int >= 1"),
+            ("num_leaves", isinstance(self.num_leaves, integral) and self.num_leaves >= 2, "an int >= 2"),
+            (
+                "min_child_samples",
+                isinstance(self.min_child_samples, integral) and self.min_child_samples >= 1,
+                "an int >= 1",
+            ),
+            ("learning_rate", np.isscalar(self.learning_rate) and float(self.learning_rate) > 0, "a number > 0"),
+            ("subsample", np.isscalar(self.subsample) and 0 < float(self.subsample) <= 1, "a number in (0, 1]"),
+            ("colsample", np.isscalar(self.colsample) and 0 < float(self.colsample) <= 1, "a number in (0, 1]"),
+            (
+                "n_jobs",
+                self.n_jobs is None or (isinstance(self.n_jobs, integral) and (self.n_jobs >= 1 or self.n_jobs == -1)),
+                "None, -1 or an int >= 1",
+            ),
+            *self._extra_param_checks(),
+        ]
+        for name, ok, expected in checks:
+            if not ok:
+                raise InputError(
+                    f"bad parameter {name} of {type(self).__name__}", value=getattr(self, name), expected=expected
+                )
+
+    def _extra_param_checks(self) -> list[tuple[str, bool, str]]:
+        return []
+
+    def _threads(self) -> int:
+        if self.n_jobs is None:
+            return 1
+        if self.n_jobs == -1:
+            return os.cpu_count() or 1
+        return int(self.n_jobs)
+
+    def _map(self, fn: Callable[[Any], Any], items: Sequence[Any]) -> list[Any]:
+        """``[fn(item) for item in items]``, on ``n_jobs`` threads when more than one.
+
+        LightGBM releases the GIL, so single-threaded boosters run side by side; this
+        scales better than LightGBM's own OpenMP threads on a busy machine, where its
+        spinning barriers lose most of the time (measured here: one booster on 2
+        OpenMP threads took 17x longer than on 1 while other jobs shared the cores).
+        """
+        threads = min(self._threads(), len(items))
+        if threads <= 1:
+            return [fn(item) for item in items]
+        from concurrent.futures import ThreadPoolExecutor
+
+        with ThreadPoolExecutor(max_workers=threads) as pool:
+            return list(pool.map(fn, items))
+
+    def _booster_params(self, seed: int) -> dict[str, Any]:
+        return {
+            "objective": self._objective,
+            "learning_rate": float(self.learning_rate),
+            "num_leaves": int(self.num_leaves),
+            "min_data_in_leaf": int(self.min_child_samples),
+            "min_sum_hessian_in_leaf": 0.0,
+            "bagging_fraction": float(self.subsample),
+            "bagging_freq": 1 if float(self.subsample) < 1.0 else 0,
+            "feature_fraction": float(self.colsample),
+            "bagging_seed": seed,
+            "feature_fraction_seed": seed,
+            "deterministic": True,
+            "force_row_wise": True,
+            "num_threads": 1,  # parallel over boosters instead, see _map
+            "verbose": -1,
+        }
+
+    def _train_boosters(
+        self, X: NDArray, y: NDArray, w: NDArray, jobs: Sequence[tuple[NDArray[np.intp] | None, int]]
+    ) -> list[Any]:
+        """One booster per ``(rows, seed)`` job (``rows=None``: all rows), in job order."""
+        import lightgbm as lgb
+
+        names = [f"f{i}" for i in range(X.shape[1])]  # LightGBM refuses some characters
+
+        def train(job: tuple[NDArray[np.intp] | None, int]) -> lgb.Booster:
+            rows, seed = job
+            take = slice(None) if rows is None else rows
+            ds = lgb.Dataset(
+                X[take],
+                label=y[take],
+                weight=w[take],
+                feature_name=names,
+                params={"verbose": -1, "max_bin": MAX_BIN, "min_data_in_bin": 1},
+                free_raw_data=True,
+            )
+            return lgb.train(self._booster_params(seed), ds, num_boost_round=int(self.n_estimators))
+
+        return self._map(train, list(jobs))
+
+    def _raw_members(self, X: pd.DataFrame | ArrayLike) -> NDArray[np.float64]:
+        """Raw booster outputs of every member, shape ``(n_models, n)``, in row blocks."""
+        check_is_fitted(self, "members_")
+        X = validate_data(self, X, reset=False, dtype=[np.float64, np.float32], ensure_all_finite="allow-nan")
+        out = np.empty((len(self.members_), X.shape[0]))
+        for start in range(0, X.shape[0], SCORE_CHUNK_ROWS):
+            block = X[start : start + SCORE_CHUNK_ROWS]
+            raw = self._map(lambda b: b.predict(block, raw_score=True, num_threads=1), self.members_)
+            out[:, start : start + len(block)] = np.stack(raw)
+        return out
+
+    # ---------------------------------------------------------------- model files
+    def _params_as_json(self) -> dict[str, Any]:
+        params = self.get_params()
+        if not isinstance(self.random_state, (int, np.integer, type(None))):
+            params["random_state"] = "generator"  # a Generator's state is not kept
+        if isinstance(params.get("class_weight"), dict):
+            params["class_weight"] = [[_plain(k), float(v)] for k, v in params["class_weight"].items()]
+        return {k: _plain(v) for k, v in params.items()}
+
+    def _write(
+        self,
+        path: str | Path,
+        *,
+        feature_schema: str,
+        training_data_hash: str | None,
+        metrics: dict | None,
+        extra: dict[str, Any],
+    ) -> None:
+        check_is_fitted(self, "members_")
+        if not isinstance(feature_schema, str) or not feature_schema:
+            raise InputError("feature_schema must be a non-empty string", value=feature_schema)
+        path = Path(path)
+        path.mkdir(parents=True, exist_ok=True)
+        member_files = []
+        for i, booster in enumerate(self.members_):
+            name = f"member_{i:02d}.txt"
+            text = booster.model_to_string(num_iteration=-1).encode()
+            (path / name).write_bytes(text)
+            member_files.append({"file": name, "sha256": _sha256_bytes(text)})
+        written = {entry["file"] for entry in member_files}
+        for stale in path.glob("member_*.txt"):  # members of an earlier, larger save
+            if stale.name not in written:
+                stale.unlink()
+        names = getattr(self, "feature_names_in_", None)
+        meta = {
+            "format": MODEL_FORMAT,
+            "estimator": type(self).__name__,
+            "feature_schema": feature_schema,
+            "feature_schema_sha256": _sha256_bytes(feature_schema.encode()),
+            "feature_names": None if names is None else [str(n) for n in names],
+            "n_features_in": int(self.n_features_in_),
+            "training_data_hash": training_data_hash,
+            "metrics": metrics,
+            "params": self._params_as_json(),
+            "members": member_files,
+            "package_versions": _package_versions(),
+        } | extra
+        text = json.dumps(meta, indent=2, sort_keys=True, allow_nan=False) + "\n"
+        (path / _METADATA).write_text(text, encoding="utf-8")
+
+    @classmethod
+    def _read(cls, path: str | Path, expected_schema: str | None) -> tuple[Any, dict[str, Any], Path]:
+        """The model with its common state set, its metadata and the metadata path."""
+        import lightgbm as lgb
+
+        path = Path(path)
+        if path.name == _METADATA:
+            path = path.parent
+        meta_path = path / _METADATA
+        try:
+            meta = json.loads(meta_path.read_text(encoding="utf-8"))
+        except FileNotFoundError as exc:
+            raise InputError("no model here", path=meta_path, expected=f"a folder written by {cls.__name__}.save") from exc
+        except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+            raise InputError(f"model metadata is not valid JSON: {exc}", path=meta_path) from exc
+        if not isinstance(meta, dict) or meta.get("format") != MODEL_FORMAT:
+            raise InputError(
+                "unknown model file format",
+                path=meta_path,
+                value=meta.get("format") if isinstance(meta, dict) else type(meta).__name__,
+                expected=MODEL_FORMAT,
+            )
+        if meta.get("estimator") != cls.__name__:
+            raise InputError(
+                "the model file holds another kind of model",
+                path=meta_path,
+                value=meta.get("estimator"),
+                expected=cls.__name__,
+            )
+        schema = meta.get("feature_schema")
+        if expected_schema is not None and schema != expected_schema:
+            raise SchemaMismatchError(
+                f"{meta_path}: the model was trained on feature schema {schema!r} but the "
+                f"featurisers in use have schema {expected_schema!r}; retrain the model or "
+                "use the featuriser version it was trained with"
+            )
+        try:
+            params = dict(meta["params"])
+            if params.get("random_state") == "generator":
+                params["random_state"] = None
+            if isinstance(params.get("class_weight"), list):  # saved as [label, factor] pairs
+                params["class_weight"] = {label: factor for label, factor in params["class_weight"]}
+            model = cls(**params)
+            model.n_features_in_ = int(meta["n_features_in"])
+            if meta["feature_names"] is not None:
+                model.feature_names_in_ = np.asarray(meta["feature_names"], dtype=object)
+            members = []
+            for entry in meta["members"]:
+                member_path = path / entry["file"]
+                data = member_path.read_bytes()
+                if _sha256_bytes(data) != entry["sha256"]:
+                    raise InputError(
+                        "model member does not match the checksum in metadata.json",
+                        path=member_path,
+                        value=_sha256_bytes(data),
+                        expected=entry["sha256"],
+                    )
+                members.append(lgb.Booster(model_str=data.decode()))
+            model.members_ = members
+        except InputError:
+            raise
+        except (KeyError, TypeError, ValueError, OSError) as exc:
+            raise InputError(f"damaged model file: {type(exc).__name__}: {exc}", path=meta_path) from exc
+        model.metadata_ = meta
+        return model, meta, meta_path
+
+
 # ---------------------------------------------------------------------------- estimator
-class SpillageClassifier(ClassifierMixin, BaseEstimator):
+class SpillageClassifier(ClassifierMixin, _BoostedEnsemble, BaseEstimator):
     """Calibrated probability of high spillage from a LightGBM ensemble, with spread.
 
     Parameters
@@ -354,65 +589,20 @@ class SpillageClassifier(ClassifierMixin, BaseEstimator):
         tags.classifier_tags.multi_class = False
         return tags
 
-    # ------------------------------------------------------------------ parameters
-    def _check_params(self) -> None:
-        def need(ok: bool, name: str, expected: str) -> None:
-            if not ok:
-                raise InputError(
-                    f"bad parameter {name} of {type(self).__name__}",
-                    value=getattr(self, name),
-                    expected=expected,
-                )
-
-        integral = (int, np.integer)
-        need(isinstance(self.n_models, integral) and self.n_models >= 1, "n_models", "an int >= 1")
-        need(isinstance(self.n_estimators, integral) and self.n_estimators >= 1, "n_estimators", "an int >= 1")
-        need(isinstance(self.num_leaves, integral) and self.num_leaves >= 2, "num_leaves", "an int >= 2")
-        need(
-            isinstance(self.min_child_samples, integral) and self.min_child_samples >= 1,
-            "min_child_samples",
-            "an int >= 1",
-        )
-        need(isinstance(self.calibration_cv, integral) and self.calibration_cv >= 2, "calibration_cv", "an int >= 2")
-        need(np.isscalar(self.learning_rate) and float(self.learning_rate) > 0, "learning_rate", "a number > 0")
-        need(np.isscalar(self.subsample) and 0 < float(self.subsample) <= 1, "subsample", "a number in (0, 1]")
-        need(np.isscalar(self.colsample) and 0 < float(self.colsample) <= 1, "colsample", "a number in (0, 1]")
-        need(self.calibration in _CALIBRATIONS, "calibration", "one of 'auto', 'isotonic', 'sigmoid', None")
-        need(
-            isinstance(self.class_weight, dict) or self.class_weight in _CLASS_WEIGHTS,
-            "class_weight",
-            "'balanced', None or a dict {label: weight}",
-        )
-        need(
-            self.n_jobs is None or (isinstance(self.n_jobs, integral) and (self.n_jobs >= 1 or self.n_jobs == -1)),
-            "n_jobs",
-            "None, -1 or an int >= 1",
-        )
-
-    def _threads(self) -> int:
-        if self.n_jobs is None:
-            return 1
-        if self.n_jobs == -1:
-            return os.cpu_count() or 1
-        return int(self.n_jobs)
-
-    def _booster_params(self, seed: int) -> dict[str, Any]:
-        return {
-            "objective": "binary",
-            "learning_rate": float(self.learning_rate),
-            "num_leaves": int(self.num_leaves),
-            "min_data_in_leaf": int(self.min_child_samples),
-            "min_sum_hessian_in_leaf": 0.0,
-            "bagging_fraction": float(self.subsample),
-            "bagging_freq": 1 if float(self.subsample) < 1.0 else 0,
-            "feature_fraction": float(self.colsample),
-            "bagging_seed": seed,
-            "feature_fraction_seed": seed,
-            "deterministic": True,
-            "force_row_wise": True,
-            "num_threads": 1,  # parallel over boosters instead, see _map
-            "verbose": -1,
-        }
+    def _extra_param_checks(self) -> list[tuple[str, bool, str]]:
+        return [
+            (
+                "calibration_cv",
+                isinstance(self.calibration_cv, (int, np.integer)) and self.calibration_cv >= 2,
+                "an int >= 2",
+            ),
+            ("calibration", self.calibration in _CALIBRATIONS, "one of 'auto', 'isotonic', 'sigmoid', None"),
+            (
+                "class_weight",
+                isinstance(self.class_weight, dict) or self.class_weight in _CLASS_WEIGHTS,
+                "'balanced', None or a dict {label: weight}",
+            ),
+        ]
 
     # ------------------------------------------------------------------------- fit
     def fit(
@@ -458,8 +648,6 @@ class SpillageClassifier(ClassifierMixin, BaseEstimator):
         held-out Brier score *and* the training set holds at least
         :data:`ISOTONIC_MIN_POSITIVES` positive rows; otherwise Platt.
         """
-        import lightgbm as lgb
-
         self._check_params()
         X, y = validate_data(self, X, y, dtype=[np.float64, np.float32], ensure_all_finite="allow-nan")
         check_classification_targets(y)
@@ -506,18 +694,6 @@ class SpillageClassifier(ClassifierMixin, BaseEstimator):
             factors = np.array([float(self.class_weight.get(c, 1.0)) for c in classes])
             tree_w = w * factors[y01]
 
-        def train(rows: NDArray[np.intp] | None, seed: int) -> lgb.Booster:
-            Xs = X if rows is None else X[rows]
-            ds = lgb.Dataset(
-                Xs,
-                label=y01 if rows is None else y01[rows],
-                weight=tree_w if rows is None else tree_w[rows],
-                feature_name=[f"f{i}" for i in range(X.shape[1])],
-                params={"verbose": -1, "max_bin": MAX_BIN, "min_data_in_bin": 1},
-                free_raw_data=True,
-            )
-            return lgb.train(self._booster_params(seed), ds, num_boost_round=int(self.n_estimators))
-
         # every booster (one per calibration fold, then the members) is independent:
         # draw all seeds first, then train them side by side
         folds = [] if self.calibration is None else self._calibration_folds(
@@ -526,7 +702,7 @@ class SpillageClassifier(ClassifierMixin, BaseEstimator):
         fold_seeds = rng.integers(1, 2**31 - 1, size=len(folds))
         member_seeds = rng.integers(1, 2**31 - 1, size=int(self.n_models))
         jobs = [(tr, int(s)) for (tr, _), s in zip(folds, fold_seeds)] + [(None, int(s)) for s in member_seeds]
-        boosters = self._map(lambda job: train(*job), jobs)
+        boosters = self._train_boosters(X, y01, tree_w, jobs)
         self.members_ = boosters[len(folds) :]
 
         if self.calibration is None:
@@ -544,22 +720,6 @@ class SpillageClassifier(ClassifierMixin, BaseEstimator):
         self.calibration_method_ = calibrator.method
         self.calibrators_ = [calibrator] * int(self.n_models)
         return self
-
-    def _map(self, fn: Callable[[Any], Any], items: Sequence[Any]) -> list[Any]:
-        """``[fn(item) for item in items]``, on ``n_jobs`` threads when more than one.
-
-        LightGBM releases the GIL, so single-threaded boosters run side by side; this
-        scales better than LightGBM's own OpenMP threads on a busy machine, where its
-        spinning barriers lose most of the time (measured here: one booster on 2
-        OpenMP threads took 17x longer than on 1 while other jobs shared the cores).
-        """
-        threads = min(self._threads(), len(items))
-        if threads <= 1:
-            return [fn(item) for item in items]
-        from concurrent.futures import ThreadPoolExecutor
-
-        with ThreadPoolExecutor(max_workers=threads) as pool:
-            return list(pool.map(fn, items))
 
     def _calibration_folds(
         self, y01: NDArray, w: NDArray, groups: NDArray | None, n_splits: int, rng: np.random.Generator
@@ -614,9 +774,6 @@ class SpillageClassifier(ClassifierMixin, BaseEstimator):
         return _fit_platt(margin, y01, w)
 
     # -------------------------------------------------------------------- predict
-    def _margins(self, X: NDArray) -> NDArray[np.float64]:
-        return np.stack(self._map(lambda b: b.predict(X, raw_score=True, num_threads=1), self.members_))
-
     def ensemble_proba(self, X: pd.DataFrame | ArrayLike) -> NDArray[np.float64]:
         """Calibrated probability of the positive class from every member.
 
@@ -630,15 +787,8 @@ class SpillageClassifier(ClassifierMixin, BaseEstimator):
         ndarray of shape (n_models, n)
             One row per member (Thompson sampling draws from these).
         """
-        check_is_fitted(self, "members_")
-        X = validate_data(self, X, reset=False, dtype=[np.float64, np.float32], ensure_all_finite="allow-nan")
-        out = np.empty((len(self.members_), X.shape[0]))
-        for start in range(0, X.shape[0], SCORE_CHUNK_ROWS):
-            block = X[start : start + SCORE_CHUNK_ROWS]
-            margins = self._margins(block)
-            for i, cal in enumerate(self.calibrators_):
-                out[i, start : start + len(block)] = cal.apply(margins[i])
-        return out
+        raw = self._raw_members(X)
+        return np.stack([cal.apply(margin) for cal, margin in zip(self.calibrators_, raw)])
 
     def predict_uncertainty(self, X: pd.DataFrame | ArrayLike) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
         """Mean and spread of the calibrated probability over the ensemble.
@@ -694,49 +844,16 @@ class SpillageClassifier(ClassifierMixin, BaseEstimator):
         No timestamps are written, so saving a loaded model gives identical bytes.
         """
         check_is_fitted(self, "members_")
-        if not isinstance(feature_schema, str) or not feature_schema:
-            raise InputError("feature_schema must be a non-empty string", value=feature_schema)
-        path = Path(path)
-        path.mkdir(parents=True, exist_ok=True)
-        member_files = []
-        for i, booster in enumerate(self.members_):
-            name = f"member_{i:02d}.txt"
-            text = booster.model_to_string(num_iteration=-1).encode()
-            (path / name).write_bytes(text)
-            member_files.append({"file": name, "sha256": _sha256_bytes(text)})
-        written = {entry["file"] for entry in member_files}
-        for stale in path.glob("member_*.txt"):  # members of an earlier, larger save
-            if stale.name not in written:
-                stale.unlink()
-        names = getattr(self, "feature_names_in_", None)
-        meta = {
-            "format": MODEL_FORMAT,
-            "estimator": type(self).__name__,
-            "feature_schema": feature_schema,
-            "feature_schema_sha256": _sha256_bytes(feature_schema.encode()),
-            "feature_names": None if names is None else [str(n) for n in names],
-            "n_features_in": int(self.n_features_in_),
+        extra = {
             "classes": [_plain(c) for c in self.classes_],
             "threshold": float(threshold),
-            "training_data_hash": training_data_hash,
-            "metrics": metrics,
-            "params": self._params_as_json(),
             "calibration_method": self.calibration_method_,
             "calibration_scores": self.calibration_scores_,
             "calibrators": [c.to_dict() for c in self.calibrators_],
-            "members": member_files,
-            "package_versions": _package_versions(),
         }
-        text = json.dumps(meta, indent=2, sort_keys=True, allow_nan=False) + "\n"
-        (path / _METADATA).write_text(text, encoding="utf-8")
-
-    def _params_as_json(self) -> dict[str, Any]:
-        params = self.get_params()
-        if not isinstance(self.random_state, (int, np.integer, type(None))):
-            params["random_state"] = "generator"  # a Generator's state is not kept
-        if isinstance(self.class_weight, dict):
-            params["class_weight"] = [[_plain(k), float(v)] for k, v in self.class_weight.items()]
-        return {k: _plain(v) for k, v in params.items()}
+        self._write(
+            path, feature_schema=feature_schema, training_data_hash=training_data_hash, metrics=metrics, extra=extra
+        )
 
     @classmethod
     def load(cls, path: str | Path, *, expected_schema: str | None = None) -> "SpillageClassifier":
@@ -757,62 +874,14 @@ class SpillageClassifier(ClassifierMixin, BaseEstimator):
         InputError
             Missing or damaged files (bad JSON, unknown format, member checksum).
         """
-        import lightgbm as lgb
-
-        path = Path(path)
-        if path.name == _METADATA:
-            path = path.parent
-        meta_path = path / _METADATA
+        model, meta, meta_path = cls._read(path, expected_schema)
         try:
-            meta = json.loads(meta_path.read_text(encoding="utf-8"))
-        except FileNotFoundError as exc:
-            raise InputError("no model here", path=meta_path, expected=f"a folder written by {cls.__name__}.save") from exc
-        except (json.JSONDecodeError, UnicodeDecodeError) as exc:
-            raise InputError(f"model metadata is not valid JSON: {exc}", path=meta_path) from exc
-        if not isinstance(meta, dict) or meta.get("format") != MODEL_FORMAT:
-            raise InputError(
-                "unknown model file format",
-                path=meta_path,
-                value=meta.get("format") if isinstance(meta, dict) else type(meta).__name__,
-                expected=MODEL_FORMAT,
-            )
-        schema = meta.get("feature_schema")
-        if expected_schema is not None and schema != expected_schema:
-            raise SchemaMismatchError(
-                f"{meta_path}: the model was trained on feature schema {schema!r} but the "
-                f"featurisers in use have schema {expected_schema!r}; retrain the model or "
-                "use the featuriser version it was trained with"
-            )
-        try:
-            params = dict(meta["params"])
-            if params.get("random_state") == "generator":
-                params["random_state"] = None
-            if isinstance(params.get("class_weight"), list):  # saved as [label, factor] pairs
-                params["class_weight"] = {label: factor for label, factor in params["class_weight"]}
-            model = cls(**params)
             model.classes_ = np.asarray(meta["classes"])
-            model.n_features_in_ = int(meta["n_features_in"])
-            if meta["feature_names"] is not None:
-                model.feature_names_in_ = np.asarray(meta["feature_names"], dtype=object)
             model.calibration_method_ = meta["calibration_method"]
             model.calibration_scores_ = dict(meta["calibration_scores"])
             model.calibrators_ = [Calibrator.from_dict(c) for c in meta["calibrators"]]
-            members = []
-            for entry in meta["members"]:
-                member_path = path / entry["file"]
-                data = member_path.read_bytes()
-                if _sha256_bytes(data) != entry["sha256"]:
-                    raise InputError(
-                        "model member does not match the checksum in metadata.json",
-                        path=member_path,
-                        value=_sha256_bytes(data),
-                        expected=entry["sha256"],
-                    )
-                members.append(lgb.Booster(model_str=data.decode()))
-            model.members_ = members
-        except InputError:
-            raise
-        except (KeyError, TypeError, ValueError, OSError) as exc:
+            model.threshold_ = float(meta["threshold"])
+        except (KeyError, TypeError, ValueError) as exc:
             raise InputError(f"damaged model file: {type(exc).__name__}: {exc}", path=meta_path) from exc
         if len(model.members_) != len(model.calibrators_):
             raise InputError(
@@ -821,6 +890,125 @@ class SpillageClassifier(ClassifierMixin, BaseEstimator):
                 value=(len(model.members_), len(model.calibrators_)),
                 expected="equal counts",
             )
-        model.threshold_ = float(meta["threshold"])
-        model.metadata_ = meta
+        return model
+
+
+class SpillageRegressor(RegressorMixin, _BoostedEnsemble, BaseEstimator):
+    """Ensemble regression head on the spillage value itself, with spread.
+
+    The same LightGBM ensemble as :class:`SpillageClassifier` (seeds for row bagging and
+    feature sampling drawn from ``random_state``) with a squared-error objective. Useful
+    where the size of the spillage matters, not only which side of the threshold it is
+    on; the prediction is not clipped to the physical range.
+
+    Parameters
+    ----------
+    n_models, n_estimators, learning_rate, num_leaves, min_child_samples, subsample, colsample, random_state, n_jobs
+        As for :class:`SpillageClassifier`.
+
+    Attributes
+    ----------
+    n_features_in_ : int
+    feature_names_in_ : ndarray of str, shape (n_features_in_,)
+    members_ : list of lightgbm.Booster, length n_models
+    """
+
+    _objective = "regression"
+
+    def __init__(  # noqa: PLR0913 - scikit-learn estimators take their settings here
+        self,
+        *,
+        n_models: int = 5,
+        n_estimators: int = 150,
+        learning_rate: float = 0.08,
+        num_leaves: int = 15,
+        min_child_samples: int = 10,
+        subsample: float = 0.8,
+        colsample: float = 0.5,
+        random_state: int | np.random.Generator | None = None,
+        n_jobs: int | None = None,
+    ) -> None:
+        self.n_models = n_models
+        self.n_estimators = n_estimators
+        self.learning_rate = learning_rate
+        self.num_leaves = num_leaves
+        self.min_child_samples = min_child_samples
+        self.subsample = subsample
+        self.colsample = colsample
+        self.random_state = random_state
+        self.n_jobs = n_jobs
+
+    def __sklearn_tags__(self):  # noqa: D105 - scikit-learn hook
+        tags = super().__sklearn_tags__()
+        tags.input_tags.allow_nan = True
+        return tags
+
+    def fit(
+        self, X: pd.DataFrame | ArrayLike, y: ArrayLike, *, sample_weight: ArrayLike | None = None
+    ) -> "SpillageRegressor":
+        """Fit the ensemble.
+
+        Parameters
+        ----------
+        X
+            Feature table, shape ``(n, d)``; NaN marks a missing feature.
+        y
+            Spillage values, shape ``(n,)`` (dimensionless, normally in ``[0, 2]``).
+        sample_weight
+            Non-negative row weights, shape ``(n,)``.
+
+        Returns
+        -------
+        SpillageRegressor
+            ``self``.
+        """
+        self._check_params()
+        X, y = validate_data(
+            self,
+            X,
+            y,
+            dtype=[np.float64, np.float32],
+            ensure_all_finite="allow-nan",
+            y_numeric=True,
+            ensure_min_samples=2,
+        )
+        y = np.asarray(y, dtype=np.float64)
+        w = _sample_weights(sample_weight, X.shape[0])
+        if np.any(w < 0):
+            raise InputError("negative sample weight", line=int(np.argmin(w)), value=float(w.min()), expected=">= 0")
+        if not np.any(w > 0):
+            raise InputError("all sample weights are zero", expected="at least one row with weight > 0")
+        rng = np.random.default_rng(self.random_state)
+        seeds = rng.integers(1, 2**31 - 1, size=int(self.n_models))
+        self.members_ = self._train_boosters(X, y, w, [(None, int(s)) for s in seeds])
+        return self
+
+    def ensemble_predict(self, X: pd.DataFrame | ArrayLike) -> NDArray[np.float64]:
+        """Predicted spillage of every member, shape ``(n_models, n)``."""
+        return self._raw_members(X)
+
+    def predict_uncertainty(self, X: pd.DataFrame | ArrayLike) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+        """Mean and population standard deviation over members, each shape ``(n,)``."""
+        members = self.ensemble_predict(X)
+        return members.mean(axis=0), members.std(axis=0)
+
+    def predict(self, X: pd.DataFrame | ArrayLike) -> NDArray[np.float64]:
+        """Mean predicted spillage, shape ``(n,)``."""
+        return self.ensemble_predict(X).mean(axis=0)
+
+    def save(
+        self,
+        path: str | Path,
+        *,
+        feature_schema: str,
+        training_data_hash: str | None = None,
+        metrics: dict | None = None,
+    ) -> None:
+        """Write the model folder (see :meth:`SpillageClassifier.save`)."""
+        self._write(path, feature_schema=feature_schema, training_data_hash=training_data_hash, metrics=metrics, extra={})
+
+    @classmethod
+    def load(cls, path: str | Path, *, expected_schema: str | None = None) -> "SpillageRegressor":
+        """Read a model folder written by :meth:`save` (see :meth:`SpillageClassifier.load`)."""
+        model, _, _ = cls._read(path, expected_schema)
         return model

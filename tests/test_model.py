@@ -6,10 +6,16 @@ import numpy as np
 import pytest
 from sklearn.utils.estimator_checks import parametrize_with_checks
 
-from prescreen.model import SpillageClassifier
+from prescreen.model import SpillageClassifier, SpillageRegressor
 
 
 def _expected_failed_checks(estimator):
+    if isinstance(estimator, SpillageRegressor):
+        return {
+            "check_sample_weight_equivalence_on_dense_data": (
+                "row bagging and LightGBM's min_data_in_leaf count rows, not weight"
+            ),
+        }
     return {
         "check_sample_weight_equivalence_on_dense_data": (
             "a weight of 2 is not the same as a duplicated row here: row bagging, the "
@@ -23,7 +29,10 @@ def _expected_failed_checks(estimator):
 
 
 @parametrize_with_checks(
-    [SpillageClassifier(n_models=2, n_estimators=8, calibration_cv=3, random_state=0)],
+    [
+        SpillageClassifier(n_models=2, n_estimators=8, calibration_cv=3, random_state=0),
+        SpillageRegressor(n_models=2, n_estimators=60, learning_rate=0.2, random_state=0),
+    ],
     expected_failed_checks=_expected_failed_checks,
 )
 def test_sklearn_contract(estimator, check):
@@ -225,3 +234,30 @@ def test_saving_a_smaller_model_removes_old_members(tmp_path, split_data):
     small.save(tmp_path, feature_schema="s1")
     assert sorted(p.name for p in tmp_path.glob("member_*.txt")) == ["member_00.txt", "member_01.txt"]
     np.testing.assert_array_equal(SpillageClassifier.load(tmp_path).predict_proba(Xte), small.predict_proba(Xte))
+
+
+# ------------------------------------------------------------------ regression head
+def test_regressor_round_trip_and_spread(tmp_path):
+    from sklearn.datasets import make_regression
+
+    X, y = make_regression(n_samples=600, n_features=8, noise=5.0, random_state=0)
+    model = SpillageRegressor(n_models=3, n_estimators=40, random_state=0).fit(X[:400], y[:400])
+    mean, std = model.predict_uncertainty(X[400:])
+    np.testing.assert_array_equal(mean, model.predict(X[400:]))
+    assert model.ensemble_predict(X[400:]).shape == (3, 200) and np.median(std) > 0
+    assert model.score(X[400:], y[400:]) > 0.5  # R^2 on held-out generated data
+    model.save(tmp_path / "a", feature_schema="s1")
+    loaded = SpillageRegressor.load(tmp_path / "a", expected_schema="s1")
+    loaded.save(tmp_path / "b", feature_schema="s1")
+    for name in ("metadata.json", "member_00.txt", "member_02.txt"):
+        assert (tmp_path / "a" / name).read_bytes() == (tmp_path / "b" / name).read_bytes()
+    np.testing.assert_array_equal(loaded.predict(X[400:]), mean)
+
+
+def test_loading_the_wrong_kind_of_model(tmp_path, split_data):
+    from prescreen.errors import InputError
+
+    Xtr, ytr, _, _ = split_data
+    SpillageClassifier(**SMALL).fit(Xtr, ytr).save(tmp_path, feature_schema="s1")
+    with pytest.raises(InputError, match=r"metadata\.json: the model file holds another kind.*SpillageClassifier"):
+        SpillageRegressor.load(tmp_path)
