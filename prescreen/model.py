@@ -26,6 +26,9 @@ How a fit works
 This is the "one calibrator for the final model" scheme of scikit-learn's
 ``CalibratedClassifierCV(ensemble=False)``, extended to an ensemble of seeds.
 
+:class:`SpillageRegressor` is the optional regression head: the same ensemble fitted
+to the spillage value, with the same spread and the same model files.
+
 A training set with only one class is refused with an :class:`~prescreen.errors.InputError`
 (a ``ValueError``): a model that has never seen a hit cannot say how likely one is.
 
@@ -91,8 +94,8 @@ MODEL_FORMAT: str = "prescreen-model/1"
 #: common practice, not a published bound.
 ISOTONIC_MIN_POSITIVES: int = 100
 
-#: Rows scored per block in :meth:`SpillageClassifier.ensemble_proba`; bounds the extra
-#: memory of scoring to about ``n_models * SCORE_CHUNK_ROWS * 8`` bytes per block.
+#: Rows scored per block when predicting; LightGBM's working memory then stays bounded
+#: whatever the number of rows (the output itself is ``n_models * n * 8`` bytes).
 SCORE_CHUNK_ROWS: int = 131_072
 
 #: Histogram bins per feature. LightGBM's default is 255; 63 halved the fit time on
