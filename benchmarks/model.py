@@ -139,7 +139,7 @@ def score_child(model_dir: str, cache: str) -> None:
 
 
 def find_labelled_table(root: Path) -> Path | None:
-    """The first Parquet/CSV under ``root`` with ``formula`` and ``spillage`` columns."""
+    """The first Parquet/CSV under ``root`` with a ``spillage`` column and ``formula`` or ``id``."""
     import pandas as pd
 
     if not root.is_dir():
@@ -151,7 +151,7 @@ def find_labelled_table(root: Path) -> Path | None:
             cols = pd.read_parquet(path).columns if path.suffix == ".parquet" else pd.read_csv(path, nrows=0).columns
         except Exception:  # not a table we can read; keep looking
             continue
-        if {"formula", "spillage"} <= set(cols):
+        if "spillage" in cols and ("formula" in cols or "id" in cols):
             return path
     return None
 
@@ -193,10 +193,13 @@ def part_cv(seed: int, data: Path) -> None:
     table_path = data if data.is_file() else find_labelled_table(data)
     print(f"\n== grouped 5-fold cross-validation (folds by chemical system and reduced formula), seed {seed}")
     if table_path is None:
-        print(f"   NOT RUN: no labelled table (columns 'formula' and 'spillage') under {data}/ yet")
+        print(f"   NOT RUN: no labelled table (a 'spillage' column with 'formula' or 'id') under {data}/ yet")
         return
     table = pd.read_parquet(table_path) if table_path.suffix == ".parquet" else pd.read_csv(table_path)
     table = table.dropna(subset=["spillage"]).reset_index(drop=True)
+    if "formula" not in table.columns:  # labels keyed by id: formulas from the pool
+        pool = pd.read_parquet(table_path.parent / "pool.parquet", columns=["id", "formula"]).set_index("id")
+        table["formula"] = pool.loc[table["id"], "formula"].to_numpy()
     formulas = table["formula"].astype(str).tolist()
     y = (table["spillage"].to_numpy(dtype=float) >= SPILLAGE_THRESHOLD).astype(int)
     structures, structure_note = table_structures(table, table_path.parent)
