@@ -427,7 +427,9 @@ def cross_validate(
     pandas.DataFrame
         One row per fold (index ``0 .. n_splits-1``) then rows ``"mean"`` and ``"std"``
         (sample standard deviation over folds); columns ``n_train`` and the keys of
-        :func:`classification_metrics`.
+        :func:`classification_metrics`. A metric that is undefined in a fold (``nan``:
+        no positive in the test fold, or ``k`` larger than the fold) is left out of that
+        column's mean and std; the per-fold rows show where.
     """
     from tqdm.auto import tqdm
 
