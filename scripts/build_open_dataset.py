@@ -513,7 +513,7 @@ numbers by hand (the integrity test checks the file's hash).*
 | file | what |
 |---|---|
 | `{POOL_PARQUET}` | the unlabelled pool, one row per candidate: `id`, `prototype`, `family`, `reduced_formula`, `formula`, `elements` (space-separated), `n_elements`, `n_atoms`, `decoration` (JSON, site role -> element), `a_A`, `b_A`, `gamma_deg`, `lattice` (9 floats, row vectors, angstrom), `species`, `frac_coords` (3 per atom) |
-| `{POOL_XYZ}` | the same starting geometries as compressed extended XYZ (`id`, `prototype` per frame) |
+| `{POOL_XYZ}` | the same starting geometries as compressed extended XYZ (`id`, `prototype` per frame; positions printed to 8 decimals, the Parquet file keeps full double precision) |
 | `{LABELLED_PARQUET}` | relaxed and labelled monolayers: pool columns, `spillage` (max over k of gamma(k), electrons), `high_spillage` (spillage >= {POSITIVE_THRESHOLD}), `k_max`, `gap_nosoc_eV`, `gap_soc_eV`, `is_metal`, `magmom_muB`, `kmesh`, `wall_s`, `core_hours`, `relax_wall_s`, `residual_fmax_eV_per_A`, relaxed `lattice`/`species`/`frac_coords`, `gamma_k` and `kpts` (the whole gamma(k) on the mesh), `settings`, `versions` |
 | `{LABELLED_XYZ}` | relaxed labelled structures as compressed extended XYZ (`id`, `spillage` per frame) |
 | `{RELAX_PARQUET}` | every relaxation attempted, with `status` (ok, not_converged, fell_apart, failed), `reason`, residual force and the labelling outcome |
@@ -522,7 +522,10 @@ numbers by hand (the integrity test checks the file's hash).*
 ## Counts
 
 - Pool: **{n_pool}** candidates, {n_keys} distinct (prototype, reduced formula) pairs,
-  {len(PROTOTYPES)} prototypes, {len(el_pool)} elements, seed {seed}.
+  {len(PROTOTYPES)} prototypes, {len(el_pool)} elements, seed {seed};
+  {int((pool["n_atoms"] <= DEFAULT_MAX_ATOMS).sum())} cells of at most {DEFAULT_MAX_ATOMS} atoms;
+  {int((pool["family"] == "polar-trilayer").sum())} of the Janus 1T layers are BiTeI-like polar trilayers
+  (pnictogen metal, one chalcogen and one halogen side).
 - Relaxations attempted: {len(relax)} ({status_text}); largest residual force among the
   kept ones: {resid} eV/A.
 - Labelled: **{n_lab}**; positives at spillage >= {POSITIVE_THRESHOLD}: {n_pos}
@@ -643,7 +646,8 @@ def _parser() -> argparse.ArgumentParser:
                    help="cells up to this size come first in the subset")
     p.add_argument("--batch", type=int, default=10,
                    help="structures relaxed before each label + pack round (stage all)")
-    p.add_argument("--timeout", type=float, default=1800.0, help="seconds per structure and step")
+    p.add_argument("--timeout", type=float, default=1800.0, help="seconds per labelling job")
+    p.add_argument("--relax-timeout", type=float, default=3600.0, help="seconds per relaxation")
     p.add_argument("--relax-kpt-density", type=float, default=RELAX_KPT_DENSITY)
     p.add_argument("--out", type=Path, default=ROOT / "data_open")
     p.add_argument("--work", type=Path, default=ROOT / "build" / "open_dataset",
@@ -671,7 +675,7 @@ def run(args: argparse.Namespace) -> int:
     order = stratified_order(pool, args.seed, args.max_atoms)
     if args.limit is not None:
         order = order[: max(0, args.limit)]
-    relax_kw = dict(workers=args.workers, timeout_s=args.timeout,
+    relax_kw = dict(workers=args.workers, timeout_s=args.relax_timeout,
                     kpt_density=args.relax_kpt_density, progress=progress)
     if args.stage == "relax":
         relax_stage(pool, order, args.work, **relax_kw)
