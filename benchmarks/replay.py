@@ -254,7 +254,8 @@ def main(argv: list[str] | None = None) -> int:
     best = table.loc[table["strategy"] != BASELINE_NAME].sort_values("runs_to_50").iloc[0]
     print(f"\n  best strategy to 50 %: {best['strategy']}: acceleration {best['acceleration_50']:.2f}x "
           f"(goal >= {GOAL_ACCELERATION_50:g}x: {'met' if best['acceleration_50'] >= GOAL_ACCELERATION_50 else 'NOT met'}); "
-          f"{100 * best['fewer_runs_vs_baseline_50']:.0f} % fewer runs than the baseline "
+          f"{abs(100 * best['fewer_runs_vs_baseline_50']):.0f} % "
+          f"{'fewer' if best['fewer_runs_vs_baseline_50'] >= 0 else 'MORE'} runs than the baseline "
           f"(goal >= {100 * GOAL_FEWER_THAN_BASELINE_50:.0f} %: "
           f"{'met' if best['fewer_runs_vs_baseline_50'] >= GOAL_FEWER_THAN_BASELINE_50 else 'NOT met'})")
     if args.demo:
