@@ -387,17 +387,20 @@ def plot_discovery(curves: pd.DataFrame, y, cost, *, path=None, title: str | Non
     import matplotlib.pyplot as plt
 
     refs = pd.concat([random_reference(y, cost), oracle_reference(y, cost)])
-    fig, axes = plt.subplots(1, 2, figsize=(11, 4.2))
+    fig, axes = plt.subplots(1, 2, figsize=(11, 5.6))
+    palette = plt.get_cmap("tab10" if curves["strategy"].nunique() <= 10 else "tab20")
     xlabels = {"n_runs": "Spillage evaluations (each = 2 DFT runs: without and with SOC)",
                "core_hours": "Core-hours spent"}
     P = int(np.asarray(y).sum())
     x_max = {c: float(curves[c].max()) for c in xlabels}
     for ax, xcol in zip(axes, xlabels):
         grid = np.linspace(0, x_max[xcol], 300)
-        for strat, block in curves.groupby("strategy", sort=False):
+        for j, (strat, block) in enumerate(curves.groupby("strategy", sort=False)):
             med, lo, hi = _median_curve(block, xcol, grid)
-            line, = ax.plot(grid, med, label=f"{strat} (median of {block['seed'].nunique()})")
-            ax.fill_between(grid, lo, hi, color=line.get_color(), alpha=0.15, linewidth=0)
+            colour = palette(j % 20)
+            ax.plot(grid, med, color=colour, linestyle=("-", "-.")[(j // 10) % 2],
+                    label=f"{strat} (median of {block['seed'].nunique()})")
+            ax.fill_between(grid, lo, hi, color=colour, alpha=0.12, linewidth=0)
         for strat, block in refs.groupby("strategy", sort=False):
             b = block.loc[block[xcol] <= x_max[xcol] * 1.0001]
             ax.plot(b[xcol], b["hits"], linestyle="--", color="grey" if strat == "oracle" else "black",
@@ -408,10 +411,11 @@ def plot_discovery(curves: pd.DataFrame, y, cost, *, path=None, title: str | Non
         ax.set_ylabel(f"Hits found (positives in pool: {P})")
         ax.set_xlim(0, x_max[xcol])
         ax.set_ylim(0, P * 1.02)
-    axes[0].legend(fontsize=7, loc="lower right")
+    handles, labels = axes[0].get_legend_handles_labels()
+    fig.legend(handles, labels, loc="lower center", ncol=3, fontsize=7, frameon=False)
     if title:
         fig.suptitle(title)
-    fig.tight_layout()
+    fig.tight_layout(rect=(0, 0.06 + 0.025 * math.ceil(len(labels) / 3), 1, 1))
     if path is not None:
         fig.savefig(path, dpi=150)
     return fig
