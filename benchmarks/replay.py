@@ -37,6 +37,10 @@ GOAL_ACCELERATION_50 = 8.0
 GOAL_FEWER_THAN_BASELINE_50 = 0.25
 BASELINE_NAME = "baseline: greedy RF on magpie"
 LABELLED_NAMES = ("labelled.parquet",)
+#: Smallest labelled table worth replaying: room for the initial set and several rounds,
+#: and enough positives for "50 % of positives" to mean something (common practice).
+MIN_LABELLED = 100
+MIN_POSITIVES = 10
 
 
 def strategies() -> dict[str, object]:
@@ -78,6 +82,16 @@ class ForestEnsemble:
     def predict_uncertainty(self, X):
         m = self.ensemble_proba(X)
         return m.mean(axis=0), m.std(axis=0)
+
+
+def labelled_counts(path: Path) -> tuple[int, int]:
+    """(rows with a spillage and a core-hour value, positives among them)."""
+    import pandas as pd
+
+    from prescreen import SPILLAGE_THRESHOLD
+
+    table = pd.read_parquet(path, columns=["spillage", "core_hours"]).dropna()
+    return len(table), int((table["spillage"] >= SPILLAGE_THRESHOLD).sum())
 
 
 def find_labelled(data: Path) -> Path | None:
@@ -139,6 +153,13 @@ def load_open_data(path: Path, seed: int):
 
     table = pd.read_parquet(path)
     table = table.dropna(subset=["spillage", "core_hours"]).reset_index(drop=True)
+    if "formula" not in table.columns:  # labels keyed by id: the formula from the pool
+        pool = path.parent / "pool.parquet"
+        if "id" in table.columns and pool.is_file():
+            by_id = pd.read_parquet(pool, columns=["id", "formula"]).set_index("id")["formula"]
+            table["formula"] = by_id.reindex(table["id"]).to_numpy()
+        if "reduced_formula" in table.columns:
+            table["formula"] = table.get("formula", table["reduced_formula"]).fillna(table["reduced_formula"])
     formulas = table["formula"].astype(str).to_numpy()
     structures = [structure_from_row(r) for r in table.to_dict("records")]
     ours = featurise(list(formulas), structures, progress=False)
@@ -203,6 +224,12 @@ def main(argv: list[str] | None = None) -> int:
             print(f"NOT RUN: no labelled table ({' or '.join(LABELLED_NAMES)}) under {args.data}/ - "
                   "the labelled dataset does not exist yet. No figures to report.")
             print("(python benchmarks/replay.py PLOT --demo exercises the script on generated data.)")
+            return 2
+        counts = labelled_counts(path)
+        if counts[0] < MIN_LABELLED or counts[1] < MIN_POSITIVES:
+            print(f"NOT RUN: {path} holds only {counts[0]} labelled rows with {counts[1]} positives; "
+                  f"a replay needs at least {MIN_LABELLED} rows and {MIN_POSITIVES} positives "
+                  f"(--n-initial {args.n_initial} random evaluations come first). No figures to report.")
             return 2
         X_ours, X_base, y, cost, pred, formulas, notes = load_open_data(path, seed0)
     budget = float(args.batch_runs * np.median(pred))
