@@ -557,7 +557,7 @@ def label_structure(structure: "Structure | Atoms",
             ef_soc = float(soc.fermi_level)
             ef_nosoc = float(calc.get_fermi_level())
             bz2ibz = np.asarray(calc.wfs.kd.bz2ibz_k)
-            kpts = np.asarray(calc.get_bz_k_points(), dtype=float)
+            kpts = np.asarray(calc.wfs.kd.bzk_kc, dtype=float)  # order of v_kmn
             nbands = calc.get_number_of_bands()
             eig_ibz = np.array([[calc.get_eigenvalues(kpt=k, spin=min(s, nspins - 1))
                                  for s in (0, 1)]
