@@ -425,8 +425,11 @@ def cross_validate(
     Returns
     -------
     pandas.DataFrame
-        One row per fold (index ``0 .. n_splits-1``) then rows ``"mean"`` and ``"std"``
-        (sample standard deviation over folds); columns ``n_train`` and the keys of
+        One row per fold (index ``0 .. n_splits-1``), rows ``"mean"`` and ``"std"``
+        (sample standard deviation over folds), and ``"pooled"``: the metrics of all
+        out-of-fold predictions together (each row predicted by the model that did not
+        see its group; the enrichment factors of small folds are only defined here);
+        columns ``n_train`` and the keys of
         :func:`classification_metrics`. A metric that is undefined in a fold (``nan``:
         no positive in the test fold, or ``k`` larger than the fold) is left out of that
         column's mean and std; the per-fold rows show where.
@@ -439,6 +442,7 @@ def cross_validate(
     folds = grouped_folds(formulas, n_splits=n_splits, by=by, y=y, random_state=random_state)
     groups = formula_groups(formulas, by=by)
     rows = {}
+    pooled = np.full(len(y), np.nan)
     for i, (tr, te) in enumerate(tqdm(folds, desc=label or "cross-validation", disable=not progress, leave=False)):
         model = model_factory()
         fit_kwargs = {}
@@ -447,8 +451,10 @@ def cross_validate(
         model.fit(_take(X, tr), y[tr], **fit_kwargs)
         p = np.asarray(model.predict_proba(_take(X, te)))[:, 1]
         rows[i] = {"n_train": float(len(tr))} | classification_metrics(y[te], p, k_values=k_values)
+        pooled[te] = p
     table = pd.DataFrame.from_dict(rows, orient="index")
     summary = pd.DataFrame({"mean": table.mean(axis=0), "std": table.std(axis=0, ddof=1)}).T
+    summary.loc["pooled"] = {"n_train": np.nan} | classification_metrics(y, pooled, k_values=k_values)
     out = pd.concat([table, summary])
     out.index.name = "fold"
     return out

@@ -178,7 +178,8 @@ def test_cross_validate_spillage_classifier(cv_table):
         lambda: SpillageClassifier(n_models=2, n_estimators=15, random_state=0),
         X, y, formulas, n_splits=4, k_values=(10,), random_state=0, progress=False,
     )
-    assert list(table.index) == [0, 1, 2, 3, "mean", "std"]
+    assert list(table.index) == [0, 1, 2, 3, "mean", "std", "pooled"]
+    assert table.loc["pooled", "n"] == len(y)
     assert table.loc[[0, 1, 2, 3], "n"].sum() == len(y)
     assert table.loc["mean", "roc_auc"] == pytest.approx(table.loc[[0, 1, 2, 3], "roc_auc"].mean())
     assert table.loc["mean", "roc_auc"] > 0.6
