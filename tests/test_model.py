@@ -261,3 +261,26 @@ def test_loading_the_wrong_kind_of_model(tmp_path, split_data):
     SpillageClassifier(**SMALL).fit(Xtr, ytr).save(tmp_path, feature_schema="s1")
     with pytest.raises(InputError, match=r"metadata\.json: the model file holds another kind.*SpillageClassifier"):
         SpillageRegressor.load(tmp_path)
+
+
+def test_calibration_folds_keep_groups_apart(split_data):
+    _, ytr, _, _ = split_data
+    groups = np.arange(len(ytr)) % 37
+    folds = SpillageClassifier(**SMALL)._calibration_folds(
+        ytr, np.ones(len(ytr)), groups, 5, np.random.default_rng(0)
+    )
+    assert len(folds) == 5
+    for tr, te in folds:
+        assert not set(groups[tr]) & set(groups[te])
+
+
+def test_training_data_hash_tracks_the_data(split_data):
+    from prescreen.model import training_data_hash
+
+    Xtr, ytr, _, _ = split_data
+    h = training_data_hash(Xtr, ytr)
+    assert h == training_data_hash(Xtr.copy(), ytr.copy()) and h.startswith("sha256:")
+    changed = Xtr.copy()
+    changed[3, 2] += 1e-12
+    assert training_data_hash(changed, ytr) != h
+    assert training_data_hash(Xtr, 1 - ytr) != h
