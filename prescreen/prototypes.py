@@ -3,9 +3,12 @@
 This module generates the unlabelled candidate pool of ``data_open/``: a set of
 hypothetical two-dimensional layers made by placing chemically sensible elements on
 the sites of prototype layers that are widely used in the 2D-materials literature
-(honeycombs, transition-metal dichalcogenides, Janus layers, group-13
-monochalcogenides, quintuple and septuple layers, puckered and square nets,
-functionalised honeycombs and MXenes).
+(flat and buckled honeycombs of one and two elements; 2H, 1T and distorted 1T'
+MX2 with their Janus MXY forms, the BiTeI-like polar trilayers among them; ordered
+two-metal 2H and 1T alloys; CrI3-like MX3 honeycombs; four-atom group-13
+monochalcogenides; M2X3 quintuple and MB2X4 septuple layers; puckered one- and
+two-element layers; PbO/FeSe-like square nets; capped X-A-B-Y honeycombs; MXenes with
+two termination sites).
 
 Geometry rules
 --------------
@@ -420,6 +423,7 @@ def _octet_pair(a: str, b: str) -> bool:
 
 
 def _valence(group: int) -> int:
+    """Valence electrons of a main-group element from its group (1-2 and 12-18)."""
     return group - 10 if group > 12 else group if group <= 2 else 2
 
 
