@@ -259,7 +259,15 @@ def grouped_folds(
             raise InputError("y must have one label per formula", value=labels.shape, expected=str(groups.shape))
         splitter = StratifiedGroupKFold(n_splits=n_splits, shuffle=True, random_state=seed)
         splits = splitter.split(X_dummy, labels, groups)
-    return [(np.sort(tr).astype(np.intp), np.sort(te).astype(np.intp)) for tr, te in splits]
+    try:
+        return [(np.sort(tr).astype(np.intp), np.sort(te).astype(np.intp)) for tr, te in splits]
+    except ValueError as exc:  # scikit-learn's refusal, e.g. fewer rows per class than folds
+        counts = {} if y is None else dict(zip(*(v.tolist() for v in np.unique(np.asarray(y), return_counts=True))))
+        raise InputError(
+            f"cannot make {n_splits} grouped folds: {exc}",
+            value=f"rows per label {counts}" if counts else f"{len(groups)} rows",
+            expected=f"at least {n_splits} rows of a label and {n_splits} groups",
+        ) from exc
 
 
 # ----------------------------------------------------------------------------- metrics

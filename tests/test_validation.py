@@ -98,6 +98,13 @@ def test_bad_formula_is_reported_with_its_entry(formulas, match):
         grouped_folds(formulas * 3, n_splits=2)
 
 
+def test_too_few_rows_per_label_for_stratified_folds():
+    formulas = FORMULAS[:12]  # 9 chemistry groups
+    y = np.arange(12) % 2  # 6 rows of each label, fewer than the 8 folds asked for
+    with pytest.raises(InputError, match=r"cannot make 8 grouped folds.*rows per label \{0: 6, 1: 6\}"):
+        grouped_folds(formulas, n_splits=8, y=y)
+
+
 def test_too_few_groups_for_folds():
     with pytest.raises(InputError, match=r"only 1 chemistry groups .* for 3 folds"):
         grouped_folds(["MoS2", "S2Mo", "Mo2S3"], n_splits=3)
