@@ -461,6 +461,11 @@ def _md_table(header: Sequence[str], rows: Iterable[Sequence[Any]]) -> str:
     return "\n".join(lines)
 
 
+def _median(values: "pd.Series") -> str:
+    v = values.dropna()
+    return f"{float(v.median()):.0f}" if len(v) else "n/a"
+
+
 def _rate(pos: int, n: int) -> str:
     return f"{pos / n:.3f}" if n else "n/a"
 
@@ -531,7 +536,8 @@ numbers by hand (the integrity test checks the file's hash).*
 - Labelled: **{n_lab}**; positives at spillage >= {POSITIVE_THRESHOLD}: {n_pos}
   (positive rate {_rate(n_pos, n_lab)}).
 - Compute: {core_h:.2f} core-hours of labelling and {relax_h:.2f} core-hours of
-  relaxation (wall time of single-core jobs).
+  relaxation (wall time of single-core jobs, on a shared machine); median per
+  structure: {_median(relax["wall_s"])} s to relax, {_median(labelled["wall_s"])} s to label.
 
 ## How it was made
 
