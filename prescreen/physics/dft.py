@@ -591,6 +591,12 @@ def label_structure(structure: "Structure | Atoms",
                        gamma=gamma, kpts=kpts, cpu_s=time.process_time() - c0)
 
 
+#: Force tolerance (eV/Angstrom) and step cap of the pre-relaxation at the input cell,
+#: before the lattice scan (loose on purpose; common practice for a first pass).
+PRE_RELAX_FMAX_EV_PER_A: float = 0.2
+PRE_RELAX_STEPS: int = 20
+
+
 def relax_monolayer(structure: "Structure | Atoms",
                     settings: LabelSettings = LabelSettings(), *,
                     fmax: float = DEFAULT_FMAX_EV_PER_A, steps: int = 100,
@@ -601,7 +607,8 @@ def relax_monolayer(structure: "Structure | Atoms",
 
     GPAW 26.7 has no stress tensor in LCAO mode, so the in-plane cell is optimised by
     energy: the in-plane lattice is scaled isotropically through ``scales`` (positions
-    first relaxed at the input cell, then held in fractional coordinates), a parabola
+    first roughly relaxed at the input cell, to :data:`PRE_RELAX_FMAX_EV_PER_A`, then
+    held in fractional coordinates), a parabola
     through the lowest energies gives the best scale, and positions are relaxed again
     there (BFGS). The out-of-plane cell is not changed apart from re-centring with
     ``settings.vacuum_A`` of vacuum; the in-plane cell *shape* is not optimised.
@@ -642,14 +649,17 @@ def relax_monolayer(structure: "Structure | Atoms",
         a.calc = _gpaw_calculator(settings, kmesh, folder / f"relax-{tag}.txt",
                                   settings.spinpol)
 
-    def relax_positions(a: "Atoms", folder: Path, tag: str) -> bool:
+    def relax_positions(a: "Atoms", folder: Path, tag: str, f_tol: float, n_steps: int) -> bool:
         attach(a, folder, tag)
-        return bool(BFGS(a, logfile=str(folder / f"bfgs-{tag}.log")).run(fmax=fmax,
-                                                                          steps=steps))
+        return bool(BFGS(a, logfile=str(folder / f"bfgs-{tag}.log")).run(fmax=f_tol,
+                                                                          steps=n_steps))
 
     with _run_in(workdir) as folder, _one_thread():
         try:
-            relax_positions(atoms, folder, "start")
+            # A rough pre-relaxation at the input cell: the lattice is still off there, so
+            # converging tightly would waste steps that the final relaxation repeats.
+            relax_positions(atoms, folder, "start", max(fmax, PRE_RELAX_FMAX_EV_PER_A),
+                            min(steps, PRE_RELAX_STEPS))
             energies = []
             for i, s in enumerate(scales):
                 trial = atoms.copy()
@@ -668,7 +678,7 @@ def relax_monolayer(structure: "Structure | Atoms",
             cell = np.array(atoms.cell)
             cell[:2] *= best
             atoms.set_cell(cell, scale_atoms=True)
-            ok = relax_positions(atoms, folder, "final")
+            ok = relax_positions(atoms, folder, "final", fmax, steps)
             residual = float(np.linalg.norm(atoms.get_forces(), axis=1).max())
         except Exception as exc:
             raise LabellingError(f"{_formula(atoms)}: relaxation failed: "
