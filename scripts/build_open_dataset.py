@@ -656,8 +656,9 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--relax-timeout", type=float, default=3600.0, help="seconds per relaxation")
     p.add_argument("--relax-kpt-density", type=float, default=RELAX_KPT_DENSITY)
     p.add_argument("--out", type=Path, default=ROOT / "data_open")
-    p.add_argument("--work", type=Path, default=ROOT / "build" / "open_dataset",
-                   help="checkpoints and raw label files (not shipped)")
+    p.add_argument("--work", type=Path, default=ROOT / "data_work" / "open_dataset",
+                   help="checkpoints: relaxed structures and raw label records (committed, so "
+                   "a later run on another machine resumes instead of starting over)")
     p.add_argument("--force-pool", action="store_true", help="regenerate the pool even if present")
     p.add_argument("--no-progress", action="store_true")
     p.add_argument("--traceback", action="store_true", help="show full tracebacks on error")
