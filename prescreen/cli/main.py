@@ -20,6 +20,10 @@ COMMANDS: dict[str, str] = {
     "add": "add",
     "ingest": "ingest",
     "status": "status",
+    "train": "train",
+    "rank": "rank",
+    "propose": "propose",
+    "label": "label",
 }
 
 #: One-line help per command (kept here so --help does not import every module).
@@ -28,6 +32,10 @@ HELP: dict[str, str] = {
     "add": "Add more candidate sources to an existing campaign.",
     "ingest": "Ingest DFT spillage results (CSV or JSON) into a campaign.",
     "status": "Show what a campaign holds: candidates, flags, labels, rounds.",
+    "train": "Train the classifier on the open data plus the campaign's own results.",
+    "rank": "Rank every candidate by its probability of high spillage (CSV and Parquet).",
+    "propose": "Propose the next batch to compute under a core-hour budget.",
+    "label": "Compute spillage with the built-in DFT labeller (GPAW) and ingest it.",
 }
 
 

@@ -1,0 +1,560 @@
+"""A campaign round: features -> model -> ranking -> proposal -> (DFT) -> ingest -> retrain.
+
+This module joins the pieces of the library for one campaign; every step reads and
+writes the campaign store and can be repeated without losing or duplicating work.
+
+- :func:`candidate_features` featurises the campaign's candidates (cached by schema).
+- :func:`training_table` joins the open labelled dataset (``data_open/``) with the
+  campaign's own DFT results.
+- :func:`train` fits the calibrated ensemble, validates it with grouped folds and
+  records it in the store.
+- :func:`rank` scores every candidate with probability, uncertainty, predicted cost
+  and flags.
+- :func:`propose` picks the next batch under a core-hour budget and writes
+  ready-to-run structures.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+from dataclasses import dataclass
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+
+from prescreen.errors import CampaignError, InputError
+
+if TYPE_CHECKING:  # pragma: no cover
+    import pandas as pd
+
+    from prescreen.campaign import Campaign
+    from prescreen.model import SpillageClassifier
+
+__all__ = [
+    "DEFAULT_DATA_OPEN",
+    "DEFAULT_MODEL_DIR",
+    "PROPOSABLE_STATUSES",
+    "TrainingTable",
+    "TrainedModel",
+    "ProposedRound",
+    "data_open_dir",
+    "load_open_labelled",
+    "candidate_features",
+    "training_table",
+    "train",
+    "load_model",
+    "rank",
+    "propose",
+    "strategy_by_name",
+    "LabelOutcome",
+    "label_pending",
+]
+
+_REPO = Path(__file__).resolve().parents[2]
+#: The shipped open dataset (override with the PRESCREEN_DATA_OPEN environment variable).
+DEFAULT_DATA_OPEN = _REPO / "data_open"
+#: The shipped default model, trained on data_open/ (see scripts/train_default_model.py).
+DEFAULT_MODEL_DIR = _REPO / "models" / "default"
+#: Layer statuses a candidate may have and still be proposed for DFT.
+PROPOSABLE_STATUSES = ("monolayer", "ambiguous")
+#: Seed of every default model fit, so that a rerun gives the same model.
+DEFAULT_SEED = 0
+
+
+def data_open_dir(path: str | Path | None = None) -> Path:
+    """The open-dataset folder: ``path``, else $PRESCREEN_DATA_OPEN, else the shipped one."""
+    return Path(path or os.environ.get("PRESCREEN_DATA_OPEN") or DEFAULT_DATA_OPEN)
+
+
+def load_open_labelled(path: str | Path | None = None) -> pd.DataFrame:
+    """The labelled open dataset: one row per monolayer with ``structure`` objects.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Index ``id``; columns ``formula`` (reduced), ``prototype``, ``spillage``,
+        ``core_hours``, ``structure`` (pymatgen ``Structure``), ``n_atoms``.
+    """
+    import pandas as pd
+
+    from prescreen.prototypes import structure_from_row
+
+    folder = data_open_dir(path)
+    table = folder / "labelled.parquet"
+    if not table.is_file():
+        raise CampaignError(f"{table}: the labelled open dataset is missing")
+    df = pd.read_parquet(table)
+    df = df[df["spillage"].notna()].copy()
+    df["structure"] = [structure_from_row(row) for row in df.to_dict("records")]
+    df = df.rename(columns={"reduced_formula": "formula"})
+    keep = ["id", "formula", "prototype", "spillage", "core_hours", "n_atoms", "structure"]
+    return df[keep].set_index("id")
+
+
+def _featurise_frame(formulas: list[str], structures: list[Any], progress: bool) -> pd.DataFrame:
+    from prescreen.featurise import featurise
+
+    return featurise(formulas, structures, progress=progress)
+
+
+def candidate_features(campaign: Campaign, *, progress: bool = True) -> pd.DataFrame:
+    """Descriptors of every candidate of the campaign (cached by feature schema)."""
+    from prescreen.featurise import schema_version
+
+    def compute(ids: list[str], formulas: list[str], structures: list[Any]) -> pd.DataFrame:
+        return _featurise_frame(formulas, structures, progress)
+
+    return campaign.features(compute, schema_version())
+
+
+@dataclass(frozen=True)
+class TrainingTable:
+    """Rows a model is trained on.
+
+    Attributes
+    ----------
+    X : DataFrame, shape (n, d)
+        Features (the ``error`` column removed).
+    spillage : ndarray, shape (n,)
+    y : ndarray of int, shape (n,)
+        ``spillage >= threshold``.
+    weight : ndarray, shape (n,)
+    formulas : list of str, length n
+        For grouped validation folds.
+    origin : ndarray of str, shape (n,)
+        ``"open"`` or ``"campaign"``.
+    """
+
+    X: Any
+    spillage: np.ndarray
+    y: np.ndarray
+    weight: np.ndarray
+    formulas: list[str]
+    origin: np.ndarray
+    threshold: float
+
+    def __len__(self) -> int:
+        return len(self.y)
+
+
+def _feature_columns(frame: pd.DataFrame) -> pd.DataFrame:
+    from prescreen.featurise import ERROR_COLUMN
+
+    return frame.drop(columns=[ERROR_COLUMN], errors="ignore").astype(float)
+
+
+def training_table(
+    campaign: Campaign | None,
+    *,
+    use_open: bool = True,
+    campaign_weight: float = 1.0,
+    data_open: str | Path | None = None,
+    threshold: float | None = None,
+    progress: bool = True,
+) -> TrainingTable:
+    """Join the open labelled data and the campaign's own results into one table.
+
+    Parameters
+    ----------
+    campaign
+        The campaign whose results are added (``None``: open data only).
+    use_open
+        Include ``data_open/``.
+    campaign_weight
+        Sample weight of the campaign's own rows relative to open rows (> 0); use a
+        value above 1 to trust your own level of theory more.
+    threshold
+        Spillage counted as positive; default the campaign's (or 0.5).
+    """
+    import pandas as pd
+
+    from prescreen import SPILLAGE_THRESHOLD
+
+    if not campaign_weight > 0:
+        raise InputError("campaign_weight must be positive", value=campaign_weight,
+                         expected="a number > 0")
+    if threshold is None:
+        threshold = campaign.threshold if campaign is not None else SPILLAGE_THRESHOLD
+    parts, spill, weights, formulas, origin = [], [], [], [], []
+    if use_open:
+        open_df = load_open_labelled(data_open)
+        feats = _feature_columns(_featurise_frame(list(open_df["formula"]),
+                                                  list(open_df["structure"]), progress))
+        feats.index = open_df.index
+        parts.append(feats)
+        spill.append(open_df["spillage"].to_numpy(float))
+        weights.append(np.ones(len(open_df)))
+        formulas += list(open_df["formula"])
+        origin += ["open"] * len(open_df)
+    if campaign is not None:
+        labels = campaign.labels()
+        if len(labels):
+            feats = _feature_columns(candidate_features(campaign, progress=progress))
+            feats = feats.loc[labels.index]
+            parts.append(feats)
+            spill.append(labels["spillage"].to_numpy(float))
+            weights.append(np.full(len(labels), float(campaign_weight)))
+            frame = campaign.candidates_frame()
+            formulas += list(frame.loc[labels.index, "reduced_formula"])
+            origin += ["campaign"] * len(labels)
+    if not parts:
+        raise CampaignError("no labelled data to train on: ingest results or use the open data")
+    X = pd.concat(parts)
+    spillage = np.concatenate(spill)
+    return TrainingTable(X=X, spillage=spillage, y=(spillage >= threshold).astype(int),
+                         weight=np.concatenate(weights), formulas=formulas,
+                         origin=np.asarray(origin), threshold=float(threshold))
+
+
+@dataclass(frozen=True)
+class TrainedModel:
+    """A model written to disk and what it was validated at."""
+
+    version: str
+    path: Path
+    n_rows: int
+    n_positive: int
+    metrics: dict[str, float]
+    cv_table: Any  # pandas.DataFrame of grouped-CV metrics per fold
+
+
+def _classifier(n_models: int, random_state: int) -> SpillageClassifier:
+    from prescreen.model import SpillageClassifier
+
+    return SpillageClassifier(n_models=n_models, random_state=random_state, n_jobs=1)
+
+
+def fit_and_validate(
+    table: TrainingTable, *, n_models: int = 5, random_state: int = DEFAULT_SEED,
+    n_splits: int = 5, progress: bool = True,
+) -> tuple[SpillageClassifier, Any]:
+    """Fit on the whole table and measure grouped k-fold metrics of the same recipe."""
+    from prescreen.validation import cross_validate, formula_groups
+
+    cv = cross_validate(lambda: _classifier(n_models, random_state), table.X, table.y,
+                        table.formulas, n_splits=n_splits, random_state=random_state,
+                        progress=progress, label="grouped CV")
+    model = _classifier(n_models, random_state)
+    model.fit(table.X, table.y, sample_weight=table.weight, groups=formula_groups(table.formulas))
+    return model, cv
+
+
+def train(
+    campaign: Campaign,
+    *,
+    use_open: bool = True,
+    campaign_weight: float = 1.0,
+    n_models: int = 5,
+    random_state: int = DEFAULT_SEED,
+    data_open: str | Path | None = None,
+    progress: bool = True,
+) -> TrainedModel:
+    """Train, validate and store a model for the campaign (a new version each call)."""
+    from prescreen.featurise import schema_version
+    from prescreen.model import training_data_hash
+
+    table = training_table(campaign, use_open=use_open, campaign_weight=campaign_weight,
+                           data_open=data_open, progress=progress)
+    if len(set(table.y)) < 2:
+        raise CampaignError(
+            f"training data has only one class ({len(table)} rows, all "
+            f"{'positive' if table.y[0] else 'negative'} at spillage >= {table.threshold:g}); "
+            "a classifier needs both"
+        )
+    model, cv = fit_and_validate(table, n_models=n_models, random_state=random_state,
+                                 progress=progress)
+    metrics = {k: float(v) for k, v in cv.loc["mean"].items() if np.isfinite(v)}
+    n_models_before = campaign.status().models
+    version = f"model-{n_models_before + 1:03d}"
+    path = campaign.path / "models" / version
+    model.save(path, feature_schema=schema_version(),
+               training_data_hash=training_data_hash(table.X, table.y, table.weight),
+               metrics=metrics, threshold=table.threshold)
+    cv.to_csv(path / "grouped_cv.csv")
+    campaign.record_model(version, path.relative_to(campaign.path),
+                          feature_schema=schema_version(), training_rows=len(table),
+                          metrics=metrics)
+    return TrainedModel(version=version, path=path, n_rows=len(table),
+                        n_positive=int(table.y.sum()), metrics=metrics, cv_table=cv)
+
+
+def load_model(campaign: Campaign | None = None) -> tuple[SpillageClassifier, str]:
+    """The campaign's latest model, else the shipped default; returns (model, version)."""
+    from prescreen.featurise import schema_version
+    from prescreen.model import SpillageClassifier
+
+    record = campaign.latest_model() if campaign is not None else None
+    if record is not None:
+        path = campaign.path / record["path"]
+        return SpillageClassifier.load(path, expected_schema=schema_version()), record["version"]
+    if not (DEFAULT_MODEL_DIR / "metadata.json").is_file():
+        raise CampaignError(
+            f"no model: train one with `prescreen train` (the shipped default model "
+            f"{DEFAULT_MODEL_DIR} is missing)"
+        )
+    return SpillageClassifier.load(DEFAULT_MODEL_DIR, expected_schema=schema_version()), "default"
+
+
+def _cost_model(campaign: Campaign):
+    from prescreen.acquire.cost import CostModel
+
+    path = campaign.path / "cost_model.json"
+    return CostModel.load(path) if path.is_file() else CostModel()
+
+
+def rank(campaign: Campaign, *, progress: bool = True) -> pd.DataFrame:
+    """Score every candidate: probability, uncertainty, predicted cost, flags and rank.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Index ``id``, sorted by rank (1 = most likely high spillage). Columns:
+        ``formula``, ``probability``, ``uncertainty`` (ensemble spread), ``rank``,
+        ``cost_core_hours`` with ``cost_low``/``cost_high`` (NaN for formula-only
+        candidates), ``layer_status``, ``duplicate_of``, ``hazard``, ``spillage`` (if
+        labelled), ``flags`` (a readable summary), ``model``.
+    """
+    from prescreen.acquire.cost import descriptors_for_structure
+
+    model, version = load_model(campaign)
+    feats = _feature_columns(candidate_features(campaign, progress=progress))
+    mean, std = model.predict_uncertainty(feats)
+    frame = campaign.candidates_frame()
+    out = frame[["formula", "layer_status", "duplicate_of", "hazard", "spillage"]].copy()
+    out["probability"] = mean
+    out["uncertainty"] = std
+    cost_model = _cost_model(campaign)
+    rows, where = [], []
+    for i, (cid, structure) in enumerate(campaign.iter_structures()):
+        if structure is not None:
+            rows.append(descriptors_for_structure(structure))
+            where.append(i)
+    out["cost_core_hours"] = np.nan
+    out["cost_low"] = np.nan
+    out["cost_high"] = np.nan
+    if rows:
+        import pandas as pd
+
+        desc = pd.DataFrame(rows)
+        col = out.columns.get_loc
+        mid, low, high = cost_model.predict_interval(desc)
+        out.iloc[where, col("cost_core_hours")] = mid
+        out.iloc[where, col("cost_low")] = low
+        out.iloc[where, col("cost_high")] = high
+    out["flags"] = [_flags(r) for r in out.itertuples()]
+    out["model"] = version
+    out = out.sort_values(["probability", "uncertainty"], ascending=[False, True], kind="stable")
+    out.insert(0, "rank", np.arange(1, len(out) + 1))
+    return out
+
+
+def _flags(row: Any) -> str:
+    flags = []
+    if row.layer_status not in ("monolayer", "formula_only"):
+        flags.append(row.layer_status.replace("_", " "))
+    if row.layer_status == "formula_only":
+        flags.append("no structure")
+    if isinstance(row.duplicate_of, str):
+        flags.append(f"duplicate of {row.duplicate_of}")
+    if row.hazard:
+        flags.append(row.hazard)
+    return "; ".join(flags)
+
+
+def strategy_by_name(name: str, **options: Any):
+    """The strategy function called ``name`` in :mod:`prescreen.acquire.strategies`."""
+    from functools import partial
+
+    from prescreen.acquire import strategies
+
+    if name not in strategies.__all__ or name in ("Proposal", "Strategy", "TwoPhase"):
+        allowed = [n for n in strategies.__all__ if n[0].islower() and n != "two_phase"]
+        raise InputError("unknown strategy", value=name, expected=", ".join(allowed))
+    return partial(getattr(strategies, name), **options) if options else getattr(strategies, name)
+
+
+@dataclass(frozen=True)
+class ProposedRound:
+    """A recorded round: its number, the proposal table and the folder of structures."""
+
+    number: int
+    table: Any  # pandas.DataFrame
+    folder: Path
+    expected_hits: float
+    expected_hits_interval: tuple[float, float]
+    total_cost: float
+    budget: float
+    strategy: str
+
+
+def propose(
+    campaign: Campaign,
+    *,
+    budget_core_hours: float,
+    strategy: str = "expected_hits_per_core_hour",
+    diversity: float = 0.3,
+    seed: int = DEFAULT_SEED,
+    ranking: pd.DataFrame | None = None,
+    progress: bool = True,
+) -> ProposedRound:
+    """Pick the next batch under a core-hour budget and record it as a round.
+
+    Only candidates with a structure that are monolayers (or ambiguous), not duplicates,
+    not labelled and not pending in an earlier round can be picked. The same campaign
+    state and seed give the same proposal, bit for bit.
+    """
+    from ase.io import write
+    from pymatgen.io.ase import AseAtomsAdaptor
+
+    from prescreen.acquire.measures import PoolView
+
+    if not budget_core_hours > 0:
+        raise InputError("budget must be positive", value=budget_core_hours,
+                         expected="core-hours > 0")
+    ranked = rank(campaign, progress=progress) if ranking is None else ranking
+    feats = _feature_columns(candidate_features(campaign, progress=progress))
+    pending = set(campaign.pending_ids())
+    ok = (ranked["layer_status"].isin(PROPOSABLE_STATUSES)
+          & ranked["duplicate_of"].isna() & ranked["spillage"].isna()
+          & ~ranked.index.isin(pending) & ranked["cost_core_hours"].notna())
+    pool = ranked[ok]
+    if pool.empty:
+        raise CampaignError("nothing left to propose: every candidate is labelled, pending, "
+                            "a duplicate, not a monolayer, or has no structure")
+    model, version = load_model(campaign)
+    X = feats.loc[pool.index]
+    labelled_ids = ranked.index[ranked["spillage"].notna()]
+    view = PoolView.build(
+        list(pool.index), np.nan_to_num(X.to_numpy(float)), pool["probability"].to_numpy(float),
+        pool["uncertainty"].to_numpy(float), pool["cost_core_hours"].to_numpy(float),
+        members=model.ensemble_proba(X), cost_low=pool["cost_low"].to_numpy(float),
+        cost_high=pool["cost_high"].to_numpy(float),
+        X_labelled=np.nan_to_num(feats.loc[labelled_ids].to_numpy(float)) if len(labelled_ids) else None,
+    )
+    options = {"diversity": diversity} if diversity else {}
+    func = strategy_by_name(strategy, **options)
+    proposal = func(view, float(budget_core_hours), np.random.default_rng(seed))
+    table = proposal.to_frame().set_index("id")
+    table["formula"] = pool.loc[table.index, "formula"]
+    table["flags"] = pool.loc[table.index, "flags"]
+    rows = [{"id": cid, "probability": float(r.probability), "uncertainty": float(r.spread),
+             "cost_core_hours": float(r.cost_core_hours), "reason": r.reason}
+            for cid, r in table.iterrows()]
+    number = campaign.record_round(
+        strategy=proposal.strategy, budget_core_hours=budget_core_hours, seed=seed,
+        model_version=version, proposals=rows,
+        settings={"diversity": diversity, "expected_hits": proposal.expected_hits,
+                  "expected_hits_interval": [proposal.expected_hits_low,
+                                             proposal.expected_hits_high],
+                  "total_cost_core_hours": proposal.total_cost},
+    )
+    folder = campaign.path / "rounds" / f"round-{number:03d}"
+    (folder / "cif").mkdir(parents=True, exist_ok=True)
+    frames = []
+    for cid in table.index:
+        structure = campaign.structure(cid)
+        structure.to(filename=str(folder / "cif" / f"{cid}.cif"))
+        atoms = AseAtomsAdaptor.get_atoms(structure)
+        atoms.info["id"] = cid
+        frames.append(atoms)
+    write(folder / "batch.extxyz", frames, format="extxyz")
+    table.to_csv(folder / "proposals.csv")
+    (folder / "round.json").write_text(json.dumps({
+        "round": number, "strategy": proposal.strategy, "seed": seed, "model": version,
+        "budget_core_hours": budget_core_hours, "total_cost_core_hours": proposal.total_cost,
+        "expected_hits": proposal.expected_hits,
+        "expected_hits_interval": [proposal.expected_hits_low, proposal.expected_hits_high],
+        "interval_level": proposal.interval_level, "interval_method": proposal.interval_method,
+    }, indent=2))
+    return ProposedRound(number=number, table=table, folder=folder,
+                         expected_hits=proposal.expected_hits,
+                         expected_hits_interval=(proposal.expected_hits_low,
+                                                 proposal.expected_hits_high),
+                         total_cost=proposal.total_cost, budget=float(budget_core_hours),
+                         strategy=proposal.strategy)
+
+
+@dataclass(frozen=True)
+class LabelOutcome:
+    """What :func:`label_pending` computed and ingested."""
+
+    n_jobs: int
+    n_ok: int
+    n_failed: int
+    n_ingested: int
+    failures: tuple[tuple[str, str], ...]  # (id, reason)
+    core_hours: float
+    out_dir: Path
+
+
+def label_pending(
+    campaign: Campaign,
+    *,
+    ids: list[str] | None = None,
+    workers: int = 1,
+    timeout_s: float = 1800.0,
+    settings: Any = None,
+    progress: bool = True,
+    compute: Any = None,
+) -> LabelOutcome:
+    """Compute spillage with the DFT labeller for pending proposals and ingest it.
+
+    Calculations are checkpointed in ``<campaign>/labels/`` so a rerun after an
+    interruption resumes; results land through the same path as a user's CSV, so
+    ingesting twice changes nothing. Failed calculations are reported, not ingested.
+
+    Parameters
+    ----------
+    ids
+        Candidates to label (default: every pending proposal).
+    workers, timeout_s
+        Parallel single-core calculations and the wall-time limit per structure (s).
+    settings
+        :class:`prescreen.physics.dft.LabelSettings` (default settings when None).
+    compute
+        Replacement for the DFT calculation (tests); see
+        :func:`prescreen.physics.labeller.run_labelling`.
+    """
+    from prescreen.io.results import ResultRow
+    from prescreen.physics.dft import LabelSettings
+    from prescreen.physics.labeller import load_records, run_labelling
+
+    settings = settings or LabelSettings()
+    wanted = list(ids) if ids is not None else campaign.pending_ids()
+    if not wanted:
+        raise CampaignError("nothing to label: no pending proposals (propose a round first)")
+    jobs = []
+    for cid in wanted:
+        structure = campaign.structure(cid)
+        if structure is None:
+            raise InputError("candidate has no structure to compute", value=cid,
+                             expected="a candidate read from a structure file")
+        jobs.append((cid, structure))
+    out_dir = campaign.path / "labels"
+    kwargs = {"compute": compute} if compute is not None else {}
+    summary = run_labelling(jobs, out_dir, settings=settings, workers=workers,
+                            timeout_s=timeout_s, progress=progress, **kwargs)
+    newest = {r.id: r for r in load_records(out_dir)}
+    rows, failures = [], []
+    for cid in wanted:
+        rec = newest.get(cid)
+        if rec is None:
+            continue
+        if not rec.ok:
+            failures.append((cid, rec.error or "failed"))
+            continue
+        kmesh = rec.settings.get("kmesh") or rec.settings.get("kpts")
+        rows.append(ResultRow(
+            id=cid, spillage=float(rec.spillage), functional=str(rec.settings.get("xc", "PBE")),
+            code=f"GPAW {rec.versions.get('gpaw', '')}".strip(),
+            kmesh="x".join(str(k) for k in kmesh) if kmesh else None,
+            core_hours=float(rec.core_hours), notes="prescreen DFT labeller (LCAO, non-self-"
+            "consistent spin-orbit coupling)", source=f"{out_dir / 'records.jsonl'}:{cid}",
+        ))
+    report = campaign.ingest_results((rows, []), on_conflict="keep")
+    return LabelOutcome(n_jobs=len(jobs), n_ok=summary.n_ok + summary.n_skipped,
+                        n_failed=len(failures), n_ingested=report.added,
+                        failures=tuple(failures), core_hours=float(summary.core_hours),
+                        out_dir=out_dir)

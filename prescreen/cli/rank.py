@@ -1,0 +1,37 @@
+"""Rank every candidate by its probability of high spillage (CSV and Parquet)."""
+
+from __future__ import annotations
+
+import argparse
+from pathlib import Path
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("campaign", help="campaign folder")
+    parser.add_argument("--out", type=Path, default=None,
+                        help="output stem (default <campaign>/ranking); writes .csv and .parquet")
+    parser.add_argument("--top", type=int, default=15, help="rows to print (default 15)")
+    parser.add_argument("--no-progress", action="store_true", help="hide progress bars")
+
+
+def run(args: argparse.Namespace) -> int:
+    from prescreen.acquire.rounds import rank
+    from prescreen.campaign import Campaign
+
+    with Campaign.open(args.campaign) as campaign:
+        table = rank(campaign, progress=not args.no_progress)
+        stem = args.out or campaign.path / "ranking"
+    stem.parent.mkdir(parents=True, exist_ok=True)
+    table.to_csv(stem.with_suffix(".csv"))
+    table.to_parquet(stem.with_suffix(".parquet"))
+    shown = table.head(args.top)
+    print(f"{'rank':>4}  {'id':<24} {'formula':<10} {'p':>5} {'±':>5} {'core-h':>7}  flags")
+    for cid, r in shown.iterrows():
+        cost = "" if r.cost_core_hours != r.cost_core_hours else f"{r.cost_core_hours:7.2f}"
+        print(f"{r['rank']:>4}  {cid:<24} {r.formula:<10} {r.probability:5.2f} "
+              f"{r.uncertainty:5.2f} {cost:>7}  {r.flags}")
+    print(f"ranked {len(table)} candidates with model {table['model'].iloc[0]}; "
+          f"written to {stem.with_suffix('.csv')} and .parquet")
+    print("note: a probability is not a topological classification; confirm hits with an "
+          "invariant (Z2).")
+    return 0

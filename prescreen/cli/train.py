@@ -1,0 +1,35 @@
+"""Train the classifier on the open data plus the campaign's own results."""
+
+from __future__ import annotations
+
+import argparse
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("campaign", help="campaign folder")
+    parser.add_argument("--no-open-data", action="store_true",
+                        help="train on the campaign's own results only")
+    parser.add_argument("--campaign-weight", type=float, default=1.0,
+                        help="weight of the campaign's own rows relative to open rows "
+                        "(default %(default)s)")
+    parser.add_argument("--models", type=int, default=5, help="ensemble members")
+    parser.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
+    parser.add_argument("--no-progress", action="store_true", help="hide progress bars")
+
+
+def run(args: argparse.Namespace) -> int:
+    from prescreen.acquire.rounds import train
+    from prescreen.campaign import Campaign
+    from prescreen.cli._render import print_table
+
+    with Campaign.open(args.campaign) as campaign:
+        result = train(campaign, use_open=not args.no_open_data,
+                       campaign_weight=args.campaign_weight, n_models=args.models,
+                       random_state=args.seed, progress=not args.no_progress)
+    m = result.metrics
+    print(f"trained {result.version} on {result.n_rows} rows ({result.n_positive} positive)")
+    print("grouped 5-fold cross-validation (mean over folds):")
+    print_table([(k, f"{m[k]:.3f}") for k in ("roc_auc", "pr_auc", "brier", "log_loss", "ece")
+                 if k in m])
+    print(f"model written to {result.path}")
+    return 0

@@ -1,0 +1,159 @@
+"""A campaign round end to end: features -> model -> ranking -> proposal -> label -> ingest.
+
+The labels here come from a stated rule, not from DFT: they only exercise the plumbing
+(no test below compares a number with a reference value). The physics of spillage is
+tested in test_spillage.py, test_tightbinding_models.py and test_dft.py.
+"""
+
+from __future__ import annotations
+
+import itertools
+import json
+import os
+import time
+
+import numpy as np
+import pandas as pd
+import pytest
+from ase.build import mx2
+from pymatgen.io.ase import AseAtomsAdaptor
+
+from prescreen.acquire import rounds
+from prescreen.campaign import Campaign
+from prescreen.candidate import Candidate
+from prescreen.errors import CampaignError, InputError
+from prescreen.io.results import ResultRow
+from prescreen.physics.dft import LabelRecord
+
+METALS = ["Mo", "W", "Ti", "Zr", "Hf", "Nb", "Ta", "Pt", "Pd", "Sn"]
+CHALCOGENS = ["S", "Se", "Te"]
+#: The plumbing rule: "positive" when the heaviest element is beyond Z = 72. A stand-in
+#: with both classes present, not a physical claim.
+HEAVY_Z = 72
+
+
+def _structures():
+    out = []
+    for (m, x), kind in itertools.product(itertools.product(METALS, CHALCOGENS), ("2H", "1T")):
+        atoms = mx2(f"{m}{x}2", kind, a=3.3, thickness=3.2, vacuum=9.0)
+        out.append((f"{m}{x}2-{kind}", f"{m}{x}2", AseAtomsAdaptor.get_structure(atoms)))
+    return out
+
+
+def _rule(structure) -> float:
+    return 0.9 if max(site.specie.Z for site in structure) > HEAVY_Z else 0.05
+
+
+@pytest.fixture(scope="module")
+def trained(tmp_path_factory):
+    """A campaign of 60 dichalcogenides, half of them labelled by the rule, trained once."""
+    path = tmp_path_factory.mktemp("round") / "camp"
+    camp = Campaign.create(path, name="rounds-test")
+    items = _structures()
+    camp.add_candidates([Candidate(cid, f, f"gen:{i}", s) for i, (cid, f, s) in enumerate(items)]
+                        + [Candidate("f-only", "Bi2Se3", "wish.csv:2")])
+    labelled = items[::2]
+    rows = [ResultRow(id=cid, spillage=_rule(s), functional="PBE", code="rule", kmesh=None,
+                      core_hours=None, notes=None, source=f"rule.csv:{i + 2}")
+            for i, (cid, _, s) in enumerate(labelled)]
+    camp.ingest_results((rows, []))
+    result = rounds.train(camp, use_open=False, n_models=2, progress=False)
+    yield camp, result
+    camp.close()
+
+
+def test_train_records_a_versioned_model_with_grouped_cv(trained):
+    camp, result = trained
+    assert result.version == "model-001"
+    assert (result.path / "metadata.json").is_file()
+    assert camp.latest_model()["version"] == "model-001"
+    assert {"roc_auc", "brier"} <= set(result.metrics)
+    assert list(result.cv_table.index[-3:]) == ["mean", "std", "pooled"]
+
+
+def test_rank_scores_every_candidate_once(trained):
+    camp, _ = trained
+    table = rounds.rank(camp, progress=False)
+    assert sorted(table.index) == sorted(camp.candidate_ids())
+    assert list(table["rank"]) == list(range(1, len(table) + 1))
+    assert table["probability"].is_monotonic_decreasing
+    assert table["probability"].between(0, 1).all() and (table["uncertainty"] >= 0).all()
+    # A formula-only candidate is ranked but has no cost (nothing to compute yet).
+    assert np.isnan(table.loc["f-only", "cost_core_hours"])
+    assert "no structure" in table.loc["f-only", "flags"]
+
+
+def test_propose_respects_budget_exclusions_and_seed(trained, tmp_path):
+    camp, _ = trained
+    ranking = rounds.rank(camp, progress=False)
+    first = rounds.propose(camp, budget_core_hours=40.0, seed=3, ranking=ranking, progress=False)
+    picked = list(first.table.index)
+    assert picked and first.total_cost <= 40.0
+    labelled = set(camp.labels().index)
+    assert not (set(picked) & labelled) and "f-only" not in picked
+    assert sorted(os.listdir(first.folder / "cif")) == sorted(f"{c}.cif" for c in picked)
+    meta = json.loads((first.folder / "round.json").read_text())
+    assert meta["round"] == first.number and meta["seed"] == 3
+    # Pending proposals stay out of the next batch.
+    second = rounds.propose(camp, budget_core_hours=40.0, seed=3, ranking=ranking,
+                            progress=False)
+    assert not set(second.table.index) & set(picked)
+
+
+def test_same_seed_same_proposal_bit_for_bit(tmp_path):
+    def run() -> pd.DataFrame:
+        camp = Campaign.create(tmp_path / f"c{time.perf_counter_ns()}")
+        items = _structures()
+        camp.add_candidates([Candidate(c, f, "gen", s) for c, f, s in items])
+        camp.ingest_results(([ResultRow(id=c, spillage=_rule(s), functional=None, code=None,
+                                         kmesh=None, core_hours=None, notes=None,
+                                         source=f"r:{i}")
+                              for i, (c, _, s) in enumerate(items[::2])], []))
+        rounds.train(camp, use_open=False, n_models=2, progress=False)
+        table = rounds.propose(camp, budget_core_hours=30.0, strategy="thompson_sampling",
+                               seed=11, progress=False).table
+        camp.close()
+        return table
+
+    pd.testing.assert_frame_equal(run(), run(), check_exact=True)
+
+
+def test_unknown_strategy_names_the_choices():
+    with pytest.raises(InputError, match="unknown strategy.*greedy_probability"):
+        rounds.strategy_by_name("best_guess")
+
+
+def rule_compute(structure, settings, *, id=None):
+    """Stand-in for the DFT calculation (spawned worker): the plumbing rule as a record."""
+    gamma = np.array([0.0, _rule(structure)])
+    kpts = np.zeros((2, 3))
+    return LabelRecord(id=id, formula=structure.composition.formula, spillage=gamma.max(),
+                       k_max=kpts[1], gap_nosoc_eV=1.0, gap_soc_eV=0.9, is_metal=False,
+                       magmom=0.0, settings={**settings.as_dict(), "kmesh": [3, 3, 1]},
+                       versions={"gpaw": "stand-in"}, wall_s=0.01, core_hours=0.01 / 3600,
+                       gamma=gamma, kpts=kpts)
+
+
+def test_label_pending_ingests_and_clears_pending(trained):
+    camp, _ = trained
+    pending = camp.pending_ids()
+    if not pending:
+        rounds.propose(camp, budget_core_hours=20.0, progress=False)
+        pending = camp.pending_ids()
+    out = rounds.label_pending(camp, ids=pending[:2], compute=rule_compute, progress=False)
+    assert (out.n_jobs, out.n_ok, out.n_ingested) == (2, 2, 2)
+    assert set(pending[:2]) <= set(camp.labels().index)
+    assert not set(pending[:2]) & set(camp.pending_ids())
+    again = rounds.label_pending(camp, ids=pending[:2], compute=rule_compute, progress=False)
+    assert again.n_ingested == 0  # resumed from the checkpoint; nothing new
+
+
+def test_one_class_training_data_is_a_clear_error(tmp_path):
+    camp = Campaign.create(tmp_path / "one")
+    items = _structures()[:6]
+    camp.add_candidates([Candidate(c, f, "gen", s) for c, f, s in items])
+    camp.ingest_results(([ResultRow(id=c, spillage=0.0, functional=None, code=None, kmesh=None,
+                                    core_hours=None, notes=None, source=f"r:{i}")
+                          for i, (c, _, _) in enumerate(items)], []))
+    with pytest.raises(CampaignError, match="only one class"):
+        rounds.train(camp, use_open=False, progress=False)
