@@ -1,8 +1,10 @@
-"""The demo behind ``make demo``: the main job on the shipped example inputs.
+"""The demo behind ``make demo``: the main job on the shipped data.
 
 Scenario (invented): the Ferngrove Layered Matter Group holds a mixed list of candidate
-monolayers and asks which to compute first. The demo builds their campaign from the
-files in ``examples/ferngrove/`` and prints what it holds.
+monolayers and an allocation of core-hours, and asks which to compute first. The demo
+builds their campaign from ``examples/ferngrove/``, ingests the spillage results they
+already have, trains the classifier on the open dataset plus those results, ranks every
+candidate, proposes the next batch under this round's budget, and writes the report.
 
 Run: ``python -m prescreen.demo --out demo_out`` (the output folder is rebuilt each run).
 """
@@ -16,15 +18,23 @@ import time
 from collections.abc import Sequence
 from pathlib import Path
 
-__all__ = ["main", "run_demo"]
+__all__ = ["main", "run_demo", "ROUND_BUDGET_CORE_HOURS"]
 
 EXAMPLES = Path("examples") / "ferngrove"
+#: The invented group's budget for this round, core-hours.
+ROUND_BUDGET_CORE_HOURS = 12.0
 
 
-def run_demo(out: Path, inputs: Path = EXAMPLES, *, progress: bool = True) -> Path:
-    """Build the demo campaign in ``out/campaign`` and return its path."""
+def _step(text: str) -> None:
+    print(f"\n== {text}", flush=True)
+
+
+def run_demo(out: Path, inputs: Path = EXAMPLES, *, progress: bool = True) -> dict[str, Path]:
+    """Run the whole job; returns the paths of what it wrote."""
+    from prescreen.acquire import rounds
     from prescreen.campaign import Campaign
-    from prescreen.cli._render import print_rejections
+    from prescreen.cli._render import print_rejections, print_table
+    from prescreen.io.results import read_results
     from prescreen.io.structures import iter_candidates
 
     if not inputs.is_dir():
@@ -35,24 +45,66 @@ def run_demo(out: Path, inputs: Path = EXAMPLES, *, progress: bool = True) -> Pa
     if out.exists():
         shutil.rmtree(out)
     campaign_dir = out / "campaign"
+    written: dict[str, Path] = {"campaign": campaign_dir}
     with Campaign.create(campaign_dir, name="ferngrove-winter-screen") as campaign:
-        report = campaign.add_candidates(iter_candidates([inputs]), progress=progress)
-        print(f"read {report.added} candidates from {inputs}")
+        _step(f"reading candidates from {inputs}")
+        sources = [p for p in sorted(inputs.iterdir()) if p.name != "results.csv"]
+        report = campaign.add_candidates(iter_candidates(sources), progress=progress)
+        print(f"read {report.added} candidates; layer check: {report.layer_counts}; "
+              f"duplicates: {report.duplicates}")
         print_rejections(report.rejections, stream=sys.stdout, campaign=str(campaign_dir))
-    return campaign_dir
+
+        results = inputs / "results.csv"
+        if results.is_file():
+            _step(f"ingesting the group's earlier DFT results ({results})")
+            ing = campaign.ingest_results(read_results(results))
+            print(f"ingested {ing.added} results")
+            print_rejections(ing.rejections, stream=sys.stdout)
+
+        _step("training on data_open/ plus the group's results (grouped validation)")
+        trained = rounds.train(campaign, progress=progress)
+        print(f"{trained.version}: {trained.n_rows} rows, {trained.n_positive} positive")
+        print_table([(k, f"{v:.3f}") for k, v in trained.metrics.items()
+                     if k in ("roc_auc", "pr_auc", "brier", "ece")])
+
+        _step("ranking every candidate")
+        ranking = rounds.rank(campaign, progress=progress)
+        ranking.to_csv(out / "ranking.csv")
+        ranking.to_parquet(out / "ranking.parquet")
+        written["ranking"] = out / "ranking.csv"
+        print(ranking[["rank", "formula", "probability", "uncertainty", "cost_core_hours",
+                       "flags"]].head(10).to_string(float_format=lambda v: f"{v:.2f}"))
+
+        _step(f"proposing the next batch within {ROUND_BUDGET_CORE_HOURS:g} core-hours")
+        rnd = rounds.propose(campaign, budget_core_hours=ROUND_BUDGET_CORE_HOURS,
+                             ranking=ranking, progress=progress)
+        low, high = rnd.expected_hits_interval
+        print(f"round {rnd.number}: {len(rnd.table)} candidates, {rnd.total_cost:.2f} "
+              f"core-hours, expected hits {rnd.expected_hits:.2f} (90% interval {low:g}-{high:g})")
+        for cid, r in rnd.table.iterrows():
+            print(f"  {r['rank']:>2}. {cid:<16} {r.reason}")
+        written["round"] = rnd.folder
+    print("\ncaution: a probability is not a topological classification; confirm hits with "
+          "an invariant (Z2). Toxic/radioactive flags defer to local safety rules.")
+    return written
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(prog="python -m prescreen.demo", description=__doc__)
+    parser = argparse.ArgumentParser(prog="python -m prescreen.demo",
+                                     description=__doc__.splitlines()[0])
     parser.add_argument("--out", type=Path, default=Path("demo_out"))
     parser.add_argument("--inputs", type=Path, default=EXAMPLES)
+    parser.add_argument("--no-progress", action="store_true")
     args = parser.parse_args(argv)
     t0 = time.perf_counter()
-    campaign_dir = run_demo(args.out, args.inputs)
+    written = run_demo(args.out, args.inputs, progress=not args.no_progress)
     from prescreen.cli.main import main as cli
 
-    cli(["status", str(campaign_dir)])
-    print(f"demo finished in {time.perf_counter() - t0:.1f} s; campaign at {campaign_dir}")
+    _step("campaign status")
+    cli(["status", str(written["campaign"])])
+    print(f"\ndemo finished in {time.perf_counter() - t0:.1f} s")
+    for key, path in written.items():
+        print(f"  {key}: {path}")
     return 0
 
 

@@ -226,18 +226,41 @@ def _classifier(n_models: int, random_state: int) -> SpillageClassifier:
     return SpillageClassifier(n_models=n_models, random_state=random_state, n_jobs=1)
 
 
+#: Fewest folds worth reporting; with fewer rows of a class, validation is skipped.
+MIN_CV_FOLDS = 2
+
+
 def fit_and_validate(
     table: TrainingTable, *, n_models: int = 5, random_state: int = DEFAULT_SEED,
     n_splits: int = 5, progress: bool = True,
 ) -> tuple[SpillageClassifier, Any]:
-    """Fit on the whole table and measure grouped k-fold metrics of the same recipe."""
+    """Fit on the whole table and measure grouped k-fold metrics of the same recipe.
+
+    The number of folds is lowered to the rows of the rarer class (or the number of
+    chemistry groups) when those are fewer than ``n_splits``; below
+    :data:`MIN_CV_FOLDS` no validation is run and the returned table is empty.
+    """
+    import warnings
+
+    import pandas as pd
+
+    from prescreen.errors import PrescreenWarning
     from prescreen.validation import cross_validate, formula_groups
 
-    cv = cross_validate(lambda: _classifier(n_models, random_state), table.X, table.y,
-                        table.formulas, n_splits=n_splits, random_state=random_state,
-                        progress=progress, label="grouped CV")
+    groups = formula_groups(table.formulas)
+    folds = min(n_splits, int(table.y.sum()), int(len(table.y) - table.y.sum()),
+                len(set(groups.tolist())))
+    if folds >= MIN_CV_FOLDS:
+        cv = cross_validate(lambda: _classifier(n_models, random_state), table.X, table.y,
+                            table.formulas, n_splits=folds, random_state=random_state,
+                            progress=progress, label="grouped CV")
+    else:
+        warnings.warn(f"too few labelled rows for grouped validation ({int(table.y.sum())} "
+                      f"positive, {int(len(table.y) - table.y.sum())} negative); the model "
+                      "is unvalidated", PrescreenWarning, stacklevel=2)
+        cv = pd.DataFrame()
     model = _classifier(n_models, random_state)
-    model.fit(table.X, table.y, sample_weight=table.weight, groups=formula_groups(table.formulas))
+    model.fit(table.X, table.y, sample_weight=table.weight, groups=groups)
     return model, cv
 
 
@@ -265,7 +288,8 @@ def train(
         )
     model, cv = fit_and_validate(table, n_models=n_models, random_state=random_state,
                                  progress=progress)
-    metrics = {k: float(v) for k, v in cv.loc["mean"].items() if np.isfinite(v)}
+    metrics = ({} if cv.empty else
+               {k: float(v) for k, v in cv.loc["mean"].items() if np.isfinite(v)})
     n_models_before = campaign.status().models
     version = f"model-{n_models_before + 1:03d}"
     path = campaign.path / "models" / version
