@@ -1,1 +1,11 @@
-"""prescreen.report."""
+"""The allocation report: one self-contained HTML file per campaign round.
+
+:func:`build_report` collects the content (:mod:`prescreen.report.build`) and renders
+it (:mod:`prescreen.report.render`, figures from :mod:`prescreen.report.figures`).
+"""
+
+from __future__ import annotations
+
+from prescreen.report.build import CAUTIONS, ReplayCurves, ReportData, ValidationData, build_report, collect
+
+__all__ = ["build_report", "collect", "ReportData", "ReplayCurves", "ValidationData", "CAUTIONS"]

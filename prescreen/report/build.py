@@ -1,0 +1,502 @@
+"""Collect everything the allocation report shows from a campaign into plain data.
+
+:func:`collect` reads the campaign store (status, the proposed round, its model, the
+labels), scores the candidates with :func:`prescreen.acquire.rounds.rank`, computes
+SHAP values for the proposed candidates and out-of-fold predictions for the validation
+curves, and returns a :class:`ReportData`. Rendering (figures and HTML) is in
+:mod:`prescreen.report.render` and never recomputes anything.
+
+:func:`build_report` is collect + render into one self-contained HTML file.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import json
+from dataclasses import dataclass, field
+from importlib import metadata as importlib_metadata
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+
+from prescreen.errors import CampaignError, InputError
+
+if TYPE_CHECKING:  # pragma: no cover
+    import pandas as pd
+
+    from prescreen.campaign import Campaign, CampaignStatus
+    from prescreen.explain import Explanation
+
+__all__ = [
+    "CAUTIONS",
+    "ENRICHMENT_K",
+    "GLOBAL_SHAP_ROWS",
+    "ReplayCurves",
+    "ValidationData",
+    "RoundSummary",
+    "ProposalRow",
+    "Provenance",
+    "ReportData",
+    "collect",
+    "out_of_fold",
+    "build_report",
+]
+
+#: Shortlist sizes of the enrichment table (those larger than the data are left out).
+ENRICHMENT_K: tuple[int, ...] = (5, 10, 20, 50, 100)
+#: Largest number of pool rows explained for the global SHAP plots (chosen evenly over
+#: the ranking); keeps report time small on large pools.
+GLOBAL_SHAP_ROWS: int = 200
+
+#: The cautions printed in every report.
+CAUTIONS: tuple[str, ...] = (
+    "A probability is not a topological classification. A high probability says that a "
+    "spin-orbit spillage calculation is likely to return spillage at or above the "
+    "threshold; it does not establish a band inversion or a topological phase. Confirm "
+    "every hit with topological invariants: the Z2 index from Wilson loops (hybrid "
+    "Wannier charge centres), or from parity eigenvalues at the time-reversal-invariant "
+    "momenta when the layer has inversion symmetry; a Chern number for magnetic layers.",
+    "Flags for toxic or radioactive elements defer to local safety rules: they are not a "
+    "hazard assessment. Follow your institution's rules before any synthesis or handling.",
+    "Probabilities are calibrated on the training data. Candidates unlike anything in it "
+    "(other elements, other structure types) carry larger errors than the ensemble "
+    "spread suggests.",
+)
+
+
+@dataclass(frozen=True)
+class ReplayCurves:
+    """Discovery curves of a retrospective replay, as :func:`prescreen.acquire.replay.replay` gives.
+
+    Attributes
+    ----------
+    curves : DataFrame
+        Concatenated replay tables (columns :data:`prescreen.acquire.replay.CURVE_COLUMNS`).
+    y : ndarray of {0, 1}, shape (N,)
+        Labels of the replayed pool.
+    cost : ndarray, shape (N,)
+        Recorded core-hours of the replayed pool.
+    """
+
+    curves: Any
+    y: np.ndarray
+    cost: np.ndarray
+
+
+@dataclass(frozen=True)
+class ValidationData:
+    """Grouped cross-validation of the model recipe.
+
+    Attributes
+    ----------
+    y : ndarray of {0, 1}, shape (n,)
+        Training labels.
+    p_oof : ndarray, shape (n,)
+        Out-of-fold calibrated probability of each row (predicted by a model that did
+        not see the row's chemistry group).
+    cv_table : DataFrame
+        Metrics per fold plus ``mean``, ``std`` and ``pooled`` rows
+        (:func:`prescreen.validation.cross_validate`).
+    """
+
+    y: np.ndarray
+    p_oof: np.ndarray
+    cv_table: Any
+
+    def enrichment(self) -> pd.DataFrame:
+        """Hits in the top ``k`` of the out-of-fold ranking against random, per ``k``.
+
+        Returns
+        -------
+        DataFrame
+            Columns ``k``, ``hits`` (in the top k), ``random_hits`` (k times the base
+            rate), ``enrichment`` (:func:`prescreen.validation.enrichment_factor`).
+        """
+        import pandas as pd
+
+        from prescreen.validation import enrichment_factor
+
+        n, rate = len(self.y), float(np.mean(self.y)) if len(self.y) else float("nan")
+        order = np.argsort(-self.p_oof, kind="stable")
+        rows = []
+        for k in [k for k in ENRICHMENT_K if k <= n] or ([n] if n else []):
+            rows.append({"k": k, "hits": int(np.asarray(self.y)[order[:k]].sum()),
+                         "random_hits": k * rate,
+                         "enrichment": enrichment_factor(self.y, self.p_oof, k)})
+        return pd.DataFrame(rows, columns=["k", "hits", "random_hits", "enrichment"])
+
+
+@dataclass(frozen=True)
+class RoundSummary:
+    """A proposed round and what random selection from the same pool would give.
+
+    Attributes
+    ----------
+    number, strategy, seed, model
+        As recorded in ``rounds/round-NNN/round.json``.
+    budget_core_hours, total_cost_core_hours : float
+        Budget and predicted cost of the batch (core-hours).
+    expected_hits : float
+        Sum of the picks' calibrated probabilities.
+    expected_hits_interval : (float, float)
+        Interval of the number of hits at ``interval_level`` (``interval_method``).
+    n_picks, pool_size : int
+        Candidates picked, and candidates that could have been picked.
+    pool_base_rate : float
+        Mean calibrated probability over the pool: the expected hit rate of a random pick.
+    random_expected_hits : float
+        ``pool_base_rate * n_picks``.
+    hits_per_core_hour, random_hits_per_core_hour : float
+        Expected hits over predicted core-hours, for the batch and for random picks
+        (sum of p over sum of cost, over the pool).
+    """
+
+    number: int
+    strategy: str
+    seed: int | None
+    model: str
+    budget_core_hours: float
+    total_cost_core_hours: float
+    expected_hits: float
+    expected_hits_interval: tuple[float, float]
+    interval_level: float
+    interval_method: str
+    n_picks: int
+    pool_size: int
+    pool_base_rate: float
+    random_expected_hits: float
+    hits_per_core_hour: float
+    random_hits_per_core_hour: float
+
+
+@dataclass(frozen=True)
+class ProposalRow:
+    """One proposed candidate as stored, with its predicted cost interval and flags."""
+
+    rank: int
+    id: str
+    formula: str
+    probability: float
+    uncertainty: float
+    cost_core_hours: float
+    cost_low: float
+    cost_high: float
+    flags: str
+    reason: str
+    status: str
+
+
+@dataclass(frozen=True)
+class Provenance:
+    """One ingredient of the results and its licence."""
+
+    item: str
+    licence: str
+    note: str
+
+
+@dataclass(frozen=True)
+class ReportData:
+    """Everything the report shows; built by :func:`collect`."""
+
+    campaign_name: str
+    campaign_path: str
+    generated_at: str
+    prescreen_version: str
+    status: CampaignStatus
+    threshold: float
+    labelled_base_rate: float
+    round: RoundSummary
+    proposals: tuple[ProposalRow, ...]
+    explanation: Explanation  # rows: the proposed candidates, in rank order
+    global_explanation: Explanation  # rows: a sample of the pool
+    validation: ValidationData | None
+    spent_core_hours: float
+    n_costed_results: int
+    cost_model: dict[str, Any]
+    provenance: tuple[Provenance, ...]
+    cautions: tuple[str, ...] = CAUTIONS
+    replay: ReplayCurves | None = None
+    notes: tuple[str, ...] = field(default_factory=tuple)
+
+
+# ------------------------------------------------------------------------------ helpers
+def _round_record(campaign: Campaign, round_number: int | None) -> dict[str, Any]:
+    proposals = campaign.proposals()
+    if proposals.empty:
+        raise CampaignError(f"{campaign.path}: no round has been proposed yet; run a proposal first")
+    rounds = sorted(int(r) for r in proposals["round"].unique())
+    number = rounds[-1] if round_number is None else int(round_number)
+    if number not in rounds:
+        raise InputError("no such round in the campaign", path=campaign.path, value=round_number,
+                         expected=f"one of {rounds}")
+    path = campaign.path / "rounds" / f"round-{number:03d}" / "round.json"
+    if not path.is_file():
+        raise CampaignError(f"{path}: the round record is missing")
+    try:
+        return json.loads(path.read_text())
+    except json.JSONDecodeError as exc:
+        raise InputError("round record is not valid JSON", path=path, line=exc.lineno,
+                         expected="the file written by propose") from exc
+
+
+def _round_model(campaign: Campaign, version: str):
+    """The model a round was proposed with (by version), else the latest one."""
+    from prescreen.acquire.rounds import DEFAULT_MODEL_DIR, load_model
+    from prescreen.featurise import schema_version
+    from prescreen.model import SpillageClassifier
+
+    folder = DEFAULT_MODEL_DIR if version == "default" else campaign.path / "models" / version
+    if (folder / "metadata.json").is_file():
+        return SpillageClassifier.load(folder, expected_schema=schema_version()), folder
+    model, _ = load_model(campaign)
+    return model, None
+
+
+def out_of_fold(model: Any, X: Any, y: np.ndarray, formulas: list[str], *, n_splits: int = 5,
+                random_state: int = 0) -> np.ndarray:
+    """Out-of-fold probabilities of a fresh copy of ``model`` under grouped folds.
+
+    Parameters
+    ----------
+    model
+        An estimator (cloned per fold with :func:`sklearn.base.clone`).
+    X : DataFrame, shape (n, d)
+    y : ndarray of {0, 1}, shape (n,)
+    formulas : list of str, length n
+        Chemistry groups, as in :func:`prescreen.validation.grouped_folds`.
+
+    Returns
+    -------
+    ndarray, shape (n,)
+        Each row's probability from the fold model that did not see its group.
+    """
+    from sklearn.base import clone
+
+    from prescreen.validation import formula_groups, grouped_folds
+
+    y = np.asarray(y)
+    groups = formula_groups(formulas)
+    p = np.full(len(y), np.nan)
+    for tr, te in grouped_folds(formulas, n_splits=n_splits, y=y, random_state=random_state):
+        fold = clone(model)
+        fold.fit(X.iloc[tr], y[tr], groups=groups[tr])
+        p[te] = fold.predict_proba(X.iloc[te])[:, 1]
+    return p
+
+
+def _validation(campaign: Campaign, model: Any, model_dir: Path | None,
+                use_open: bool | None, progress: bool) -> tuple[ValidationData | None, str]:
+    import pandas as pd
+
+    from prescreen.acquire.rounds import training_table
+
+    record = campaign.latest_model()
+    if use_open is None:  # the model was trained with the open data iff it saw more rows
+        use_open = record is None or int(record["training_rows"] or 0) != campaign.status().labelled
+    try:
+        table = training_table(campaign, use_open=use_open, progress=progress)
+    except CampaignError as exc:
+        return None, f"validation left out: {exc}"
+    if len(set(table.y)) < 2:
+        return None, "validation left out: the training data has one class only"
+    cv_path = None if model_dir is None else model_dir / "grouped_cv.csv"
+    cv_table = pd.read_csv(cv_path, index_col=0) if cv_path and cv_path.is_file() else None
+    if cv_table is None:
+        from prescreen.validation import cross_validate
+        from sklearn.base import clone
+
+        cv_table = cross_validate(lambda: clone(model), table.X, table.y, table.formulas,
+                                  progress=progress, random_state=0, label="grouped CV")
+    p = out_of_fold(model, table.X, table.y, table.formulas)
+    return ValidationData(y=np.asarray(table.y), p_oof=p, cv_table=cv_table), ""
+
+
+def _provenance(campaign: Campaign, used_open: bool) -> tuple[Provenance, ...]:
+    def version(name: str) -> str:
+        try:
+            return importlib_metadata.version(name)
+        except importlib_metadata.PackageNotFoundError:
+            return "not installed"
+
+    items = []
+    if used_open:
+        items.append(Provenance(
+            "data_open/ (labelled monolayers shipped with prescreen)", "CC-BY-4.0",
+            "Creative Commons Attribution 4.0 International; structures generated and "
+            "labelled by the prescreen project, no external materials database."))
+    labels = campaign.labels()
+    codes = sorted({str(c) for c in labels["code"].dropna()}) if len(labels) else []
+    items.append(Provenance(
+        f"Campaign results ({len(labels)} DFT labels in {campaign.path.name})", "yours",
+        "codes recorded: " + (", ".join(codes) if codes else "none recorded")))
+    items.append(Provenance(
+        "Magpie element property tables (from matminer " + version("matminer") + ")",
+        "BSD (modified BSD licence of matminer)",
+        "L. Ward et al., npj Comput. Mater. 2, 16028 (2016); only the element tables are used."))
+    items.append(Provenance(
+        "Valence spin-orbit splittings (prescreen/data)", "BSD-3-Clause (prescreen)",
+        "computed by the project with Quantum ESPRESSO ld1.x (GPL-2.0)."))
+    if used_open or any("gpaw" in c.lower() for c in codes):
+        items.append(Provenance(
+            "GPAW " + version("gpaw").replace("not installed", "(labels of data_open/)"),
+            "GPL-3.0-or-later", "DFT code of the spillage labels (results only; not linked)."))
+    for name, lic in (("lightgbm", "MIT"), ("shap", "MIT"), ("scikit-learn", "BSD-3-Clause"),
+                      ("pymatgen", "MIT"), ("ase", "LGPL-2.1-or-later"), ("spglib", "BSD-3-Clause"),
+                      ("matplotlib", "matplotlib licence (PSF-style)"), ("jinja2", "BSD-3-Clause")):
+        items.append(Provenance(f"{name} {version(name)}", lic, "software"))
+    return tuple(items)
+
+
+def _pool_mask(ranked: pd.DataFrame, pending: set[str], picked: set[str]) -> np.ndarray:
+    """Candidates that could be picked in the round: as in propose, plus the picks."""
+    from prescreen.acquire.rounds import PROPOSABLE_STATUSES
+
+    free = ranked["spillage"].isna() & ~ranked.index.isin(pending - picked)
+    ok = (ranked["layer_status"].isin(PROPOSABLE_STATUSES) & ranked["duplicate_of"].isna()
+          & ranked["cost_core_hours"].notna() & free)
+    return (ok | ranked.index.isin(picked)).to_numpy()
+
+
+def _even_sample(n: int, k: int) -> np.ndarray:
+    return np.unique(np.linspace(0, n - 1, num=min(n, k)).round().astype(int)) if n else np.zeros(0, int)
+
+
+# ------------------------------------------------------------------------------ collect
+def collect(
+    campaign: Campaign,
+    *,
+    round_number: int | None = None,
+    replay_curves: ReplayCurves | None = None,
+    validation: ValidationData | None = None,
+    use_open: bool | None = None,
+    progress: bool = False,
+) -> ReportData:
+    """Gather the report's content for one round of a campaign.
+
+    Parameters
+    ----------
+    campaign
+        An open campaign with at least one proposed round.
+    round_number
+        The round to report (default: the latest).
+    replay_curves
+        Discovery curves of a replay, shown when given.
+    validation
+        Precomputed validation (else recomputed: grouped out-of-fold predictions of the
+        model's recipe on its training table).
+    use_open
+        Whether the model's training table includes ``data_open/`` (default: inferred
+        from the recorded number of training rows).
+    progress
+        Show progress bars.
+
+    Returns
+    -------
+    ReportData
+    """
+    from prescreen import __version__
+    from prescreen.acquire.rounds import _feature_columns, candidate_features, rank
+    from prescreen.explain import explain
+
+    rec = _round_record(campaign, round_number)
+    number = int(rec["round"])
+    stored = campaign.proposals(number)
+    model, model_dir = _round_model(campaign, str(rec.get("model", "")))
+    ranked = rank(campaign, progress=progress)
+    feats = _feature_columns(candidate_features(campaign, progress=progress))
+    ids = list(stored["candidate_id"])
+    rows = []
+    for r in stored.itertuples():
+        info = ranked.loc[r.candidate_id]
+        rows.append(ProposalRow(
+            rank=int(r.rank), id=str(r.candidate_id), formula=str(info["formula"]),
+            probability=float(r.probability), uncertainty=float(r.uncertainty),
+            cost_core_hours=float(r.cost_core_hours), cost_low=float(info["cost_low"]),
+            cost_high=float(info["cost_high"]), flags=str(info["flags"] or ""),
+            reason=str(r.reason or ""), status=str(r.status)))
+    picked = set(ids)
+    pool = ranked[_pool_mask(ranked, set(campaign.pending_ids()), picked)]
+    base_rate = float(pool["probability"].mean())
+    total = float(rec["total_cost_core_hours"])
+    summary = RoundSummary(
+        number=number, strategy=str(rec["strategy"]), seed=rec.get("seed"),
+        model=str(rec.get("model", "")), budget_core_hours=float(rec["budget_core_hours"]),
+        total_cost_core_hours=total, expected_hits=float(rec["expected_hits"]),
+        expected_hits_interval=(float(rec["expected_hits_interval"][0]),
+                                float(rec["expected_hits_interval"][1])),
+        interval_level=float(rec.get("interval_level", float("nan"))),
+        interval_method=str(rec.get("interval_method", "")),
+        n_picks=len(ids), pool_size=len(pool), pool_base_rate=base_rate,
+        random_expected_hits=base_rate * len(ids),
+        hits_per_core_hour=float(rec["expected_hits"]) / total if total > 0 else float("nan"),
+        random_hits_per_core_hour=float(pool["probability"].sum() / pool["cost_core_hours"].sum()),
+    )
+    explanation = explain(model, feats.loc[ids])
+    sample = pool.index[_even_sample(len(pool), GLOBAL_SHAP_ROWS)]
+    global_explanation = explain(model, feats.loc[sample])
+    notes = []
+    if validation is None:
+        validation, note = _validation(campaign, model, model_dir, use_open, progress)
+        if note:
+            notes.append(note)
+    status = campaign.status()
+    labels = campaign.labels()
+    costs = labels["core_hours"].dropna() if len(labels) else labels.get("core_hours", [])
+    cost_path = campaign.path / "cost_model.json"
+    from prescreen.acquire.cost import CostModel
+
+    cost_model = (CostModel.load(cost_path) if cost_path.is_file() else CostModel()).as_dict()
+    cost_model["source"] = str(cost_path) if cost_path.is_file() else "built-in default"
+    used_open = bool(use_open) if use_open is not None else (
+        validation is not None and len(validation.y) != status.labelled)
+    return ReportData(
+        campaign_name=campaign.name, campaign_path=str(campaign.path),
+        generated_at=_dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+        prescreen_version=__version__, status=status, threshold=campaign.threshold,
+        labelled_base_rate=status.positives / status.labelled if status.labelled else float("nan"),
+        round=summary, proposals=tuple(rows), explanation=explanation,
+        global_explanation=global_explanation, validation=validation,
+        spent_core_hours=float(np.sum(costs)) if len(costs) else 0.0,
+        n_costed_results=int(len(costs)), cost_model=cost_model,
+        provenance=_provenance(campaign, used_open), replay=replay_curves, notes=tuple(notes),
+    )
+
+
+def build_report(
+    campaign: Campaign,
+    *,
+    out_path: str | Path,
+    round_number: int | None = None,
+    replay_curves: ReplayCurves | None = None,
+    validation: ValidationData | None = None,
+    use_open: bool | None = None,
+    progress: bool = False,
+) -> Path:
+    """Write the allocation report of a campaign round as one self-contained HTML file.
+
+    Parameters
+    ----------
+    campaign
+        An open campaign with at least one proposed round.
+    out_path
+        Where to write the HTML file (folders are created).
+    round_number, replay_curves, validation, use_open, progress
+        See :func:`collect`.
+
+    Returns
+    -------
+    Path
+        ``out_path``.
+    """
+    from prescreen.report.render import render_html
+
+    data = collect(campaign, round_number=round_number, replay_curves=replay_curves,
+                   validation=validation, use_open=use_open, progress=progress)
+    out = Path(out_path)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    tmp = out.with_name(out.name + ".tmp")
+    tmp.write_text(render_html(data), encoding="utf-8")
+    tmp.replace(out)
+    return out
