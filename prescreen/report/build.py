@@ -21,6 +21,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from prescreen.errors import CampaignError, InputError
+from prescreen.hazards import SAFETY_NOTE
 
 if TYPE_CHECKING:  # pragma: no cover
     import pandas as pd
@@ -57,8 +58,7 @@ CAUTIONS: tuple[str, ...] = (
     "every hit with topological invariants: the Z2 index from Wilson loops (hybrid "
     "Wannier charge centres), or from parity eigenvalues at the time-reversal-invariant "
     "momenta when the layer has inversion symmetry; a Chern number for magnetic layers.",
-    "Flags for toxic or radioactive elements defer to local safety rules: they are not a "
-    "hazard assessment. Follow your institution's rules before any synthesis or handling.",
+    "Flags for toxic or radioactive elements defer to local safety rules. " + SAFETY_NOTE,
     "Probabilities are calibrated on the training data. Candidates unlike anything in it "
     "(other elements, other structure types) carry larger errors than the ensemble "
     "spread suggests.",
