@@ -1,0 +1,226 @@
+"""The allocation report: every figure is there and its numbers are the store's.
+
+The campaign is built from real monolayer structures (ASE's ``mx2`` builder, 2H and 1T
+transition-metal dichalcogenides). Their spillage labels are *synthetic* test data drawn
+from a seeded generator (heavier chemistry more often above the threshold, with 15 %
+label noise, in the spirit of ``sklearn.datasets.make_classification``): they are not
+physical values and no test compares against them — the tests check structure and that
+the report repeats what the campaign store holds.
+"""
+
+from __future__ import annotations
+
+import base64
+import json
+import re
+from html.parser import HTMLParser
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from prescreen.campaign import Campaign
+from prescreen.errors import CampaignError, InputError
+from prescreen.hazards import SAFETY_NOTE
+from prescreen.report import CAUTIONS, ReplayCurves, build_report, collect
+from prescreen.report.render import FIGURE_IDS
+
+METALS = ("Mo", "W", "Cr", "Ti", "Zr", "Hf", "Nb", "Ta", "V", "Pt", "Pd", "Ni")
+CHALCOGENS = ("S", "Se", "Te")
+#: Synthetic rule for the test labels only (see module docstring).
+HEAVY = {"W", "Hf", "Ta", "Pt", "Te"}
+PNG_MAGIC = b"\x89PNG\r\n\x1a\n"
+
+
+def build_small_campaign(path: Path, *, seed: int = 0):
+    """A 72-candidate campaign with 54 synthetic labels, a tiny model and one round.
+
+    Returns
+    -------
+    (Campaign, ProposedRound, TrainedModel)
+    """
+    from ase.build import mx2
+    from pymatgen.io.ase import AseAtomsAdaptor
+
+    from prescreen.acquire.rounds import propose, rank, train
+    from prescreen.candidate import Candidate
+    from prescreen.io.results import ResultRow
+
+    camp = Campaign.create(path, name="report test")
+    cands = []
+    for m in METALS:
+        for x in CHALCOGENS:
+            for phase in ("2H", "1T"):
+                atoms = mx2(f"{m}{x}2", phase, a=3.2, thickness=3.2, vacuum=9.0)
+                cands.append(Candidate(f"{m}{x}2-{phase}", f"{m}{x}2", "ase.build.mx2",
+                                       AseAtomsAdaptor.get_structure(atoms)))
+    camp.add_candidates(cands)
+    rng = np.random.default_rng(seed)
+    rows = []
+    for i, cand in enumerate(cands[::2] + cands[1::4]):
+        metal = re.match(r"[A-Z][a-z]?", cand.formula).group(0)
+        hit = (metal in HEAVY or "Te" in cand.formula) ^ bool(rng.random() < 0.15)
+        spill = rng.uniform(0.55, 1.0) if hit else rng.uniform(0.0, 0.45)
+        rows.append(ResultRow(id=cand.id, spillage=float(spill), code="GPAW", functional="PBE",
+                              core_hours=float(rng.uniform(5, 20)), source=f"synthetic.csv:{i + 2}"))
+    camp.ingest_results((rows, []))
+    trained = train(camp, use_open=False, n_models=2, progress=False)
+    ranked = rank(camp, progress=False)
+    budget = 4 * float(np.nanmedian(ranked["cost_core_hours"]))
+    proposed = propose(camp, budget_core_hours=budget, ranking=ranked, progress=False)
+    return camp, proposed, trained
+
+
+def small_replay(camp: Campaign) -> ReplayCurves:
+    """A real two-round replay of random selection on the campaign's labelled rows."""
+    from prescreen.acquire.replay import replay
+    from prescreen.acquire.rounds import training_table
+    from prescreen.acquire.strategies import random_selection
+    from prescreen.model import SpillageClassifier
+
+    table = training_table(camp, use_open=False, progress=False)
+    cost = camp.labels().loc[table.X.index, "core_hours"].to_numpy(float)
+    curves = replay(table.X, table.y, cost, table.formulas, random_selection,
+                    lambda s: SpillageClassifier(n_models=1, n_estimators=10, min_child_samples=3,
+                                                 random_state=s),
+                    n_initial=10, batch_budget=40.0, n_rounds=2, seeds=(0, 1), progress=False)
+    return ReplayCurves(curves=curves, y=table.y, cost=cost)
+
+
+class _Collector(HTMLParser):
+    """Every start tag with its attributes, and the visible text."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.tags: list[tuple[str, dict[str, str]]] = []
+        self.text: list[str] = []
+
+    def handle_starttag(self, tag, attrs):
+        self.tags.append((tag, {k: v or "" for k, v in attrs}))
+
+    def handle_data(self, data):
+        self.text.append(data)
+
+
+def parse(html: str) -> _Collector:
+    c = _Collector()
+    c.feed(html)
+    return c
+
+
+@pytest.fixture(scope="module")
+def built(tmp_path_factory):
+    root = tmp_path_factory.mktemp("report")
+    camp, proposed, trained = build_small_campaign(root / "camp")
+    curves = small_replay(camp)
+    out = build_report(camp, out_path=root / "out" / "report.html", replay_curves=curves)
+    yield {"campaign": camp, "proposed": proposed, "trained": trained, "path": out,
+           "html": out.read_text(encoding="utf-8")}
+    camp.close()
+
+
+def test_every_figure_is_embedded_as_png(built):
+    doc = parse(built["html"])
+    imgs = {a["id"]: a["src"] for t, a in doc.tags if t == "img"}
+    ids = [*FIGURE_IDS, "fig-roc", "fig-pr", "fig-calibration", "fig-discovery"]
+    ids += [f"fig-waterfall-{cid}" for cid in built["proposed"].table.index]
+    assert sorted(imgs) == sorted(ids)
+    for fid, src in imgs.items():
+        head, _, payload = src.partition(",")
+        assert head == "data:image/png;base64", fid
+        png = base64.b64decode(payload)
+        assert png.startswith(PNG_MAGIC) and len(png) > 5000, fid
+
+
+def test_proposal_numbers_equal_the_store(built):
+    camp, proposed = built["campaign"], built["proposed"]
+    stored = camp.proposals(proposed.number).set_index("candidate_id")
+    doc = parse(built["html"])
+    rows = [a["data-id"] for t, a in doc.tags if t == "tr" and "data-id" in a]
+    assert rows == list(stored.index)  # same candidates, in rank order
+    cells = [a for t, a in doc.tags if t == "td" and "data-field" in a]
+    assert len(cells) == 3 * len(stored)
+    for cid, cell in zip(np.repeat(rows, 3), cells):
+        assert float(cell["data-value"]) == stored.loc[cid, cell["data-field"]]
+
+
+def test_summary_numbers_equal_the_round(built):
+    proposed, camp = built["proposed"], built["campaign"]
+    doc = parse(built["html"])
+    by_id = {a["id"]: a for t, a in doc.tags if "id" in a}
+    assert float(by_id["expected-hits"]["data-value"]) == proposed.expected_hits
+    interval = by_id["expected-hits-interval"]
+    assert (float(interval["data-low"]), float(interval["data-high"])) == proposed.expected_hits_interval
+    assert int(by_id["n-picks"]["data-value"]) == len(proposed.table)
+    record = json.loads((proposed.folder / "round.json").read_text())
+    assert float(by_id["expected-hits"]["data-value"]) == record["expected_hits"]
+    status = camp.status().as_dict()
+    counts = {a["data-key"]: int(a["data-value"]) for t, a in doc.tags if "data-key" in a}
+    assert counts and all(counts[k] == status[k] for k in counts)
+    spent = float(by_id["spent"]["data-value"])
+    assert spent == pytest.approx(camp.labels()["core_hours"].sum())
+
+
+@pytest.fixture(scope="module")
+def collected(built):
+    return collect(built["campaign"], use_open=False)
+
+
+def test_random_baseline_is_pool_rate_times_picks(collected):
+    data = collected
+    r = data.round
+    assert r.random_expected_hits == pytest.approx(r.pool_base_rate * r.n_picks)
+    # every pick is in the pool, the pool holds no labelled candidate
+    assert r.pool_size >= r.n_picks
+    assert r.pool_size <= data.status.candidates - data.status.labelled
+    assert r.hits_per_core_hour == pytest.approx(r.expected_hits / r.total_cost_core_hours)
+
+
+def test_cv_table_shows_the_trained_models_metrics(built):
+    cv = built["trained"].cv_table
+    text = "".join(parse(built["html"]).text)
+    assert f"{cv.loc['mean', 'roc_auc']:.3f}" in text
+    assert f"{cv.loc['pooled', 'pr_auc']:.3f}" in text
+
+
+def test_cautions_and_scale_are_stated(built):
+    text = " ".join(parse(built["html"]).text)
+    for caution in CAUTIONS:
+        assert caution in text
+    assert "not a topological classification" in text
+    assert "Z2" in text and "Wilson loops" in text
+    assert SAFETY_NOTE in text
+    assert "log-odds" in text and "1 / (1 + exp(" in text
+
+
+def test_provenance_lists_licences(built):
+    text = " ".join(parse(built["html"]).text)
+    assert "Magpie" in text and "BSD" in text
+    assert "GPAW" in text and "GPL-3.0" in text  # the synthetic results name GPAW as code
+    assert "CC-BY-4.0" not in text  # the model was trained without data_open
+
+
+def test_open_data_provenance_when_used(built, collected):
+    base = collected
+    with_open = collect(built["campaign"], use_open=True, validation=base.validation)
+    licences = {p.licence for p in with_open.provenance}
+    assert "CC-BY-4.0" in licences
+    assert "CC-BY-4.0" not in {p.licence for p in base.provenance}
+
+
+def test_self_contained_no_external_urls_no_script(built):
+    html = built["html"]
+    assert not re.search(r"(?i)\b(?:https?|ftp)://", html)
+    assert not re.search(r"""(?i)(?:src|href)\s*=\s*["']//""", html)
+    assert "<script" not in html.lower()
+    assert "<link" not in html.lower()
+
+
+def test_unknown_round_and_no_round(built, tmp_path):
+    with pytest.raises(InputError, match="no such round"):
+        build_report(built["campaign"], round_number=99, out_path=tmp_path / "r.html")
+    empty = Campaign.create(tmp_path / "empty")
+    with pytest.raises(CampaignError, match="no round"):
+        build_report(empty, out_path=tmp_path / "r.html")
+    empty.close()
+    assert not (tmp_path / "r.html").exists()
