@@ -1,10 +1,14 @@
 """The demo behind ``make demo``: the main job on the shipped data.
 
 Scenario (invented): the Ferngrove Layered Matter Group holds a mixed list of candidate
-monolayers and an allocation of core-hours, and asks which to compute first. The demo
-builds their campaign from ``examples/ferngrove/``, ingests the spillage results they
+monolayers and an allocation of core-hours, and asks which to compute first. Their list
+is the hand-made files in ``examples/ferngrove/`` plus a structure search a colleague
+ran (here: :data:`SEARCH_SIZE` unlabelled monolayers drawn from the open pool in
+``data_open/``). The demo builds their campaign, ingests the spillage results they
 already have, trains the classifier on the open dataset plus those results, ranks every
-candidate, proposes the next batch under this round's budget, and writes the report.
+candidate, proposes the next batch under this round's budget with the group's own cost
+model (``examples/ferngrove/cost_model.json``: a plane-wave code on their cluster), and
+writes the report.
 
 Run: ``python -m prescreen.demo --out demo_out`` (the output folder is rebuilt each run).
 """
@@ -22,7 +26,38 @@ __all__ = ["main", "run_demo", "ROUND_BUDGET_CORE_HOURS"]
 
 EXAMPLES = Path("examples") / "ferngrove"
 #: The invented group's budget for this round, core-hours.
-ROUND_BUDGET_CORE_HOURS = 12.0
+ROUND_BUDGET_CORE_HOURS = 60.0
+#: Candidates drawn from the open pool as the colleague's structure search.
+SEARCH_SIZE = 1500
+#: Seed of that draw.
+SEARCH_SEED = 7
+
+
+def write_search_dump(path: Path, n: int = SEARCH_SIZE, seed: int = SEARCH_SEED) -> int:
+    """Write ``n`` unlabelled open-pool monolayers as one extended XYZ file; returns n."""
+    import numpy as np
+    import pandas as pd
+    from ase.io import write
+    from pymatgen.io.ase import AseAtomsAdaptor
+
+    from prescreen.acquire.rounds import data_open_dir
+    from prescreen.prototypes import structure_from_row
+
+    folder = data_open_dir()
+    pool = pd.read_parquet(folder / "pool.parquet")
+    labelled = folder / "labelled.parquet"
+    if labelled.is_file():
+        pool = pool[~pool["id"].isin(pd.read_parquet(labelled, columns=["id"])["id"])]
+    rng = np.random.default_rng(seed)
+    pick = pool.iloc[np.sort(rng.choice(len(pool), size=min(n, len(pool)), replace=False))]
+    frames = []
+    for row in pick.to_dict("records"):
+        atoms = AseAtomsAdaptor.get_atoms(structure_from_row(row))
+        atoms.info["id"] = "fgs-" + row["id"].split("-", 1)[1]
+        frames.append(atoms)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    write(path, frames, format="extxyz")
+    return len(frames)
 
 
 def _step(text: str) -> None:
@@ -47,8 +82,11 @@ def run_demo(out: Path, inputs: Path = EXAMPLES, *, progress: bool = True) -> di
     campaign_dir = out / "campaign"
     written: dict[str, Path] = {"campaign": campaign_dir}
     with Campaign.create(campaign_dir, name="ferngrove-winter-screen") as campaign:
-        _step(f"reading candidates from {inputs}")
-        sources = [p for p in sorted(inputs.iterdir()) if p.name != "results.csv"]
+        search = out / "inputs" / "colleague_search.extxyz"
+        n_search = write_search_dump(search)
+        _step(f"reading candidates from {inputs} and {search} ({n_search} structures)")
+        sources = [p for p in sorted(inputs.iterdir())
+                   if p.name not in ("results.csv", "cost_model.json")] + [search]
         report = campaign.add_candidates(iter_candidates(sources), progress=progress)
         print(f"read {report.added} candidates; layer check: {report.layer_counts}; "
               f"duplicates: {report.duplicates}")
@@ -60,6 +98,9 @@ def run_demo(out: Path, inputs: Path = EXAMPLES, *, progress: bool = True) -> di
             ing = campaign.ingest_results(read_results(results))
             print(f"ingested {ing.added} results")
             print_rejections(ing.rejections, stream=sys.stdout)
+
+        if (inputs / "cost_model.json").is_file():
+            shutil.copy(inputs / "cost_model.json", campaign_dir / "cost_model.json")
 
         _step("training on data_open/ plus the group's results (grouped validation)")
         trained = rounds.train(campaign, progress=progress)

@@ -7,7 +7,16 @@ ASE database, and a spreadsheet of formulas nobody has built structures for yet.
 entries are deliberately bad (a bulk crystal, a repeated structure, an unknown element)
 so that the demo shows the checks at work.
 
-Run: ``python scripts/make_demo_inputs.py`` (deterministic; rewrites the folder).
+Run: ``python scripts/make_demo_inputs.py`` (deterministic; rewrites the input files).
+
+``examples/ferngrove/results.csv`` holds the group's "earlier" results. They are real
+calculations, made with prescreen's own labeller at the input geometries::
+
+    prescreen create /tmp/fg examples/ferngrove
+    prescreen label /tmp/fg fg-hc-001 fg-hc-002 fg-hc-003 fg-hc-004 fg-hc-005 fg-hc-006 \
+        fg-flat-001 fg-flat-002 fg-tmd-001 fg-tmd-003 fg-db-001
+
+and copied from ``/tmp/fg/labels/records.jsonl``; this script leaves that file alone.
 """
 
 from __future__ import annotations
@@ -37,10 +46,10 @@ def buckled_honeycomb(symbols: str, a: float, buckle: float) -> Atoms:
 
 
 def main() -> None:
-    if OUT.exists():
-        shutil.rmtree(OUT)
-    (OUT / "cif").mkdir(parents=True)
-    (OUT / "poscar").mkdir()
+    for sub in ("cif", "poscar"):
+        if (OUT / sub).exists():
+            shutil.rmtree(OUT / sub)
+        (OUT / sub).mkdir(parents=True)
     # Student A: transition-metal dichalcogenides as CIF files.
     tmds = {"fg-tmd-001": ("MoS2", "2H", 3.18, 3.13), "fg-tmd-002": ("WSe2", "2H", 3.32, 3.36),
             "fg-tmd-003": ("PtSe2", "1T", 3.75, 2.53), "fg-tmd-004": ("MoTe2", "2H", 3.55, 3.60),

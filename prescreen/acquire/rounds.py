@@ -48,6 +48,8 @@ __all__ = [
     "rank",
     "propose",
     "strategy_by_name",
+    "cost_model",
+    "cost_records",
     "LabelOutcome",
     "label_pending",
 ]
@@ -321,11 +323,58 @@ def load_model(campaign: Campaign | None = None) -> tuple[SpillageClassifier, st
     return SpillageClassifier.load(DEFAULT_MODEL_DIR, expected_schema=schema_version()), "default"
 
 
-def _cost_model(campaign: Campaign):
+#: Fewest recorded wall times the cost model is fitted to; below it the default shape
+#: with its placeholder scale is used (see prescreen.acquire.cost).
+MIN_COST_RECORDS = 5
+
+
+def cost_records(campaign: Campaign, *, data_open: str | Path | None = None) -> pd.DataFrame:
+    """Recorded core-hours with the cost descriptors of their structures.
+
+    Rows come from the campaign's results that carry ``core_hours`` and a structure,
+    and from the open dataset's labeller records.
+    """
+    import pandas as pd
+
+    from prescreen.acquire.cost import descriptors_for_structure
+
+    rows = []
+    labels = campaign.labels()
+    for cid, hours in labels["core_hours"].dropna().items():
+        structure = campaign.structure(cid)
+        if structure is not None and hours > 0:
+            rows.append({**descriptors_for_structure(structure), "core_hours": float(hours),
+                         "origin": "campaign"})
+    try:
+        open_df = load_open_labelled(data_open)
+    except CampaignError:
+        open_df = None
+    if open_df is not None:
+        for structure, hours in zip(open_df["structure"], open_df["core_hours"]):
+            if hours == hours and hours > 0:
+                rows.append({**descriptors_for_structure(structure),
+                             "core_hours": float(hours), "origin": "data_open"})
+    return pd.DataFrame(rows)
+
+
+def cost_model(campaign: Campaign, *, data_open: str | Path | None = None):
+    """The campaign's cost model.
+
+    ``<campaign>/cost_model.json`` when present (your code and cluster: write it with
+    :meth:`prescreen.acquire.cost.CostModel.save`); otherwise the LCAO-shaped model fitted
+    to the wall times the built-in labeller recorded (the campaign's own and the open
+    dataset's), so predicted costs mean core-hours of the built-in labeller; with fewer
+    than :data:`MIN_COST_RECORDS` records, the unfitted default.
+    """
     from prescreen.acquire.cost import CostModel
 
     path = campaign.path / "cost_model.json"
-    return CostModel.load(path) if path.is_file() else CostModel()
+    if path.is_file():
+        return CostModel.load(path)
+    records = cost_records(campaign, data_open=data_open)
+    if len(records) >= MIN_COST_RECORDS:
+        return CostModel.for_code("lcao").fit(records)
+    return CostModel()
 
 
 def rank(campaign: Campaign, *, progress: bool = True) -> pd.DataFrame:
@@ -349,7 +398,7 @@ def rank(campaign: Campaign, *, progress: bool = True) -> pd.DataFrame:
     out = frame[["formula", "layer_status", "duplicate_of", "hazard", "spillage"]].copy()
     out["probability"] = mean
     out["uncertainty"] = std
-    cost_model = _cost_model(campaign)
+    costs = cost_model(campaign)
     rows, where = [], []
     for i, (cid, structure) in enumerate(campaign.iter_structures()):
         if structure is not None:
@@ -363,7 +412,7 @@ def rank(campaign: Campaign, *, progress: bool = True) -> pd.DataFrame:
 
         desc = pd.DataFrame(rows)
         col = out.columns.get_loc
-        mid, low, high = cost_model.predict_interval(desc)
+        mid, low, high = costs.predict_interval(desc)
         out.iloc[where, col("cost_core_hours")] = mid
         out.iloc[where, col("cost_low")] = low
         out.iloc[where, col("cost_high")] = high
