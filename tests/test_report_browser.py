@@ -98,3 +98,12 @@ def test_screenshot_shows_the_figures(report, tmp_path):
     for colour in (BLUE, VERMILLION):  # bars of the summary figure and of the waterfalls
         near = np.all(np.abs(img - colour) < 0.03, axis=-1).sum()
         assert near > 500
+
+
+def test_optional_pdf(report, tmp_path):
+    from prescreen.report import write_pdf
+
+    pdf = write_pdf(report, tmp_path / "report.pdf")
+    assert pdf is not None
+    data = pdf.read_bytes()
+    assert data.startswith(b"%PDF-") and len(data) > 50_000  # the figures are in it

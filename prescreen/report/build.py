@@ -42,6 +42,8 @@ __all__ = [
     "collect",
     "out_of_fold",
     "build_report",
+    "CHROMIUM",
+    "write_pdf",
 ]
 
 #: Shortlist sizes of the enrichment table (those larger than the data are left out).
@@ -49,6 +51,11 @@ ENRICHMENT_K: tuple[int, ...] = (5, 10, 20, 50, 100)
 #: Largest number of pool rows explained for the global SHAP plots (chosen evenly over
 #: the ranking); keeps report time small on large pools.
 GLOBAL_SHAP_ROWS: int = 200
+
+#: Debian's headless browser, used for the optional PDF (``scripts/install_browser.sh``).
+CHROMIUM = Path("/usr/bin/chromium")
+#: Seconds the PDF printout may take.
+PDF_TIMEOUT_S = 300
 
 #: The cautions printed in every report.
 CAUTIONS: tuple[str, ...] = (
@@ -499,4 +506,49 @@ def build_report(
     tmp = out.with_name(out.name + ".tmp")
     tmp.write_text(render_html(data), encoding="utf-8")
     tmp.replace(out)
+    return out
+
+
+def write_pdf(html_path: str | Path, pdf_path: str | Path | None = None) -> Path | None:
+    """Print the HTML report to PDF with headless Chromium, if it is installed.
+
+    Parameters
+    ----------
+    html_path
+        The report written by :func:`build_report`.
+    pdf_path
+        Output file (default: ``html_path`` with suffix ``.pdf``).
+
+    Returns
+    -------
+    Path or None
+        The PDF, or ``None`` when :data:`CHROMIUM` is not installed (the PDF is optional).
+
+    Raises
+    ------
+    PrescreenError
+        Chromium ran but wrote no PDF (its log is in the message).
+    """
+    import subprocess
+    import tempfile
+
+    from prescreen.errors import PrescreenError
+
+    if not CHROMIUM.is_file():
+        return None
+    html_path = Path(html_path).resolve()
+    if not html_path.is_file():
+        raise InputError("report file not found", path=html_path, expected="an HTML report")
+    out = Path(pdf_path) if pdf_path is not None else html_path.with_suffix(".pdf")
+    out.parent.mkdir(parents=True, exist_ok=True)
+    with tempfile.TemporaryDirectory(prefix="prescreen-chromium-") as profile:
+        run = subprocess.run(
+            [str(CHROMIUM), "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic",
+             "--no-first-run", "--disable-background-networking", "--disable-component-update",
+             "--disable-sync", f"--user-data-dir={profile}", "--no-pdf-header-footer",
+             f"--print-to-pdf={out.resolve()}", html_path.as_uri()],
+            capture_output=True, text=True, timeout=PDF_TIMEOUT_S, check=False,
+        )
+    if not out.is_file() or out.stat().st_size == 0:
+        raise PrescreenError(f"{CHROMIUM} wrote no PDF for {html_path}: {run.stderr[-1000:]}")
     return out

@@ -187,8 +187,10 @@ def cost_figure(rows: tuple[ProposalRow, ...], budget: float) -> Figure:
         left.set_xlabel("predicted cost (core-hours; bar: central, line: interval)")
         left.set_title("Cost per candidate")
         steps = np.arange(1, len(rows) + 1)
-        right.step(steps, np.cumsum(mid), where="mid", color=OKABE_ITO["orange"], linewidth=2,
+        right.plot(steps, np.cumsum(mid), color=OKABE_ITO["orange"], linewidth=2, marker="o",
                    label="cumulative predicted cost")
+        right.set_xticks(steps)
+        right.set_xlim(0.5, len(rows) + 0.5)
         right.axhline(budget, color=OKABE_ITO["black"], linestyle="--", linewidth=1,
                       label=f"budget {budget:.1f} core-h")
         right.set_xlabel("candidates in rank order")
