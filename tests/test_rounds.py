@@ -40,6 +40,20 @@ def _structures():
     return out
 
 
+def _new_campaign(path):
+    """A campaign with the unfitted default cost model, so costs do not depend on data_open."""
+    from prescreen.acquire.cost import CostModel
+
+    camp = Campaign.create(path, name="rounds-test")
+    CostModel().save(camp.path / "cost_model.json")
+    return camp
+
+
+def _budget(ranking, fraction):
+    """A budget covering ``fraction`` of the cost of every proposable candidate."""
+    return float(fraction * ranking["cost_core_hours"].sum())
+
+
 def _rule(structure) -> float:
     return 0.9 if max(site.specie.Z for site in structure) > HEAVY_Z else 0.05
 
@@ -48,7 +62,7 @@ def _rule(structure) -> float:
 def trained(tmp_path_factory):
     """A campaign of 60 dichalcogenides, half of them labelled by the rule, trained once."""
     path = tmp_path_factory.mktemp("round") / "camp"
-    camp = Campaign.create(path, name="rounds-test")
+    camp = _new_campaign(path)
     items = _structures()
     camp.add_candidates([Candidate(cid, f, f"gen:{i}", s) for i, (cid, f, s) in enumerate(items)]
                         + [Candidate("f-only", "Bi2Se3", "wish.csv:2")])
@@ -86,23 +100,25 @@ def test_rank_scores_every_candidate_once(trained):
 def test_propose_respects_budget_exclusions_and_seed(trained, tmp_path):
     camp, _ = trained
     ranking = rounds.rank(camp, progress=False)
-    first = rounds.propose(camp, budget_core_hours=40.0, seed=3, ranking=ranking, progress=False)
+    budget = _budget(ranking, 0.1)
+    first = rounds.propose(camp, budget_core_hours=budget, seed=3, ranking=ranking,
+                           progress=False)
     picked = list(first.table.index)
-    assert picked and first.total_cost <= 40.0
+    assert picked and first.total_cost <= budget
     labelled = set(camp.labels().index)
     assert not (set(picked) & labelled) and "f-only" not in picked
     assert sorted(os.listdir(first.folder / "cif")) == sorted(f"{c}.cif" for c in picked)
     meta = json.loads((first.folder / "round.json").read_text())
     assert meta["round"] == first.number and meta["seed"] == 3
     # Pending proposals stay out of the next batch.
-    second = rounds.propose(camp, budget_core_hours=40.0, seed=3, ranking=ranking,
+    second = rounds.propose(camp, budget_core_hours=budget, seed=3, ranking=ranking,
                             progress=False)
     assert not set(second.table.index) & set(picked)
 
 
 def test_same_seed_same_proposal_bit_for_bit(tmp_path):
     def run() -> pd.DataFrame:
-        camp = Campaign.create(tmp_path / f"c{time.perf_counter_ns()}")
+        camp = _new_campaign(tmp_path / f"c{time.perf_counter_ns()}")
         items = _structures()
         camp.add_candidates([Candidate(c, f, "gen", s) for c, f, s in items])
         camp.ingest_results(([ResultRow(id=c, spillage=_rule(s), functional=None, code=None,
@@ -110,7 +126,8 @@ def test_same_seed_same_proposal_bit_for_bit(tmp_path):
                                          source=f"r:{i}")
                               for i, (c, _, s) in enumerate(items[::2])], []))
         rounds.train(camp, use_open=False, n_models=2, progress=False)
-        table = rounds.propose(camp, budget_core_hours=30.0, strategy="thompson_sampling",
+        budget = _budget(rounds.rank(camp, progress=False), 0.2)
+        table = rounds.propose(camp, budget_core_hours=budget, strategy="thompson_sampling",
                                seed=11, progress=False).table
         camp.close()
         return table
@@ -138,7 +155,8 @@ def test_label_pending_ingests_and_clears_pending(trained):
     camp, _ = trained
     pending = camp.pending_ids()
     if not pending:
-        rounds.propose(camp, budget_core_hours=20.0, progress=False)
+        rounds.propose(camp, budget_core_hours=_budget(rounds.rank(camp, progress=False), 0.1),
+                       progress=False)
         pending = camp.pending_ids()
     out = rounds.label_pending(camp, ids=pending[:2], compute=rule_compute, progress=False)
     assert (out.n_jobs, out.n_ok, out.n_ingested) == (2, 2, 2)
@@ -149,7 +167,7 @@ def test_label_pending_ingests_and_clears_pending(trained):
 
 
 def test_one_class_training_data_is_a_clear_error(tmp_path):
-    camp = Campaign.create(tmp_path / "one")
+    camp = _new_campaign(tmp_path / "one")
     items = _structures()[:6]
     camp.add_candidates([Candidate(c, f, "gen", s) for c, f, s in items])
     camp.ingest_results(([ResultRow(id=c, spillage=0.0, functional=None, code=None, kmesh=None,
