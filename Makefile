@@ -8,7 +8,7 @@ PIP    := $(PY) -m pip
 CONSTRAINTS := constraints.txt
 DEMO_DIR ?= demo_out
 
-.PHONY: demo test test-fast venv dft-env system-deps benchmarks dataset model constraints clean help
+.PHONY: demo test test-fast venv dft-env browser-env system-deps benchmarks dataset model constraints clean help
 
 help:
 	@echo "make demo   - set up and run the main job on the shipped data"
@@ -31,10 +31,14 @@ system-deps:
 dft-env: venv system-deps
 	bash scripts/install_gpaw.sh $(VENV)
 
+# Headless Chromium (Debian) for the report's browser check.
+browser-env:
+	bash scripts/install_browser.sh
+
 demo: venv
 	$(PY) -m prescreen.demo --out $(DEMO_DIR)
 
-test: venv dft-env
+test: venv dft-env browser-env
 	$(PY) -m pytest
 
 test-fast: venv
@@ -42,6 +46,13 @@ test-fast: venv
 
 benchmarks: venv
 	for b in benchmarks/*.py; do echo "== $$b"; $(PY) $$b || exit 1; done
+
+# Regenerate the open dataset (resumes from data_work/; hours of CPU) and the default model.
+dataset: dft-env
+	OPENBLAS_NUM_THREADS=1 $(PY) scripts/build_open_dataset.py --workers 1
+
+model: venv
+	$(PY) scripts/train_default_model.py
 
 constraints:
 	$(PIP) freeze --exclude-editable | grep -v '^-e' > $(CONSTRAINTS)

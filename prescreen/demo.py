@@ -125,6 +125,13 @@ def run_demo(out: Path, inputs: Path = EXAMPLES, *, progress: bool = True) -> di
         for cid, r in rnd.table.iterrows():
             print(f"  {r['rank']:>2}. {cid:<16} {r.reason}")
         written["round"] = rnd.folder
+
+        _step("explaining the model and writing the allocation report")
+        from prescreen.report import build_report
+
+        report_path = build_report(campaign, out_path=out / "report.html",
+                                   round_number=rnd.number, use_open=True, progress=progress)
+        written["report"] = report_path
     print("\ncaution: a probability is not a topological classification; confirm hits with "
           "an invariant (Z2). Toxic/radioactive flags defer to local safety rules.")
     return written

@@ -24,6 +24,7 @@ COMMANDS: dict[str, str] = {
     "rank": "rank",
     "propose": "propose",
     "label": "label",
+    "report": "report",
 }
 
 #: One-line help per command (kept here so --help does not import every module).
@@ -36,6 +37,7 @@ HELP: dict[str, str] = {
     "rank": "Rank every candidate by its probability of high spillage (CSV and Parquet).",
     "propose": "Propose the next batch to compute under a core-hour budget.",
     "label": "Compute spillage with the built-in DFT labeller (GPAW) and ingest it.",
+    "report": "Write the allocation report (one HTML file) for a campaign round.",
 }
 
 

@@ -1,0 +1,38 @@
+"""Write the allocation report (one HTML file) for a campaign round."""
+
+from __future__ import annotations
+
+import argparse
+from pathlib import Path
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("campaign", help="campaign folder")
+    parser.add_argument("--round", type=int, default=None, dest="round_number",
+                        help="round to report on (default: the latest)")
+    parser.add_argument("--out", type=Path, default=None,
+                        help="HTML file to write (default <campaign>/report-round-NNN.html)")
+    parser.add_argument("--pdf", action="store_true",
+                        help="also print the report to PDF (needs Chromium)")
+    parser.add_argument("--no-open-data", action="store_true",
+                        help="the model was trained without data_open/")
+
+
+def run(args: argparse.Namespace) -> int:
+    from prescreen.campaign import Campaign
+    from prescreen.errors import CampaignError
+    from prescreen.report import build_report, write_pdf
+
+    with Campaign.open(args.campaign) as campaign:
+        number = args.round_number or campaign.status().rounds
+        if not number:
+            raise CampaignError(f"{campaign.path}: no round proposed yet; run "
+                                "`prescreen propose` first")
+        out = args.out or campaign.path / f"report-round-{number:03d}.html"
+        path = build_report(campaign, out_path=out, round_number=number,
+                            use_open=not args.no_open_data)
+    print(f"report written to {path}")
+    if args.pdf:
+        pdf = write_pdf(path)
+        print(f"PDF written to {pdf}" if pdf else "PDF skipped: Chromium not found")
+    return 0
