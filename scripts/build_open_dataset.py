@@ -77,6 +77,7 @@ if TYPE_CHECKING:  # pragma: no cover - typing only
 __all__ = [
     "POSITIVE_THRESHOLD",
     "RELAX_KPT_DENSITY",
+    "RELAX_SMEARING_EV",
     "RELAX_SCALES",
     "stratified_order",
     "build_pool",
@@ -93,6 +94,11 @@ POSITIVE_THRESHOLD = 0.5
 #: relaxations: coarser than the labels' default (5.0) to keep relaxations affordable;
 #: common practice for geometry (forces converge faster in k than band inversions).
 RELAX_KPT_DENSITY = 2.5
+
+#: Fermi-Dirac width (eV) of the relaxations: wider than the labels' 0.01 eV so that the
+#: self-consistency of metals and small-gap layers converges in fewer iterations
+#: (common practice for geometry; the labels keep 0.01 eV).
+RELAX_SMEARING_EV = 0.1
 
 #: In-plane scale factors tried by the relaxation. Starting lattices from summed
 #: covalent radii are off by -9 % to +14 % for known layers (tests/test_prototypes.py),
@@ -289,9 +295,9 @@ def _relax_one(ident: str, row: dict[str, Any], kpt_density: float, result_path:
 
     os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
     t0 = time.perf_counter()
-    rec: dict[str, Any] = {"id": ident, "attempts": 0}
+    rec: dict[str, Any] = {"id": ident, "attempts": 0, "smearing_eV": RELAX_SMEARING_EV}
     try:
-        settings = LabelSettings(kpt_density=kpt_density)
+        settings = LabelSettings(kpt_density=kpt_density, smearing_eV=RELAX_SMEARING_EV)
         structure = structure_from_row(row)
         converged, residual = False, math.nan
         for attempt in range(1, RELAX_ATTEMPTS + 1):
@@ -448,10 +454,12 @@ def _relax_table(relax: Sequence[dict[str, Any]], records: Sequence[Any]) -> "pd
              "converged": bool(r.get("converged", False)),
              "residual_fmax_eV_per_A": float(r.get("residual_fmax_eV_per_A", math.nan)),
              "attempts": int(r.get("attempts", 0)), "wall_s": float(r.get("wall_s", math.nan)),
+             # relaxations recorded before the width was stored used the labels' 0.01 eV
+             "smearing_eV": float(r.get("smearing_eV", 0.01)),
              "label_status": label_status.get(r["id"], "not labelled")}
             for r in relax]
     cols = ["id", "status", "reason", "converged", "residual_fmax_eV_per_A", "attempts",
-            "wall_s", "label_status"]
+            "wall_s", "smearing_eV", "label_status"]
     return pd.DataFrame(rows, columns=cols).sort_values("id").reset_index(drop=True)
 
 
@@ -558,7 +566,9 @@ python scripts/build_open_dataset.py --seed {seed} --workers 1
 2. **Subset**: cells of at most {DEFAULT_MAX_ATOMS} atoms first; prototypes take turns and each
    turn takes the candidate whose elements are least covered so far (seeded order).
 3. **Relaxation** (`prescreen.physics.dft.relax_monolayer`): GPAW LCAO, PBE, dzp basis,
-   k-point density {RELAX_KPT_DENSITY} per reciprocal angstrom; positions by BFGS to
+   k-point density {RELAX_KPT_DENSITY} per reciprocal angstrom, Fermi-Dirac width
+   {RELAX_SMEARING_EV} eV (the first relaxations used 0.01 eV; the width of each is in
+   `{RELAX_PARQUET}`, column `smearing_eV`); positions by BFGS to
    {RELAX_FMAX} eV/A (at most {RELAX_STEPS} steps), in-plane lattice by an isotropic
    energy scan over scales {RELAX_SCALES} with a parabola fit (the in-plane cell shape
    is not optimised); up to {RELAX_ATTEMPTS} attempts. Structures that do not converge,
