@@ -186,7 +186,11 @@ def _fit_platt(margin: NDArray, y: NDArray, w: NDArray) -> Calibrator:
         return float(value), np.array([np.sum(r * margin), np.sum(r)])
 
     start = np.array([1.0, 0.0])
-    res = minimize(loss, start, jac=True, method="L-BFGS-B", options={"gtol": _PLATT_GTOL})
+    # The slope is kept >= 0: a calibration map must not reverse the ensemble's ranking
+    # (a negative fitted slope only means the out-of-fold margins carry no signal; the
+    # map then flattens to the smoothed base rate).
+    res = minimize(loss, start, jac=True, method="L-BFGS-B", bounds=[(0.0, None), (None, None)],
+                   options={"gtol": _PLATT_GTOL})
     a, b = (float(v) for v in res.x)
     return Calibrator("sigmoid", (a, b))
 
@@ -733,12 +737,13 @@ class SpillageClassifier(ClassifierMixin, _BoostedEnsemble, BaseEstimator):
         X_dummy = np.zeros((len(y01), 1))
         if groups is not None:
             n_groups = len(np.unique(groups))
-            k = min(n_splits, n_groups, max(smallest, 2))
+            k = min(n_splits, n_groups, smallest)
             if k < 2:
                 raise InputError(
-                    "calibration by grouped cross-validation needs at least 2 groups",
-                    value=n_groups,
-                    expected=">= 2 distinct groups",
+                    "calibration by grouped cross-validation needs at least 2 groups and "
+                    "2 rows of each class (set calibration=None to skip it)",
+                    value={"groups": n_groups, "rows in the rarer class": smallest},
+                    expected=">= 2 distinct groups and >= 2 rows of each class",
                 )
             splitter = StratifiedGroupKFold(n_splits=k, shuffle=True, random_state=seed)
             return list(splitter.split(X_dummy, y01, groups))

@@ -284,3 +284,18 @@ def test_training_data_hash_tracks_the_data(split_data):
     changed[3, 2] += 1e-12
     assert training_data_hash(changed, ytr) != h
     assert training_data_hash(Xtr, 1 - ytr) != h
+
+
+def test_platt_map_never_reverses_the_ranking():
+    # Margins that point the wrong way (higher for negatives): an unconstrained Platt fit
+    # would take a negative slope and reverse every ranking built on the model.
+    from prescreen.model import _fit_platt
+
+    rng = np.random.default_rng(0)
+    y = rng.integers(0, 2, 400)
+    margin = -2.0 * y + rng.normal(0.0, 0.5, 400)
+    cal = _fit_platt(margin, y, np.ones(400))
+    slope = cal.params[0]
+    assert slope >= 0.0
+    p = cal.apply(np.sort(margin))
+    assert np.all(np.diff(p) >= 0)

@@ -222,14 +222,28 @@ class TrainedModel:
     cv_table: Any  # pandas.DataFrame of grouped-CV metrics per fold
 
 
-def _classifier(n_models: int, random_state: int) -> SpillageClassifier:
+#: Rows per leaf: LightGBM's default of 10 on large tables, fewer on small ones so that a
+#: table of a few dozen rows can still be split (common practice: about 5 % of the rows).
+MAX_LEAF_ROWS = 10
+MIN_LEAF_ROWS = 2
+
+
+def leaf_rows(n_rows: int) -> int:
+    """``min_child_samples`` used for a training table of ``n_rows`` rows."""
+    return int(max(MIN_LEAF_ROWS, min(MAX_LEAF_ROWS, n_rows // 20)))
+
+
+def _classifier(n_models: int, random_state: int, n_rows: int) -> SpillageClassifier:
     from prescreen.model import SpillageClassifier
 
-    return SpillageClassifier(n_models=n_models, random_state=random_state, n_jobs=1)
+    return SpillageClassifier(n_models=n_models, random_state=random_state, n_jobs=1,
+                              min_child_samples=leaf_rows(n_rows))
 
 
 #: Fewest folds worth reporting; with fewer rows of a class, validation is skipped.
 MIN_CV_FOLDS = 2
+#: Spread of training-set probabilities below which a model counts as constant.
+CONSTANT_MODEL_TOL = 1e-9
 
 
 def fit_and_validate(
@@ -250,19 +264,27 @@ def fit_and_validate(
     from prescreen.validation import cross_validate, formula_groups
 
     groups = formula_groups(table.formulas)
-    folds = min(n_splits, int(table.y.sum()), int(len(table.y) - table.y.sum()),
-                len(set(groups.tolist())))
+    n_pos = int(table.y.sum())
+    n_neg = int(len(table.y) - n_pos)
+    # Each training fold must keep two rows of each class for the model's own
+    # calibration folds.
+    folds = min(n_splits, min(n_pos, n_neg) // 2, len(set(groups.tolist())))
+    n = len(table)
     if folds >= MIN_CV_FOLDS:
-        cv = cross_validate(lambda: _classifier(n_models, random_state), table.X, table.y,
+        cv = cross_validate(lambda: _classifier(n_models, random_state, n), table.X, table.y,
                             table.formulas, n_splits=folds, random_state=random_state,
                             progress=progress, label="grouped CV")
     else:
-        warnings.warn(f"too few labelled rows for grouped validation ({int(table.y.sum())} "
-                      f"positive, {int(len(table.y) - table.y.sum())} negative); the model "
-                      "is unvalidated", PrescreenWarning, stacklevel=2)
+        warnings.warn(f"too few labelled rows for grouped validation ({n_pos} positive, "
+                      f"{n_neg} negative); the model is unvalidated", PrescreenWarning,
+                      stacklevel=2)
         cv = pd.DataFrame()
-    model = _classifier(n_models, random_state)
+    model = _classifier(n_models, random_state, n)
     model.fit(table.X, table.y, sample_weight=table.weight, groups=groups)
+    if float(np.ptp(model.predict_proba(table.X)[:, 1])) < CONSTANT_MODEL_TOL:
+        warnings.warn(f"the model gives every candidate the same probability ({n} labelled "
+                      "rows are too few to learn from); rankings and proposals then follow "
+                      "cost and diversity only", PrescreenWarning, stacklevel=2)
     return model, cv
 
 

@@ -391,7 +391,12 @@ def prepare_monolayer(structure: "Structure | Atoms", vacuum_A: float = DEFAULT_
     new_a1[2] = new_a2[2] = 0.0
     c = thickness + float(vacuum_A)
     new_cell = np.array([new_a1, new_a2, [0.0, 0.0, c]])
-    inplane = frac[:, :2] @ new_cell[:2, :2]
+    # Cartesian positions of one contiguous slab (each atom's image along a3 chosen so its
+    # height is ``height``), turned into the new frame; a tilted a3 contributes its
+    # in-plane part here, so bond lengths are kept.
+    f3 = (height + bottom) / period if period > 1e-6 else frac[:, 2]
+    cart = frac[:, :1] * a1 + frac[:, 1:2] * a2 + f3[:, None] * a3
+    inplane = (cart @ rot.T)[:, :2]
     positions = np.column_stack([inplane, height + 0.5 * (c - thickness)])
     return Atoms(numbers=atoms.numbers, positions=positions, cell=new_cell,
                  pbc=(True, True, False))

@@ -1,0 +1,26 @@
+"""Re-orienting a monolayer for the labeller keeps every interatomic distance."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from ase.build import mx2
+
+from prescreen.physics.dft import prepare_monolayer
+
+
+@pytest.mark.parametrize("a3", [(0.0, 0.0, 21.3), (1.5, 0.7, 21.3), (-2.0, 3.1, 18.0)])
+def test_tilted_third_vector_keeps_distances(a3):
+    # 2H-MoS2 built by ASE; a tilted a3 describes the same layer (same in-plane lattice),
+    # so all distances (ASE's minimum-image convention) must be unchanged.
+    layer = mx2("MoS2", "2H", a=3.18, thickness=3.13, vacuum=9.0)
+    before = np.sort(layer.get_all_distances(mic=True).ravel())
+    tilted = layer.copy()
+    cell = np.array(tilted.cell)
+    cell[2] = a3
+    tilted.set_cell(cell, scale_atoms=False)
+    out = prepare_monolayer(tilted, vacuum_A=15.0)
+    assert np.allclose(out.cell[2], [0.0, 0.0, out.cell[2, 2]])
+    out.pbc = True
+    after = np.sort(out.get_all_distances(mic=True).ravel())
+    np.testing.assert_allclose(after, before, atol=1e-9)
