@@ -16,6 +16,7 @@ help:
 	@echo "make test-fast - unit tests only (no DFT)"
 
 $(VENV)/.core-installed: pyproject.toml $(CONSTRAINTS)
+	bash scripts/install_system_deps.sh
 	test -x $(PY) || $(PYTHON) -m venv $(VENV)
 	$(PIP) install -q --upgrade "pip>=24"
 	$(PIP) install -q -c $(CONSTRAINTS) -e ".[test]"

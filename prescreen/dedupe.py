@@ -1,9 +1,10 @@
 """Finding candidates that repeat an earlier one.
 
 Candidates are grouped by reduced composition; within a group, structures are compared
-with pymatgen's ``StructureMatcher`` (default tolerances ltol 0.2, stol 0.3,
-angle_tol 5 degrees; primitive cells and supercells are matched) with ``scale=False``:
-a uniformly expanded copy is not the same material. A composition-only
+with pymatgen's ``StructureMatcher`` (tolerances :data:`MATCH_LTOL`,
+:data:`MATCH_STOL`, :data:`MATCH_ANGLE_TOL_DEG`, tighter than pymatgen's defaults;
+primitive cells and supercells are matched) with ``scale=False``: a uniformly expanded
+or strained copy is not the same material. A composition-only
 candidate (no structure) repeats the first composition-only candidate with the same
 reduced composition; it is never matched against a structure, because a formula does
 not say which polymorph it means.
@@ -27,11 +28,29 @@ from typing import Any
 from prescreen.candidate import Candidate
 from prescreen.errors import Rejection
 
-__all__ = ["DuplicateFinder", "FRACTION_DECIMALS", "MATCH_VACUUM_A", "composition_key", "find_duplicates", "matching_form"]
+__all__ = ["DuplicateFinder", "FRACTION_DECIMALS", "MATCH_LTOL", "MATCH_STOL", "MATCH_ANGLE_TOL_DEG", "default_matcher", "MATCH_VACUUM_A", "composition_key", "find_duplicates", "matching_form"]
 
 #: Decimal places of the atomic fractions that define "same reduced composition"
 #: (FeO, Fe2O2 and Fe0.5O0.5 share a key; common practice).
 FRACTION_DECIMALS: int = 6
+
+
+#: StructureMatcher tolerances: fractional lattice-length tolerance, site tolerance (in
+#: units of (volume per site)^(1/3)) and angle tolerance in degrees. Tighter than
+#: pymatgen's defaults (0.2, 0.3, 5), which call 2H-MoS2 at 3.16 and 3.70 A (17 % strain)
+#: the same structure; strain series are a common way to drive band inversions, so a
+#: strained copy counts as a different candidate (values: common practice, chosen here).
+MATCH_LTOL: float = 0.02
+MATCH_STOL: float = 0.1
+MATCH_ANGLE_TOL_DEG: float = 2.0
+
+
+def default_matcher():
+    """The ``StructureMatcher`` used unless one is passed (see :data:`MATCH_LTOL`)."""
+    from pymatgen.analysis.structure_matcher import StructureMatcher
+
+    return StructureMatcher(ltol=MATCH_LTOL, stol=MATCH_STOL, angle_tol=MATCH_ANGLE_TOL_DEG,
+                            scale=False)
 
 
 #: Vacuum (A) of the normalised cell in which monolayers are compared: about one van
@@ -115,15 +134,13 @@ class DuplicateFinder:
         campaign store passes one so that new candidates are compared with old ones).
         Called once per group.
     matcher
-        A pymatgen ``StructureMatcher``; default ``StructureMatcher(scale=False)``.
+        A pymatgen ``StructureMatcher``; default :func:`default_matcher`.
     """
 
     def __init__(self, existing: Callable[[str], list[tuple[str, Any]]] | None = None, *,
                  matcher: Any = None) -> None:
         if matcher is None:
-            from pymatgen.analysis.structure_matcher import StructureMatcher
-
-            matcher = StructureMatcher(scale=False)
+            matcher = default_matcher()
         self._matcher = matcher
         self._existing = existing
         self._formula_first: dict[Any, str] = {}
@@ -176,7 +193,7 @@ def find_duplicates(candidates: Iterable[Candidate | Rejection], *, matcher: Any
         :func:`prescreen.io.structures.iter_candidates`; Rejections in the stream are
         skipped (they were reported by the reader).
     matcher
-        A pymatgen ``StructureMatcher``; default ``StructureMatcher(scale=False)``.
+        A pymatgen ``StructureMatcher``; default :func:`default_matcher`.
 
     Returns
     -------

@@ -6,9 +6,10 @@ is the hand-made files in ``examples/ferngrove/`` plus a structure search a coll
 ran (here: :data:`SEARCH_SIZE` unlabelled monolayers drawn from the open pool in
 ``data_open/``). The demo builds their campaign, ingests the spillage results they
 already have, trains the classifier on the open dataset plus those results, ranks every
-candidate, proposes the next batch under this round's budget with the group's own cost
-model (``examples/ferngrove/cost_model.json``: a plane-wave code on their cluster), and
-writes the report.
+candidate, proposes the next batch under this round's budget, and writes the report.
+The group computes with prescreen's own labeller on a workstation, so costs are
+predicted by the cost model fitted to the labeller's recorded wall times (small cells
+take seconds to a minute).
 
 Run: ``python -m prescreen.demo --out demo_out`` (the output folder is rebuilt each run).
 """
@@ -26,7 +27,7 @@ __all__ = ["main", "run_demo", "ROUND_BUDGET_CORE_HOURS"]
 
 EXAMPLES = Path("examples") / "ferngrove"
 #: The invented group's budget for this round, core-hours.
-ROUND_BUDGET_CORE_HOURS = 60.0
+ROUND_BUDGET_CORE_HOURS = 0.3
 #: Candidates drawn from the open pool as the colleague's structure search.
 SEARCH_SIZE = 1500
 #: Seed of that draw.
@@ -85,8 +86,7 @@ def run_demo(out: Path, inputs: Path = EXAMPLES, *, progress: bool = True) -> di
         search = out / "inputs" / "colleague_search.extxyz"
         n_search = write_search_dump(search)
         _step(f"reading candidates from {inputs} and {search} ({n_search} structures)")
-        sources = [p for p in sorted(inputs.iterdir())
-                   if p.name not in ("results.csv", "cost_model.json")] + [search]
+        sources = [p for p in sorted(inputs.iterdir()) if p.name != "results.csv"] + [search]
         report = campaign.add_candidates(iter_candidates(sources), progress=progress)
         print(f"read {report.added} candidates; layer check: {report.layer_counts}; "
               f"duplicates: {report.duplicates}")
@@ -98,9 +98,6 @@ def run_demo(out: Path, inputs: Path = EXAMPLES, *, progress: bool = True) -> di
             ing = campaign.ingest_results(read_results(results))
             print(f"ingested {ing.added} results")
             print_rejections(ing.rejections, stream=sys.stdout)
-
-        if (inputs / "cost_model.json").is_file():
-            shutil.copy(inputs / "cost_model.json", campaign_dir / "cost_model.json")
 
         _step("training on data_open/ plus the group's results (grouped validation)")
         trained = rounds.train(campaign, progress=progress)

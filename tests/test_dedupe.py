@@ -114,3 +114,21 @@ def test_rattled_copy_is_a_duplicate_but_distorted_one_is_not():
     big.scale_lattice(base.volume * 1.8)
     items = _candidates({"base": base, "small": small, "big": big})
     assert find_duplicates(items) == {"small": "base"}
+
+
+@pytest.mark.parametrize("a_strained", [3.30, 3.50, 3.70])
+def test_strained_copy_is_not_a_duplicate(a_strained):
+    # 2H-MoS2 at a = 3.16 A and a strained copy (4 % to 17 %): a strain series is a
+    # common way to tune band inversions, so each member must stay a candidate.
+    from ase.build import mx2
+    from pymatgen.io.ase import AseAtomsAdaptor
+
+    from prescreen.candidate import Candidate
+    from prescreen.dedupe import find_duplicates
+
+    def layer(a):
+        return AseAtomsAdaptor.get_structure(mx2("MoS2", "2H", a=a, thickness=3.13, vacuum=9.0))
+
+    pair = [Candidate("ref", "MoS2", "x", layer(3.16)), Candidate("strained", "MoS2", "y",
+                                                                   layer(a_strained))]
+    assert find_duplicates(pair) == {}

@@ -238,9 +238,9 @@ def diverse_within_budget(
         j = int(_descending(util)[0])
         i = int(cand[j])
         s_rank = int(np.sum(s[cand] > s[i])) + 1
-        note = f"{_ordinal(s_rank)} by score"
+        note = f"score rank {s_rank} of {cand.size} left"
         if d_rank is not None:
-            note += f", {_ordinal(int(d_rank[j]))} most distant from {where}"
+            note += f", novelty rank {int(d_rank[j])} of {cand.size} (distance to {where})"
         picked.append(i)
         notes.append(note)
         available[i] = False

@@ -18,6 +18,7 @@ def run(args: argparse.Namespace) -> int:
     from prescreen.cli._render import print_rejections, print_table
     from prescreen.io.results import read_results
 
+    landed = rejected = 0
     with Campaign.open(args.campaign) as campaign:
         for path in args.results:
             report = campaign.ingest_results(read_results(path), on_conflict=args.on_conflict)
@@ -26,4 +27,7 @@ def run(args: argparse.Namespace) -> int:
                          ("replaced", report.replaced), ("kept existing", report.kept_existing),
                          ("rejected", len(report.rejections))])
             print_rejections(report.rejections, campaign=str(campaign.path))
-    return 0
+            landed += report.added + report.unchanged + report.replaced + report.kept_existing
+            rejected += len(report.rejections)
+    # Exit 1 when rows were given but none landed, so that scripts notice.
+    return 1 if rejected and not landed else 0
