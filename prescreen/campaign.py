@@ -117,7 +117,8 @@ CREATE TABLE IF NOT EXISTS models (
     created_at TEXT NOT NULL,
     feature_schema TEXT NOT NULL,
     training_rows INTEGER,
-    metrics TEXT NOT NULL DEFAULT '{}'
+    metrics TEXT NOT NULL DEFAULT '{}',
+    settings TEXT NOT NULL DEFAULT '{}'
 );
 """
 
@@ -668,24 +669,28 @@ class Campaign:
         return pd.read_sql_query(sql + " ORDER BY round, rank", self._conn, params=args)
 
     def record_model(self, version: str, path: str | Path, *, feature_schema: str,
-                     training_rows: int, metrics: dict[str, Any]) -> None:
+                     training_rows: int, metrics: dict[str, Any],
+                     settings: dict[str, Any] | None = None) -> None:
+        """Record a trained model: where it is, its schema, metrics and training settings."""
         with self._transaction() as conn:
             conn.execute(
-                "INSERT OR REPLACE INTO models VALUES (?,?,?,?,?,?)",
+                "INSERT OR REPLACE INTO models VALUES (?,?,?,?,?,?,?)",
                 (version, str(path), _now(), feature_schema, training_rows,
-                 json.dumps(metrics, sort_keys=True)),
+                 json.dumps(metrics, sort_keys=True), json.dumps(settings or {}, sort_keys=True)),
             )
 
     def latest_model(self) -> dict[str, Any] | None:
         row = self._conn.execute(
-            "SELECT version, path, created_at, feature_schema, training_rows, metrics "
+            "SELECT version, path, created_at, feature_schema, training_rows, metrics, settings "
             "FROM models ORDER BY created_at DESC, rowid DESC LIMIT 1"
         ).fetchone()
         if row is None:
             return None
-        keys = ("version", "path", "created_at", "feature_schema", "training_rows", "metrics")
+        keys = ("version", "path", "created_at", "feature_schema", "training_rows", "metrics",
+                "settings")
         out = dict(zip(keys, row))
         out["metrics"] = json.loads(out["metrics"])
+        out["settings"] = json.loads(out["settings"])
         return out
 
     def fingerprint(self) -> str:

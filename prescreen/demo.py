@@ -127,7 +127,7 @@ def run_demo(out: Path, inputs: Path = EXAMPLES, *, progress: bool = True) -> di
         from prescreen.report import build_report
 
         report_path = build_report(campaign, out_path=out / "report.html",
-                                   round_number=rnd.number, use_open=True, progress=progress)
+                                   round_number=rnd.number, progress=progress)
         written["report"] = report_path
     print("\ncaution: a probability is not a topological classification; confirm hits with "
           "an invariant (Z2). Toxic/radioactive flags defer to local safety rules.")

@@ -323,7 +323,9 @@ def train(
     cv.to_csv(path / "grouped_cv.csv")
     campaign.record_model(version, path.relative_to(campaign.path),
                           feature_schema=schema_version(), training_rows=len(table),
-                          metrics=metrics)
+                          metrics=metrics,
+                          settings={"use_open": use_open, "campaign_weight": campaign_weight,
+                                    "n_models": n_models, "random_state": random_state})
     return TrainedModel(version=version, path=path, n_rows=len(table),
                         n_positive=int(table.y.sum()), metrics=metrics, cv_table=cv)
 

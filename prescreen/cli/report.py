@@ -14,8 +14,6 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="HTML file to write (default <campaign>/report-round-NNN.html)")
     parser.add_argument("--pdf", action="store_true",
                         help="also print the report to PDF (needs Chromium)")
-    parser.add_argument("--no-open-data", action="store_true",
-                        help="the model was trained without data_open/")
 
 
 def run(args: argparse.Namespace) -> int:
@@ -29,8 +27,7 @@ def run(args: argparse.Namespace) -> int:
             raise CampaignError(f"{campaign.path}: no round proposed yet; run "
                                 "`prescreen propose` first")
         out = args.out or campaign.path / f"report-round-{number:03d}.html"
-        path = build_report(campaign, out_path=out, round_number=number,
-                            use_open=not args.no_open_data)
+        path = build_report(campaign, out_path=out, round_number=number)
     print(f"report written to {path}")
     if args.pdf:
         pdf = write_pdf(path)

@@ -293,15 +293,22 @@ def out_of_fold(model: Any, X: Any, y: np.ndarray, formulas: list[str], *, n_spl
     return p
 
 
+def trained_with_open_data(campaign: Campaign) -> bool:
+    """Whether the campaign's latest model saw data_open/ (the shipped default model did)."""
+    record = campaign.latest_model()
+    if record is None:
+        return True
+    return bool(record["settings"].get("use_open", True))
+
+
 def _validation(campaign: Campaign, model: Any, model_dir: Path | None,
                 use_open: bool | None, progress: bool) -> tuple[ValidationData | None, str]:
     import pandas as pd
 
     from prescreen.acquire.rounds import training_table
 
-    record = campaign.latest_model()
-    if use_open is None:  # the model was trained with the open data iff it saw more rows
-        use_open = record is None or int(record["training_rows"] or 0) != campaign.status().labelled
+    if use_open is None:
+        use_open = trained_with_open_data(campaign)
     try:
         table = training_table(campaign, use_open=use_open, progress=progress)
     except CampaignError as exc:
@@ -452,12 +459,19 @@ def collect(
     labels = campaign.labels()
     costs = labels["core_hours"].dropna() if len(labels) else labels.get("core_hours", [])
     cost_path = campaign.path / "cost_model.json"
-    from prescreen.acquire.cost import CostModel
+    from prescreen.acquire.rounds import cost_model as campaign_cost_model
 
-    cost_model = (CostModel.load(cost_path) if cost_path.is_file() else CostModel()).as_dict()
-    cost_model["source"] = str(cost_path) if cost_path.is_file() else "built-in default"
-    used_open = bool(use_open) if use_open is not None else (
-        validation is not None and len(validation.y) != status.labelled)
+    fitted = campaign_cost_model(campaign)
+    cost_model = fitted.as_dict()
+    if cost_path.is_file():
+        cost_model["source"] = str(cost_path)
+    elif fitted.n_fitted:
+        cost_model["source"] = (f"fitted to {fitted.n_fitted} wall times recorded by the "
+                                "built-in labeller")
+    else:
+        cost_model["source"] = ("built-in default, not fitted: its scale is an assumption and "
+                                "its interval a guess")
+    used_open = bool(use_open) if use_open is not None else trained_with_open_data(campaign)
     return ReportData(
         campaign_name=campaign.name, campaign_path=str(campaign.path),
         generated_at=_dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
