@@ -39,6 +39,17 @@ def _fmt(value: Any, digits: int = 3) -> str:
     return f"{v:.{digits}f}"
 
 
+def _sig(value: Any, digits: int = 2) -> str:
+    """A number with ``digits`` significant digits (costs span 1e-3 to 1e3 core-hours)."""
+    text = _fmt(value, 0)
+    if text == "–":
+        return text
+    try:
+        return f"{float(value):.{digits}g}"
+    except (TypeError, ValueError):
+        return text
+
+
 def figures(data: ReportData) -> dict[str, Any]:
     """All figures of the report, as base64 PNG text, keyed by element ID.
 
@@ -118,6 +129,7 @@ def render_html(data: ReportData) -> str:
         lstrip_blocks=True,
     )
     env.filters["fmt"] = _fmt
+    env.filters["sig"] = _sig
     env.filters["full"] = lambda v: "" if v is None else repr(float(v))
     v = data.validation
     cv_rows = []
