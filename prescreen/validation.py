@@ -405,6 +405,7 @@ def cross_validate(
     random_state: int | np.random.Generator | None = None,
     progress: bool = True,
     label: str = "",
+    sample_weight: ArrayLike | None = None,
 ) -> pd.DataFrame:
     """Grouped k-fold metrics of a model.
 
@@ -429,6 +430,9 @@ def cross_validate(
         Show a progress bar over folds.
     label
         Text for the progress bar.
+    sample_weight
+        Training weights, shape ``(n,)``, passed to ``fit`` of models that accept them
+        (so the recipe validated is the recipe fitted); metrics stay unweighted.
 
     Returns
     -------
@@ -454,8 +458,11 @@ def cross_validate(
     for i, (tr, te) in enumerate(tqdm(folds, desc=label or "cross-validation", disable=not progress, leave=False)):
         model = model_factory()
         fit_kwargs = {}
-        if "groups" in inspect.signature(model.fit).parameters:
+        params = inspect.signature(model.fit).parameters
+        if "groups" in params:
             fit_kwargs["groups"] = groups[tr]
+        if sample_weight is not None and "sample_weight" in params:
+            fit_kwargs["sample_weight"] = np.asarray(sample_weight, dtype=float)[tr]
         model.fit(_take(X, tr), y[tr], **fit_kwargs)
         p = np.asarray(model.predict_proba(_take(X, te)))[:, 1]
         rows[i] = {"n_train": float(len(tr))} | classification_metrics(y[te], p, k_values=k_values)

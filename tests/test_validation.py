@@ -248,3 +248,31 @@ def test_baselines_refuse_one_class():
 
     with pytest.raises(InputError, match="one class"):
         ElementLinearBaseline().fit(FORMULAS[:3], [0, 0, 0])
+
+
+def test_cross_validate_passes_training_weights_only_to_fit():
+    # The weights a recipe is trained with must reach every fold's fit, restricted to the
+    # fold's training rows (a weighted recipe is then validated as fitted).
+    from prescreen.validation import cross_validate
+
+    seen = []
+
+    class Recorder:
+        def fit(self, X, y, sample_weight=None):
+            seen.append(np.asarray(sample_weight))
+            self.rate_ = float(np.mean(y))
+            return self
+
+        def predict_proba(self, X):
+            p = np.full(len(X), self.rate_)
+            return np.column_stack([1 - p, p])
+
+    # 20 distinct chemical systems (alkali halides), so every row is its own group.
+    formulas = [c + a for c in ("Li", "Na", "K", "Rb", "Cs") for a in ("F", "Cl", "Br", "I")]
+    y = np.array([0, 1] * 10)
+    w = np.arange(20, dtype=float)
+    X = np.zeros((20, 1))
+    cross_validate(Recorder, X, y, formulas, n_splits=4, random_state=0, progress=False,
+                   sample_weight=w)
+    assert len(seen) == 4
+    assert sorted(np.concatenate(seen).tolist()) == sorted(w.tolist() * 3)

@@ -273,7 +273,7 @@ def fit_and_validate(
     if folds >= MIN_CV_FOLDS:
         cv = cross_validate(lambda: _classifier(n_models, random_state, n), table.X, table.y,
                             table.formulas, n_splits=folds, random_state=random_state,
-                            progress=progress, label="grouped CV")
+                            progress=progress, label="grouped CV", sample_weight=table.weight)
     else:
         warnings.warn(f"too few labelled rows for grouped validation ({n_pos} positive, "
                       f"{n_neg} negative); the model is unvalidated", PrescreenWarning,
