@@ -91,7 +91,8 @@ def test_runs_records_and_resumes_without_repeating(tmp_path, log):
     assert s.n_failed == 1 and _calls(log).count("fail-1") == 2
     assert len(load_records(out)) == 4  # newest record per id
     frame = records_frame(out)
-    assert list(frame["id"]) == ["a", "b", "c", "fail-1"]
+    # two workers finish in either order; the frame holds each id once
+    assert sorted(frame["id"]) == ["a", "b", "c", "fail-1"]
     assert frame.loc[frame["id"] == "c", "spillage"].item() == pytest.approx(0.3)
 
 
