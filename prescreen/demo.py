@@ -119,8 +119,13 @@ def run_demo(out: Path, inputs: Path = EXAMPLES, *, progress: bool = True) -> di
         low, high = rnd.expected_hits_interval
         print(f"round {rnd.number}: {len(rnd.table)} candidates, {rnd.total_cost:.2f} "
               f"core-hours, expected hits {rnd.expected_hits:.2f} (90% interval {low:g}-{high:g})")
-        for cid, r in rnd.table.iterrows():
-            print(f"  {r['rank']:>2}. {cid:<16} {r.reason}")
+        for cid, r in rnd.table.head(15).iterrows():
+            print(f"  {r['rank']:>2}. {cid:<18} {r.reason}")
+        if len(rnd.table) > 15:
+            print(f"  ... {len(rnd.table) - 15} more in {rnd.folder / 'proposals.csv'}")
+        a = rnd.after
+        print(f"after this round: {a['expected_hits_left']:.1f} expected hits left "
+              f"({a['hits_left_low']:g}-{a['hits_left_high']:g}); stop rule: {a['advice']}")
         written["round"] = rnd.folder
 
         _step("explaining the model and writing the allocation report")

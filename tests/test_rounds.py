@@ -175,3 +175,20 @@ def test_one_class_training_data_is_a_clear_error(tmp_path):
                           for i, (c, _, _) in enumerate(items)], []))
     with pytest.raises(CampaignError, match="only one class"):
         rounds.train(camp, use_open=False, progress=False)
+
+
+def test_round_records_the_stop_rule_over_the_pool_it_leaves(trained):
+    camp, _ = trained
+    ranking = rounds.rank(camp, progress=False)
+    rnd = rounds.propose(camp, budget_core_hours=_budget(ranking, 0.05), seed=5,
+                         ranking=ranking, progress=False)
+    meta = json.loads((rnd.folder / "round.json").read_text())
+    after = meta["after_this_round"]
+    left = ranking[ranking["layer_status"].isin(rounds.PROPOSABLE_STATUSES)
+                   & ranking["duplicate_of"].isna() & ranking["spillage"].isna()
+                   & ~ranking.index.isin(camp.pending_ids())]
+    # Expected hits left = sum of calibrated probabilities of what is still unpicked.
+    assert after["n_pool"] == len(left)
+    assert after["expected_hits_left"] == pytest.approx(left["probability"].sum())
+    assert after["hits_left_low"] <= after["expected_hits_left"] <= after["hits_left_high"]
+    assert after == rnd.after

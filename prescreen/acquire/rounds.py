@@ -484,6 +484,7 @@ class ProposedRound:
     total_cost: float
     budget: float
     strategy: str
+    after: dict[str, Any]  # stop rule over the pool left after this batch
 
 
 def propose(
@@ -534,6 +535,7 @@ def propose(
     func = strategy_by_name(strategy, **options)
     proposal = func(view, float(budget_core_hours), np.random.default_rng(seed))
     table = proposal.to_frame().set_index("id")
+    after = _stop_rule(pool.drop(index=table.index))
     table["formula"] = pool.loc[table.index, "formula"]
     table["flags"] = pool.loc[table.index, "flags"]
     rows = [{"id": cid, "probability": float(r.probability), "uncertainty": float(r.spread),
@@ -564,13 +566,26 @@ def propose(
         "expected_hits": proposal.expected_hits,
         "expected_hits_interval": [proposal.expected_hits_low, proposal.expected_hits_high],
         "interval_level": proposal.interval_level, "interval_method": proposal.interval_method,
+        "after_this_round": after,
     }, indent=2))
     return ProposedRound(number=number, table=table, folder=folder,
                          expected_hits=proposal.expected_hits,
                          expected_hits_interval=(proposal.expected_hits_low,
                                                  proposal.expected_hits_high),
                          total_cost=proposal.total_cost, budget=float(budget_core_hours),
-                         strategy=proposal.strategy)
+                         strategy=proposal.strategy, after=after)
+
+
+def _stop_rule(rest: pd.DataFrame) -> dict[str, Any]:
+    """The stop rule over the candidates a round left in the pool, as plain numbers."""
+    from dataclasses import asdict
+
+    from prescreen.acquire.stopping import stop_estimate
+
+    est = stop_estimate(rest["probability"].to_numpy(float),
+                        rest["cost_core_hours"].to_numpy(float))
+    return {k: (float(v) if isinstance(v, (int, float, np.floating)) else v)
+            for k, v in asdict(est).items()}
 
 
 @dataclass(frozen=True)

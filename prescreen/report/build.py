@@ -157,6 +157,9 @@ class RoundSummary:
     hits_per_core_hour, random_hits_per_core_hour : float
         Expected hits over predicted core-hours, for the batch and for random picks
         (sum of p over sum of cost, over the pool).
+    after : dict or None
+        The stop rule over the pool this round leaves (``round.json``,
+        ``after_this_round``; see :func:`prescreen.acquire.stopping.stop_estimate`).
     """
 
     number: int
@@ -175,6 +178,7 @@ class RoundSummary:
     random_expected_hits: float
     hits_per_core_hour: float
     random_hits_per_core_hour: float
+    after: dict[str, Any] | None = None
 
 
 @dataclass(frozen=True)
@@ -446,6 +450,7 @@ def collect(
         random_expected_hits=base_rate * len(ids),
         hits_per_core_hour=float(rec["expected_hits"]) / total if total > 0 else float("nan"),
         random_hits_per_core_hour=float(pool["probability"].sum() / pool["cost_core_hours"].sum()),
+        after=rec.get("after_this_round"),
     )
     explanation = explain(model, feats.loc[ids])
     sample = pool.index[_even_sample(len(pool), GLOBAL_SHAP_ROWS)]
