@@ -192,3 +192,17 @@ def test_round_records_the_stop_rule_over_the_pool_it_leaves(trained):
     assert after["expected_hits_left"] == pytest.approx(left["probability"].sum())
     assert after["hits_left_low"] <= after["expected_hits_left"] <= after["hits_left_high"]
     assert after == rnd.after
+
+
+def test_campaign_filter_keeps_matching_results_only(trained):
+    camp, _ = trained
+    everything = rounds.training_table(camp, use_open=False, progress=False)
+    # The plumbing labels were ingested with functional "PBE" and code "rule"; results
+    # from the stand-in labeller carry code "GPAW stand-in".
+    kept = rounds.training_table(camp, use_open=False, progress=False,
+                                 campaign_filter={"code": "rule"})
+    labels = camp.labels()
+    assert len(kept) == int((labels["code"] == "rule").sum()) <= len(everything)
+    with pytest.raises(InputError, match="unknown result filter"):
+        rounds.training_table(camp, use_open=False, progress=False,
+                              campaign_filter={"basis": "dzp"})

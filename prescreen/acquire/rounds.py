@@ -154,6 +154,7 @@ def training_table(
     campaign_weight: float = 1.0,
     data_open: str | Path | None = None,
     threshold: float | None = None,
+    campaign_filter: dict[str, str] | None = None,
     progress: bool = True,
 ) -> TrainingTable:
     """Join the open labelled data and the campaign's own results into one table.
@@ -169,6 +170,9 @@ def training_table(
         value above 1 to trust your own level of theory more.
     threshold
         Spillage counted as positive; default the campaign's (or 0.5).
+    campaign_filter
+        Keep only the campaign's results whose provenance matches every item, e.g.
+        ``{"functional": "PBE"}``; keys among :data:`FILTER_KEYS`.
     """
     import pandas as pd
 
@@ -191,7 +195,7 @@ def training_table(
         formulas += list(open_df["formula"])
         origin += ["open"] * len(open_df)
     if campaign is not None:
-        labels = campaign.labels()
+        labels = _filtered(campaign.labels(), campaign_filter or {})
         if len(labels):
             feats = _feature_columns(candidate_features(campaign, progress=progress))
             feats = feats.loc[labels.index]
@@ -208,6 +212,19 @@ def training_table(
     return TrainingTable(X=X, spillage=spillage, y=(spillage >= threshold).astype(int),
                          weight=np.concatenate(weights), formulas=formulas,
                          origin=np.asarray(origin), threshold=float(threshold))
+
+
+#: Provenance columns of a result that ``campaign_filter`` can select on.
+FILTER_KEYS = ("functional", "code", "kmesh")
+
+
+def _filtered(labels: pd.DataFrame, campaign_filter: dict[str, str]) -> pd.DataFrame:
+    for key, value in campaign_filter.items():
+        if key not in FILTER_KEYS:
+            raise InputError("unknown result filter", value=key,
+                             expected="one of " + ", ".join(FILTER_KEYS))
+        labels = labels[labels[key].astype(str) == str(value)]
+    return labels
 
 
 @dataclass(frozen=True)
@@ -296,14 +313,20 @@ def train(
     n_models: int = 5,
     random_state: int = DEFAULT_SEED,
     data_open: str | Path | None = None,
+    campaign_filter: dict[str, str] | None = None,
     progress: bool = True,
 ) -> TrainedModel:
-    """Train, validate and store a model for the campaign (a new version each call)."""
+    """Train, validate and store a model for the campaign (a new version each call).
+
+    See :func:`training_table` for ``use_open``, ``campaign_weight`` and
+    ``campaign_filter``; the settings are recorded with the model.
+    """
     from prescreen.featurise import schema_version
     from prescreen.model import training_data_hash
 
     table = training_table(campaign, use_open=use_open, campaign_weight=campaign_weight,
-                           data_open=data_open, progress=progress)
+                           data_open=data_open, campaign_filter=campaign_filter,
+                           progress=progress)
     if len(set(table.y)) < 2:
         raise CampaignError(
             f"training data has only one class ({len(table)} rows, all "
@@ -325,6 +348,7 @@ def train(
                           feature_schema=schema_version(), training_rows=len(table),
                           metrics=metrics,
                           settings={"use_open": use_open, "campaign_weight": campaign_weight,
+                                    "campaign_filter": campaign_filter or {},
                                     "n_models": n_models, "random_state": random_state})
     return TrainedModel(version=version, path=path, n_rows=len(table),
                         n_positive=int(table.y.sum()), metrics=metrics, cv_table=cv)

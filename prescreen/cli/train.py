@@ -12,6 +12,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--campaign-weight", type=float, default=1.0,
                         help="weight of the campaign's own rows relative to open rows "
                         "(default %(default)s)")
+    parser.add_argument("--only", action="append", default=[], metavar="KEY=VALUE",
+                        help="use only the campaign's results whose provenance matches, e.g. "
+                        "--only functional=PBE (keys: functional, code, kmesh; repeatable)")
     parser.add_argument("--models", type=int, default=5, help="ensemble members")
     parser.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
     parser.add_argument("--no-progress", action="store_true", help="hide progress bars")
@@ -22,10 +25,19 @@ def run(args: argparse.Namespace) -> int:
     from prescreen.campaign import Campaign
     from prescreen.cli._render import print_table
 
+    from prescreen.errors import InputError
+
+    only = {}
+    for item in args.only:
+        key, sep, value = item.partition("=")
+        if not sep or not key:
+            raise InputError("bad --only filter", value=item, expected="KEY=VALUE, e.g. functional=PBE")
+        only[key] = value
     with Campaign.open(args.campaign) as campaign:
         result = train(campaign, use_open=not args.no_open_data,
-                       campaign_weight=args.campaign_weight, n_models=args.models,
-                       random_state=args.seed, progress=not args.no_progress)
+                       campaign_weight=args.campaign_weight, campaign_filter=only,
+                       n_models=args.models, random_state=args.seed,
+                       progress=not args.no_progress)
     m = result.metrics
     print(f"trained {result.version} on {result.n_rows} rows ({result.n_positive} positive)")
     print("grouped 5-fold cross-validation (mean over folds):")
