@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import argparse
 
+__all__ = ["add_arguments", "run"]
+
 from prescreen import SPILLAGE_THRESHOLD
 
 

@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import argparse
 
+__all__ = ["add_arguments", "run"]
+
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("campaign", help="campaign folder")

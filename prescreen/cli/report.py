@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import argparse
+
+__all__ = ["add_arguments", "run"]
 from pathlib import Path
 
 
