@@ -65,3 +65,16 @@ def test_traceback_flag_shows_the_trace(tmp_path):
 
     with pytest.raises(CampaignError):
         main(["--traceback", "status", str(tmp_path / "nowhere")])
+
+
+def test_each_command_help_is_its_module_docstring():
+    # --help lists one line per command without importing the modules; the line must be
+    # the first line of the command module's docstring.
+    import importlib
+
+    from prescreen.cli.main import COMMANDS, HELP
+
+    assert set(HELP) == set(COMMANDS)
+    for name, module in COMMANDS.items():
+        doc = importlib.import_module(f"prescreen.cli.{module}").__doc__
+        assert HELP[name] == doc.strip().splitlines()[0]
