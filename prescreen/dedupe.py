@@ -28,7 +28,7 @@ from typing import Any
 from prescreen.candidate import Candidate
 from prescreen.errors import Rejection
 
-__all__ = ["DuplicateFinder", "FRACTION_DECIMALS", "MATCH_LTOL", "MATCH_STOL", "MATCH_ANGLE_TOL_DEG", "default_matcher", "MATCH_VACUUM_A", "composition_key", "find_duplicates", "matching_form"]
+__all__ = ["DuplicateFinder", "FRACTION_DECIMALS", "MATCH_LTOL", "MATCH_STOL", "MATCH_ANGLE_TOL_DEG", "MATCH_VOLUME_RATIO", "default_matcher", "MATCH_VACUUM_A", "composition_key", "find_duplicates", "matching_form"]
 
 #: Decimal places of the atomic fractions that define "same reduced composition"
 #: (FeO, Fe2O2 and Fe0.5O0.5 share a key; common practice).
@@ -43,6 +43,13 @@ FRACTION_DECIMALS: int = 6
 MATCH_LTOL: float = 0.02
 MATCH_STOL: float = 0.1
 MATCH_ANGLE_TOL_DEG: float = 2.0
+
+
+#: Largest ratio of volumes per atom (normalised cells) that can still match: lattice
+#: lengths within MATCH_LTOL each give (1 + ltol)^3, and angles within the angle
+#: tolerance change an area by a few per cent more (margin 1.05, chosen here). Pairs
+#: beyond it are not handed to StructureMatcher at all (a cheap necessary condition).
+MATCH_VOLUME_RATIO: float = (1.0 + MATCH_LTOL) ** 3 * 1.05
 
 
 def default_matcher():
@@ -176,7 +183,11 @@ class DuplicateFinder:
             first = self._formula_first.setdefault(group_key, ident)
             return None if first == ident else first
         form = matching_form(structure)
+        vpa = form.volume / len(form)
         for other, other_form in group:
+            ratio = vpa / (other_form.volume / len(other_form))
+            if max(ratio, 1.0 / ratio) > MATCH_VOLUME_RATIO:
+                continue  # cannot match within the lattice tolerances
             if self._matcher.fit(other_form, form):
                 return other
         group.append((ident, form))
