@@ -391,6 +391,7 @@ class Campaign:
         except InputError as exc:
             return Rejection(path=cand.source, line=None, value=cand.formula,
                              reason=f"cannot parse formula: {exc.reason}")
+        check = None
         if cand.structure is not None:
             check = check_monolayer(cand.structure)
             layer = (check.status, check.thickness_A, check.vacuum_A, check.reason)
@@ -398,7 +399,7 @@ class Campaign:
         else:
             layer = ("formula_only", None, None, "composition only: no structure given")
             n_atoms = None
-        dup = finder.duplicate_of(cand.id, reduced, cand.structure)
+        dup = finder.duplicate_of(cand.id, reduced, cand.structure, check)
         conn.execute(
             "INSERT INTO candidates (id, formula, reduced_formula, chemsys, source, n_atoms,"
             " structure, layer_status, thickness_A, vacuum_A, layer_reason, duplicate_of,"

@@ -66,13 +66,15 @@ def default_matcher():
 MATCH_VACUUM_A: float = 3.0
 
 
-def matching_form(structure: Any) -> Any:
+def matching_form(structure: Any, check: Any = None) -> Any:
     """The structure as compared by :func:`find_duplicates`.
 
     Parameters
     ----------
     structure
         A pymatgen ``Structure``.
+    check
+        Its :class:`prescreen.monolayer.LayerCheck`, if already computed.
 
     Returns
     -------
@@ -86,7 +88,8 @@ def matching_form(structure: Any) -> Any:
 
     from prescreen.monolayer import check_monolayer
 
-    check = check_monolayer(structure)
+    if check is None:
+        check = check_monolayer(structure)
     if check.status != "monolayer" or check.normal is None:
         return structure
     normal = np.asarray(check.normal)
@@ -166,7 +169,8 @@ class DuplicateFinder:
             self._groups[key] = group
         return group
 
-    def duplicate_of(self, ident: str, group_key: str, structure: Any | None) -> str | None:
+    def duplicate_of(self, ident: str, group_key: str, structure: Any | None,
+                     check: Any = None) -> str | None:
         """Return the id ``ident`` repeats (and remember it otherwise).
 
         Parameters
@@ -177,12 +181,14 @@ class DuplicateFinder:
             Its reduced formula (or any key shared exactly by equal compositions).
         structure
             Its structure, or ``None`` for a composition-only candidate.
+        check
+            Its :class:`prescreen.monolayer.LayerCheck`, if already computed.
         """
         group = self._group(group_key, group_key)
         if structure is None:
             first = self._formula_first.setdefault(group_key, ident)
             return None if first == ident else first
-        form = matching_form(structure)
+        form = matching_form(structure, check)
         vpa = form.volume / len(form)
         for other, other_form in group:
             ratio = vpa / (other_form.volume / len(other_form))
