@@ -4,8 +4,9 @@ from __future__ import annotations
 
 from pathlib import Path
 
-import nbformat
 import pytest
+
+nbformat = pytest.importorskip("nbformat", reason="the notebook test needs the test extra")
 
 ROOT = Path(__file__).resolve().parents[1]
 NOTEBOOK = ROOT / "notebooks" / "campaign_walkthrough.ipynb"
