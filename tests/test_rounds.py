@@ -206,3 +206,23 @@ def test_campaign_filter_keeps_matching_results_only(trained):
     with pytest.raises(InputError, match="unknown result filter"):
         rounds.training_table(camp, use_open=False, progress=False,
                               campaign_filter={"basis": "dzp"})
+
+
+def test_cost_model_prefers_the_campaigns_own_recorded_costs(tmp_path):
+    camp = Campaign.create(tmp_path / "costs")
+    items = _structures()[:8]
+    camp.add_candidates([Candidate(c, f, "gen", s) for c, f, s in items])
+    hours = [0.5, 0.7, 1.1, 0.9, 2.0, 1.4]
+    camp.ingest_results(([ResultRow(id=c, spillage=0.0, functional="PBE", code="theirs",
+                                    kmesh=None, core_hours=h, notes=None, source=f"r:{i}")
+                          for i, ((c, _, _), h) in enumerate(zip(items, hours))], []))
+    empty = tmp_path / "no_open_data"
+    empty.mkdir()
+    model = rounds.cost_model(camp, data_open=empty)
+    assert model.n_fitted == len(hours)
+    # With a cost_model.json in the folder, that file wins.
+    from prescreen.acquire.cost import CostModel
+
+    CostModel().scaled(3.0).save(camp.path / "cost_model.json")
+    assert rounds.cost_model(camp, data_open=empty).multiplier == 3.0
+    camp.close()

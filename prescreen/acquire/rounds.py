@@ -408,11 +408,15 @@ def cost_records(campaign: Campaign, *, data_open: str | Path | None = None) -> 
 def cost_model(campaign: Campaign, *, data_open: str | Path | None = None):
     """The campaign's cost model.
 
-    ``<campaign>/cost_model.json`` when present (your code and cluster: write it with
-    :meth:`prescreen.acquire.cost.CostModel.save`); otherwise the LCAO-shaped model fitted
-    to the wall times the built-in labeller recorded (the campaign's own and the open
-    dataset's), so predicted costs mean core-hours of the built-in labeller; with fewer
-    than :data:`MIN_COST_RECORDS` records, the unfitted default.
+    In order of preference:
+
+    1. ``<campaign>/cost_model.json`` (your own coefficients: write it with
+       :meth:`prescreen.acquire.cost.CostModel.save`);
+    2. fitted to the campaign's own results that record ``core_hours`` (your code and
+       cluster), when there are at least :data:`MIN_COST_RECORDS`;
+    3. the LCAO-shaped model fitted to the wall times the built-in labeller recorded for
+       the open dataset, so predicted costs mean core-hours of the built-in labeller;
+    4. the unfitted default (placeholder scale, see :mod:`prescreen.acquire.cost`).
     """
     from prescreen.acquire.cost import CostModel
 
@@ -420,8 +424,13 @@ def cost_model(campaign: Campaign, *, data_open: str | Path | None = None):
     if path.is_file():
         return CostModel.load(path)
     records = cost_records(campaign, data_open=data_open)
-    if len(records) >= MIN_COST_RECORDS:
-        return CostModel.for_code("lcao").fit(records)
+    if len(records):
+        own = records[records["origin"] == "campaign"]
+        if len(own) >= MIN_COST_RECORDS:
+            return CostModel().fit(own)
+        shipped = records[records["origin"] == "data_open"]
+        if len(shipped) >= MIN_COST_RECORDS:
+            return CostModel.for_code("lcao").fit(shipped)
     return CostModel()
 
 
