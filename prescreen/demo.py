@@ -128,11 +128,18 @@ def run_demo(out: Path, inputs: Path = EXAMPLES, *, progress: bool = True) -> di
               f"({a['hits_left_low']:g}-{a['hits_left_high']:g}); stop rule: {a['advice']}")
         written["round"] = rnd.folder
 
+        _step("replaying campaigns on the labelled data (discovery curves)")
+        curves = rounds.replay_labelled(campaign, progress=progress)
+        if curves is None:
+            print(f"skipped: a replay needs at least {rounds.MIN_REPLAY_ROWS} labelled rows "
+                  f"and {rounds.MIN_REPLAY_POSITIVES} positives (data_open/ is still growing)")
+
         _step("explaining the model and writing the allocation report")
         from prescreen.report import build_report
 
         report_path = build_report(campaign, out_path=out / "report.html",
-                                   round_number=rnd.number, progress=progress)
+                                   round_number=rnd.number, replay_curves=curves,
+                                   progress=progress)
         written["report"] = report_path
     print("\ncaution: a probability is not a topological classification; confirm hits with "
           "an invariant (Z2). Toxic/radioactive flags defer to local safety rules.")

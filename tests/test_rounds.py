@@ -226,3 +226,17 @@ def test_cost_model_prefers_the_campaigns_own_recorded_costs(tmp_path):
     CostModel().scaled(3.0).save(camp.path / "cost_model.json")
     assert rounds.cost_model(camp, data_open=empty).multiplier == 3.0
     camp.close()
+
+
+def test_replay_for_the_report(trained):
+    camp, _ = trained
+    assert rounds.replay_labelled(camp, use_open=False, progress=False) is None  # too few
+    rep = rounds.replay_labelled(camp, use_open=False, min_rows=10, min_positives=2,
+                                 seeds=(0,), n_models=2, n_rounds=2, progress=False)
+    table = rounds.training_table(camp, use_open=False, progress=False)
+    assert len(rep.y) == len(table) and int(rep.y.sum()) == int(table.y.sum())
+    assert set(rep.curves["strategy"]) == {*rounds.REPLAY_STRATEGIES, "random_selection"}
+    # Hits found never exceed the positives; each replayed row is evaluated at most once.
+    assert rep.curves["hits"].max() <= rep.y.sum()
+    for _, block in rep.curves.groupby(["strategy", "seed"]):
+        assert block["item"].is_unique

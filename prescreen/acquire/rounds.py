@@ -52,6 +52,7 @@ __all__ = [
     "cost_records",
     "LabelOutcome",
     "label_pending",
+    "replay_labelled",
 ]
 
 _REPO = Path(__file__).resolve().parents[2]
@@ -127,6 +128,8 @@ class TrainingTable:
         For grouped validation folds.
     origin : ndarray of str, shape (n,)
         ``"open"`` or ``"campaign"``.
+    core_hours : ndarray, shape (n,)
+        Recorded cost of each label (NaN where the result did not say).
     """
 
     X: Any
@@ -136,6 +139,7 @@ class TrainingTable:
     formulas: list[str]
     origin: np.ndarray
     threshold: float
+    core_hours: np.ndarray
 
     def __len__(self) -> int:
         return len(self.y)
@@ -183,7 +187,7 @@ def training_table(
                          expected="a number > 0")
     if threshold is None:
         threshold = campaign.threshold if campaign is not None else SPILLAGE_THRESHOLD
-    parts, spill, weights, formulas, origin = [], [], [], [], []
+    parts, spill, weights, formulas, origin, hours = [], [], [], [], [], []
     if use_open:
         open_df = load_open_labelled(data_open)
         feats = _feature_columns(_featurise_frame(list(open_df["formula"]),
@@ -191,6 +195,7 @@ def training_table(
         feats.index = open_df.index
         parts.append(feats)
         spill.append(open_df["spillage"].to_numpy(float))
+        hours.append(open_df["core_hours"].to_numpy(float))
         weights.append(np.ones(len(open_df)))
         formulas += list(open_df["formula"])
         origin += ["open"] * len(open_df)
@@ -201,6 +206,7 @@ def training_table(
             feats = feats.loc[labels.index]
             parts.append(feats)
             spill.append(labels["spillage"].to_numpy(float))
+            hours.append(pd.to_numeric(labels["core_hours"], errors="coerce").to_numpy(float))
             weights.append(np.full(len(labels), float(campaign_weight)))
             frame = campaign.candidates_frame()
             formulas += list(frame.loc[labels.index, "reduced_formula"])
@@ -211,7 +217,8 @@ def training_table(
     spillage = np.concatenate(spill)
     return TrainingTable(X=X, spillage=spillage, y=(spillage >= threshold).astype(int),
                          weight=np.concatenate(weights), formulas=formulas,
-                         origin=np.asarray(origin), threshold=float(threshold))
+                         origin=np.asarray(origin), threshold=float(threshold),
+                         core_hours=np.concatenate(hours))
 
 
 #: Provenance columns of a result that ``campaign_filter`` can select on.
@@ -703,3 +710,60 @@ def label_pending(
                         n_failed=len(failures), n_ingested=report.added,
                         failures=tuple(failures), core_hours=float(summary.core_hours),
                         out_dir=out_dir)
+
+
+#: Fewest labelled rows and positives for a retrospective replay worth showing (the same
+#: floor as benchmarks/replay.py; common practice, chosen here).
+MIN_REPLAY_ROWS = 100
+MIN_REPLAY_POSITIVES = 10
+#: Strategies replayed for the report, against random selection.
+REPLAY_STRATEGIES = ("expected_hits_per_core_hour", "greedy_probability")
+
+
+def replay_labelled(
+    campaign: Campaign | None,
+    *,
+    use_open: bool = True,
+    strategies: tuple[str, ...] = REPLAY_STRATEGIES,
+    seeds: tuple[int, ...] = (0, 1, 2),
+    n_models: int = 3,
+    n_rounds: int = 8,
+    min_rows: int = MIN_REPLAY_ROWS,
+    min_positives: int = MIN_REPLAY_POSITIVES,
+    progress: bool = True,
+) -> Any:
+    """Replay campaigns on the labelled data (open plus the campaign's) for the report.
+
+    Each strategy, plus random selection, starts from 10 % of the rows at random and
+    picks rounds of 10 % of the total recorded cost. Rows without a recorded cost are
+    charged the median recorded cost (1 core-hour when none is recorded). Missing
+    features count as 0 for the diversity distances only.
+
+    Returns
+    -------
+    prescreen.report.ReplayCurves or None
+        None when the labelled data has fewer than ``min_rows`` rows or
+        ``min_positives`` positives (the curves would say nothing).
+    """
+    import pandas as pd
+
+    from prescreen.acquire.replay import replay
+    from prescreen.report import ReplayCurves
+
+    table = training_table(campaign, use_open=use_open, progress=progress)
+    if len(table) < min_rows or int(table.y.sum()) < min_positives:
+        return None
+    cost = table.core_hours.copy()
+    known = np.isfinite(cost) & (cost > 0)
+    cost[~known] = float(np.median(cost[known])) if known.any() else 1.0
+    X = table.X.fillna(0.0)
+    n = len(table)
+
+    def factory(seed: int) -> SpillageClassifier:
+        return _classifier(n_models, seed, n)
+
+    curves = [replay(X, table.y, cost, table.formulas, strategy_by_name(name), factory,
+                     n_initial=max(2, n // 10), batch_budget=float(cost.sum()) / 10,
+                     n_rounds=n_rounds, seeds=seeds, name=name, progress=progress)
+              for name in (*strategies, "random_selection")]
+    return ReplayCurves(curves=pd.concat(curves, ignore_index=True), y=table.y, cost=cost)

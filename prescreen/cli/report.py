@@ -16,6 +16,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="HTML file to write (default <campaign>/report-round-NNN.html)")
     parser.add_argument("--pdf", action="store_true",
                         help="also print the report to PDF (needs Chromium)")
+    parser.add_argument("--replay", action="store_true",
+                        help="add discovery curves from a retrospective replay on the "
+                        "labelled data (minutes; needs >= 100 labelled rows)")
 
 
 def run(args: argparse.Namespace) -> int:
@@ -29,7 +32,15 @@ def run(args: argparse.Namespace) -> int:
             raise CampaignError(f"{campaign.path}: no round proposed yet; run "
                                 "`prescreen propose` first")
         out = args.out or campaign.path / f"report-round-{number:03d}.html"
-        path = build_report(campaign, out_path=out, round_number=number)
+        curves = None
+        if args.replay:
+            from prescreen.acquire.rounds import replay_labelled
+
+            curves = replay_labelled(campaign)
+            if curves is None:
+                print("replay skipped: too few labelled rows or positives")
+        path = build_report(campaign, out_path=out, round_number=number,
+                            replay_curves=curves)
     print(f"report written to {path}")
     if args.pdf:
         pdf = write_pdf(path)

@@ -466,13 +466,13 @@ def band_gap(eigenvalues: np.ndarray, n_electrons: float) -> tuple[float, bool]:
 
 
 def _gpaw_calculator(settings: LabelSettings, kmesh: tuple[int, int, int],
-                     txt: str | Path | None, magnetic: bool) -> Any:
+                     txt: str | Path | None, magnetic: bool, **extra: Any) -> Any:
     from gpaw import GPAW, FermiDirac
 
     return GPAW(mode="lcao", basis=settings.basis, xc=settings.xc,
                 kpts={"size": kmesh, "gamma": True}, nbands="nao",
                 occupations=FermiDirac(settings.smearing_eV), spinpol=magnetic,
-                txt=txt)
+                txt=txt, **extra)
 
 
 def _run_in(workdir: Path | None):
@@ -606,7 +606,9 @@ def relax_monolayer(structure: "Structure | Atoms",
                     settings: LabelSettings = LabelSettings(), *,
                     fmax: float = DEFAULT_FMAX_EV_PER_A, steps: int = 100,
                     scales: tuple[float, ...] = (0.96, 0.98, 1.0, 1.02, 1.04),
-                    workdir: Path | None = None
+                    workdir: Path | None = None,
+                    grid_spacing_A: float | None = None,
+                    scf_density_tol: float | None = None,
                     ) -> tuple["Structure | Atoms", float, bool]:
     """Relax a monolayer at the labeller's level of theory (LCAO, PBE).
 
@@ -632,6 +634,12 @@ def relax_monolayer(structure: "Structure | Atoms",
         In-plane scale factors (dimensionless) tried for the lattice.
     workdir
         Folder for GPAW's log; a temporary folder when None.
+    grid_spacing_A
+        Real-space grid spacing (Angstrom) of the relaxation only; GPAW's default (0.2)
+        when None. A coarser grid is cheaper; compare lattice constants before using it.
+    scf_density_tol
+        Self-consistency tolerance on the density (GPAW's ``convergence["density"]``)
+        for the relaxation only; GPAW's default when None.
 
     Returns
     -------
@@ -647,12 +655,17 @@ def relax_monolayer(structure: "Structure | Atoms",
                          expected="fmax > 0, steps >= 1, at least 3 scales")
     atoms = prepare_monolayer(structure, settings.vacuum_A)
     kmesh = choose_kpts(atoms, settings)
+    extra: dict[str, Any] = {}
+    if grid_spacing_A is not None:
+        extra["h"] = float(grid_spacing_A)
+    if scf_density_tol is not None:
+        extra["convergence"] = {"density": float(scf_density_tol)}
 
     def attach(a: "Atoms", folder: Path, tag: str) -> None:
         if settings.spinpol:
             a.set_initial_magnetic_moments([settings.initial_magmom_muB] * len(a))
         a.calc = _gpaw_calculator(settings, kmesh, folder / f"relax-{tag}.txt",
-                                  settings.spinpol)
+                                  settings.spinpol, **extra)
 
     def relax_positions(a: "Atoms", folder: Path, tag: str, f_tol: float, n_steps: int) -> bool:
         attach(a, folder, tag)
