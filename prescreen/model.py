@@ -81,6 +81,7 @@ __all__ = [
     "ISOTONIC_MIN_POSITIVES",
     "SCORE_CHUNK_ROWS",
     "MAX_BIN",
+    "MIN_LEAF_HESSIAN",
 ]
 
 #: Identifier written into every model file; bumped when the layout changes.
@@ -102,6 +103,9 @@ SCORE_CHUNK_ROWS: int = 131_072
 #: 10,000 x 176 features here (1.78 -> 0.91 CPU s per booster) and is ample for a few
 #: thousand labelled rows (measured in this project, not a published value).
 MAX_BIN: int = 63
+
+#: Smallest summed hessian in a leaf (LightGBM's default, 1e-3).
+MIN_LEAF_HESSIAN: float = 1e-3
 
 #: Folds of the nested comparison of Platt against isotonic under ``"auto"``.
 _AUTO_FOLDS: int = 5
@@ -343,7 +347,9 @@ class _BoostedEnsemble:
             "learning_rate": float(self.learning_rate),
             "num_leaves": int(self.num_leaves),
             "min_data_in_leaf": int(self.min_child_samples),
-            "min_sum_hessian_in_leaf": 0.0,
+            # LightGBM's default; 0 lets a leaf of near-certain rows (hessian ~ 0) split
+            # into an empty child and abort training on small tables.
+            "min_sum_hessian_in_leaf": MIN_LEAF_HESSIAN,
             "bagging_fraction": float(self.subsample),
             "bagging_freq": 1 if float(self.subsample) < 1.0 else 0,
             "feature_fraction": float(self.colsample),

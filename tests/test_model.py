@@ -299,3 +299,18 @@ def test_platt_map_never_reverses_the_ranking():
     assert slope >= 0.0
     p = cal.apply(np.sort(margin))
     assert np.all(np.diff(p) >= 0)
+
+
+@pytest.mark.parametrize("seed", range(12))
+def test_small_separable_tables_train_with_two_rows_per_leaf(seed):
+    # A first batch of results is small and often nearly separable; with two rows per
+    # leaf and bagging, leaves of near-certain rows (hessian ~ 0) must not abort LightGBM
+    # (it did with min_sum_hessian_in_leaf = 0: "best_split_info.left_count > 0").
+    rng = np.random.default_rng(seed)
+    X = rng.normal(size=(18, 6))
+    y = (X[:, 0] > 0).astype(int)
+    if not 4 <= y.sum() <= 14:
+        pytest.skip("too unbalanced a draw for calibration folds")
+    model = SpillageClassifier(n_models=3, min_child_samples=2, random_state=seed, n_jobs=1)
+    p = model.fit(X, y).predict_proba(X)[:, 1]
+    assert np.all((p >= 0) & (p <= 1))

@@ -240,3 +240,18 @@ def test_replay_for_the_report(trained):
     assert rep.curves["hits"].max() <= rep.y.sum()
     for _, block in rep.curves.groupby(["strategy", "seed"]):
         assert block["item"].is_unique
+
+
+def test_retrain_after_a_first_small_batch(tmp_path):
+    # The walkthrough's step 7: a few dozen labelled rows, two rows per leaf, bagging on.
+    camp = _new_campaign(tmp_path / "small")
+    items = _structures()[:24]
+    camp.add_candidates([Candidate(c, f, "gen", s) for c, f, s in items])
+    camp.ingest_results(([ResultRow(id=c, spillage=_rule(s), functional=None, code=None,
+                                    kmesh=None, core_hours=None, notes=None, source=f"r:{i}")
+                          for i, (c, _, s) in enumerate(items[:18])], []))
+    first = rounds.train(camp, use_open=False, n_models=3, progress=False)
+    second = rounds.train(camp, use_open=False, n_models=3, progress=False)
+    assert (first.version, second.version) == ("model-001", "model-002")
+    assert rounds.leaf_rows(18) == rounds.MIN_LEAF_ROWS
+    camp.close()
