@@ -214,6 +214,14 @@ class Campaign:
             raise CampaignError(
                 f"{db}: store format {fmt!r} is not the supported format {STORE_FORMAT}"
             )
+        self._upgrade()
+
+    def _upgrade(self) -> None:
+        """Add columns that later releases of the same store format introduced."""
+        columns = {row[1] for row in self._conn.execute("PRAGMA table_info(models)")}
+        if "settings" not in columns:
+            with self._transaction() as conn:
+                conn.execute("ALTER TABLE models ADD COLUMN settings TEXT NOT NULL DEFAULT '{}'")
 
     # ------------------------------------------------------------------ opening
     @staticmethod

@@ -208,3 +208,16 @@ def test_killed_ingest_leaves_store_exactly_as_before(campaign, tmp_path):
     conn = sqlite3.connect(campaign.path / DB_NAME)
     assert conn.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
     conn.close()
+
+
+def test_store_without_model_settings_column_is_upgraded_on_open(campaign):
+    # A store written before models recorded their settings gains the column on open.
+    path = campaign.path
+    campaign.close()
+    conn = sqlite3.connect(path / DB_NAME)
+    conn.executescript("ALTER TABLE models DROP COLUMN settings;")
+    conn.close()
+    with Campaign.open(path) as again:
+        again.record_model("m1", "models/m1", feature_schema="s", training_rows=1, metrics={},
+                           settings={"use_open": False})
+        assert again.latest_model()["settings"] == {"use_open": False}

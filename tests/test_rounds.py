@@ -255,3 +255,10 @@ def test_retrain_after_a_first_small_batch(tmp_path):
     assert (first.version, second.version) == ("model-001", "model-002")
     assert rounds.leaf_rows(18) == rounds.MIN_LEAF_ROWS
     camp.close()
+
+
+def test_a_filter_that_matches_nothing_names_the_values_present(trained):
+    camp, _ = trained
+    with pytest.raises(InputError, match=r"no result has functional=pbe.*'PBE'"):
+        rounds.training_table(camp, use_open=False, progress=False,
+                              campaign_filter={"functional": "pbe"})

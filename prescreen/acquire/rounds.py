@@ -49,6 +49,7 @@ __all__ = [
     "propose",
     "strategy_by_name",
     "cost_model",
+    "cost_model_with_source",
     "cost_records",
     "LabelOutcome",
     "label_pending",
@@ -230,6 +231,10 @@ def _filtered(labels: pd.DataFrame, campaign_filter: dict[str, str]) -> pd.DataF
         if key not in FILTER_KEYS:
             raise InputError("unknown result filter", value=key,
                              expected="one of " + ", ".join(FILTER_KEYS))
+        present = sorted(labels[key].dropna().astype(str).unique())
+        if str(value) not in present:
+            raise InputError(f"no result has {key}={value}", value=value,
+                             expected=f"one of the values present: {present}")
         labels = labels[labels[key].astype(str) == str(value)]
     return labels
 
@@ -399,7 +404,7 @@ def cost_records(campaign: Campaign, *, data_open: str | Path | None = None) -> 
         structure = campaign.structure(cid)
         if structure is not None and hours > 0:
             rows.append({**descriptors_for_structure(structure), "core_hours": float(hours),
-                         "origin": "campaign"})
+                         "origin": "campaign", "code": labels.loc[cid, "code"]})
     try:
         open_df = load_open_labelled(data_open)
     except CampaignError:
@@ -408,19 +413,22 @@ def cost_records(campaign: Campaign, *, data_open: str | Path | None = None) -> 
         for structure, hours in zip(open_df["structure"], open_df["core_hours"]):
             if hours == hours and hours > 0:
                 rows.append({**descriptors_for_structure(structure),
-                             "core_hours": float(hours), "origin": "data_open"})
+                             "core_hours": float(hours), "origin": "data_open",
+                             "code": "GPAW"})
     return pd.DataFrame(rows)
 
 
-def cost_model(campaign: Campaign, *, data_open: str | Path | None = None):
-    """The campaign's cost model.
+def cost_model_with_source(campaign: Campaign, *,
+                           data_open: str | Path | None = None) -> tuple[Any, str]:
+    """The campaign's cost model and a sentence saying where it came from.
 
     In order of preference:
 
     1. ``<campaign>/cost_model.json`` (your own coefficients: write it with
        :meth:`prescreen.acquire.cost.CostModel.save`);
     2. fitted to the campaign's own results that record ``core_hours`` (your code and
-       cluster), when there are at least :data:`MIN_COST_RECORDS`;
+       cluster), when there are at least :data:`MIN_COST_RECORDS`; LCAO-shaped when all
+       of them came from GPAW (the built-in labeller), plane-wave-shaped otherwise;
     3. the LCAO-shaped model fitted to the wall times the built-in labeller recorded for
        the open dataset, so predicted costs mean core-hours of the built-in labeller;
     4. the unfitted default (placeholder scale, see :mod:`prescreen.acquire.cost`).
@@ -429,16 +437,29 @@ def cost_model(campaign: Campaign, *, data_open: str | Path | None = None):
 
     path = campaign.path / "cost_model.json"
     if path.is_file():
-        return CostModel.load(path)
+        return CostModel.load(path), f"your cost model in {path}"
     records = cost_records(campaign, data_open=data_open)
     if len(records):
         own = records[records["origin"] == "campaign"]
         if len(own) >= MIN_COST_RECORDS:
-            return CostModel().fit(own)
+            lcao = own["code"].fillna("").str.startswith("GPAW").all()
+            base = CostModel.for_code("lcao") if lcao else CostModel()
+            shape = "LCAO" if lcao else "plane-wave"
+            return base.fit(own.drop(columns=["code"])), (
+                f"fitted ({shape} shape) to the core_hours of {len(own)} of this "
+                "campaign's results")
         shipped = records[records["origin"] == "data_open"]
         if len(shipped) >= MIN_COST_RECORDS:
-            return CostModel.for_code("lcao").fit(shipped)
-    return CostModel()
+            return CostModel.for_code("lcao").fit(shipped.drop(columns=["code"])), (
+                f"fitted (LCAO shape) to {len(shipped)} wall times the built-in labeller "
+                "recorded for data_open/")
+    return CostModel(), ("built-in default, not fitted: its scale is an assumption and its "
+                         "interval a guess")
+
+
+def cost_model(campaign: Campaign, *, data_open: str | Path | None = None):
+    """The campaign's cost model (see :func:`cost_model_with_source`)."""
+    return cost_model_with_source(campaign, data_open=data_open)[0]
 
 
 def rank(campaign: Campaign, *, progress: bool = True) -> pd.DataFrame:

@@ -34,9 +34,12 @@ def run(args: argparse.Namespace) -> int:
     for cid, r in rnd.table.iterrows():
         print(f"  {r['rank']:>3}. {cid:<24} {r.reason}")
     a = rnd.after
-    print(f"left in the pool after this round: {a['expected_hits_left']:.2f} expected hits "
-          f"({a['hits_left_low']:g}-{a['hits_left_high']:g}) among {int(a['n_pool'])} "
-          f"candidates; about {a['core_hours_to_next_hit']:.3g} core-hours to the next hit")
+    if a["n_pool"]:
+        print(f"left in the pool after this round: {a['expected_hits_left']:.2f} expected hits "
+              f"({a['hits_left_low']:g}-{a['hits_left_high']:g}) among {int(a['n_pool'])} "
+              f"candidates; about {a['core_hours_to_next_hit']:.3g} core-hours to the next hit")
+    else:
+        print("no candidates left in the pool after this round")
     print(f"stop rule: {a['advice']}")
     print(f"structures ready to run in {rnd.folder} (cif/ and batch.extxyz)")
     return 0

@@ -29,9 +29,10 @@ def run(args: argparse.Namespace) -> int:
     shown = table.head(args.top)
     print(f"{'rank':>4}  {'id':<24} {'formula':<10} {'p':>5} {'±':>5} {'core-h':>7}  flags")
     for cid, r in shown.iterrows():
-        cost = "" if r.cost_core_hours != r.cost_core_hours else f"{r.cost_core_hours:7.2f}"
-        print(f"{r['rank']:>4}  {cid:<24} {r.formula:<10} {r.probability:5.2f} "
-              f"{r.uncertainty:5.2f} {cost:>7}  {r.flags}")
+        hours = r["cost_core_hours"]
+        cost = "" if hours != hours else f"{hours:7.3g}"
+        print(f"{r['rank']:>4}  {cid:<24} {r['formula']:<10} {r['probability']:5.2f} "
+              f"{r['uncertainty']:5.2f} {cost:>7}  {r['flags']}")
     print(f"ranked {len(table)} candidates with model {table['model'].iloc[0]}; "
           f"written to {stem.with_suffix('.csv')} and .parquet")
     print("note: a probability is not a topological classification; confirm hits with an "

@@ -29,11 +29,14 @@ def run(args: argparse.Namespace) -> int:
 
     from prescreen.errors import InputError
 
-    only = {}
+    only: dict[str, str] = {}
     for item in args.only:
         key, sep, value = item.partition("=")
         if not sep or not key:
             raise InputError("bad --only filter", value=item, expected="KEY=VALUE, e.g. functional=PBE")
+        if key in only:
+            raise InputError("--only names a key twice", value=item,
+                             expected=f"one value per key ({key}={only[key]} given already)")
         only[key] = value
     with Campaign.open(args.campaign) as campaign:
         result = train(campaign, use_open=not args.no_open_data,
@@ -42,8 +45,12 @@ def run(args: argparse.Namespace) -> int:
                        progress=not args.no_progress)
     m = result.metrics
     print(f"trained {result.version} on {result.n_rows} rows ({result.n_positive} positive)")
-    print("grouped 5-fold cross-validation (mean over folds):")
-    print_table([(k, f"{m[k]:.3f}") for k in ("roc_auc", "pr_auc", "brier", "log_loss", "ece")
-                 if k in m])
+    n_folds = len(result.cv_table) - 3  # per-fold rows, then mean, std and pooled
+    if n_folds > 0:
+        print(f"grouped {n_folds}-fold cross-validation (mean over folds):")
+        print_table([(k, f"{m[k]:.3f}") for k in ("roc_auc", "pr_auc", "brier", "log_loss",
+                                                  "ece") if k in m])
+    else:
+        print("unvalidated: too few labelled rows of each class for grouped folds")
     print(f"model written to {result.path}")
     return 0

@@ -463,19 +463,11 @@ def collect(
     status = campaign.status()
     labels = campaign.labels()
     costs = labels["core_hours"].dropna() if len(labels) else labels.get("core_hours", [])
-    cost_path = campaign.path / "cost_model.json"
-    from prescreen.acquire.rounds import cost_model as campaign_cost_model
+    from prescreen.acquire.rounds import cost_model_with_source
 
-    fitted = campaign_cost_model(campaign)
+    fitted, source = cost_model_with_source(campaign)
     cost_model = fitted.as_dict()
-    if cost_path.is_file():
-        cost_model["source"] = str(cost_path)
-    elif fitted.n_fitted:
-        cost_model["source"] = (f"fitted to {fitted.n_fitted} wall times recorded by the "
-                                "built-in labeller")
-    else:
-        cost_model["source"] = ("built-in default, not fitted: its scale is an assumption and "
-                                "its interval a guess")
+    cost_model["source"] = source
     used_open = bool(use_open) if use_open is not None else trained_with_open_data(campaign)
     return ReportData(
         campaign_name=campaign.name, campaign_path=str(campaign.path),
