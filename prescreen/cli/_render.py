@@ -18,6 +18,13 @@ def print_rejections(rejections: Sequence[Rejection], *, stream: TextIO = sys.st
                      campaign: str | None = None) -> None:
     if not rejections:
         return
+
+    def where(rej: Rejection) -> tuple:
+        line = rej.line
+        return (rej.path, 0 if isinstance(line, int) else 1,
+                line if isinstance(line, int) else str(line))
+
+    rejections = sorted(rejections, key=where)
     print(f"rejected {len(rejections)} entr{'y' if len(rejections) == 1 else 'ies'}:",
           file=stream)
     for rej in rejections[:SHOWN_REJECTIONS]:
