@@ -291,11 +291,12 @@ def stratified_order(pool: "pd.DataFrame", seed: int, max_atoms: int = DEFAULT_M
 # --- relaxation ---------------------------------------------------------------------
 def _relax_one(ident: str, row: dict[str, Any], kpt_density: float, result_path: str) -> None:
     """Child process: relax one structure and write a JSON result file."""
-    from prescreen.physics.dft import LabelSettings, relax_monolayer
+    from prescreen.physics.dft import REFINE_STEP, LabelSettings, relax_monolayer
 
     os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
     t0 = time.perf_counter()
-    rec: dict[str, Any] = {"id": ident, "attempts": 0, "smearing_eV": RELAX_SMEARING_EV}
+    rec: dict[str, Any] = {"id": ident, "attempts": 0, "smearing_eV": RELAX_SMEARING_EV,
+                           "lattice_scan": f"coarse + fine (step {REFINE_STEP})"}
     try:
         settings = LabelSettings(kpt_density=kpt_density, smearing_eV=RELAX_SMEARING_EV)
         structure = structure_from_row(row)
@@ -456,10 +457,12 @@ def _relax_table(relax: Sequence[dict[str, Any]], records: Sequence[Any]) -> "pd
              "attempts": int(r.get("attempts", 0)), "wall_s": float(r.get("wall_s", math.nan)),
              # relaxations recorded before the width was stored used the labels' 0.01 eV
              "smearing_eV": float(r.get("smearing_eV", 0.01)),
+             # relaxations recorded before the fine scan existed used the coarse scan only
+             "lattice_scan": str(r.get("lattice_scan", "coarse only")),
              "label_status": label_status.get(r["id"], "not labelled")}
             for r in relax]
     cols = ["id", "status", "reason", "converged", "residual_fmax_eV_per_A", "attempts",
-            "wall_s", "smearing_eV", "label_status"]
+            "wall_s", "smearing_eV", "lattice_scan", "label_status"]
     return pd.DataFrame(rows, columns=cols).sort_values("id").reset_index(drop=True)
 
 
@@ -570,7 +573,9 @@ python scripts/build_open_dataset.py --seed {seed} --workers 1
    {RELAX_SMEARING_EV} eV (the first relaxations used 0.01 eV; the width of each is in
    `{RELAX_PARQUET}`, column `smearing_eV`); positions by BFGS to
    {RELAX_FMAX} eV/A (at most {RELAX_STEPS} steps), in-plane lattice by an isotropic
-   energy scan over scales {RELAX_SCALES} with a parabola fit (the in-plane cell shape
+   energy scan over scales {RELAX_SCALES} and a finer scan around its minimum, each with
+   a parabola fit (the first relaxations used the coarse scan only; column
+   `lattice_scan`; the in-plane cell shape
    is not optimised); up to {RELAX_ATTEMPTS} attempts. Structures that do not converge,
    or that are no longer one bonded, 2-periodic sheet with at least 8 A of vacuum
    (covalent radii x 1.25 bond test), are recorded in `{RELAX_PARQUET}` and left out.

@@ -596,6 +596,24 @@ def label_structure(structure: "Structure | Atoms",
                        gamma=gamma, kpts=kpts, cpu_s=time.process_time() - c0)
 
 
+#: Relative step of the fine lattice scan around the coarse minimum (dimensionless;
+#: 1.5 % keeps the parabola within the harmonic region; common practice, chosen here).
+REFINE_STEP: float = 0.015
+
+
+def _parabola_minimum(scales: tuple[float, ...], energies: np.ndarray) -> float:
+    """Scale at the vertex of a parabola through the lowest point and its neighbours.
+
+    Clipped to the scanned range; the lowest scanned scale when the three points are not
+    convex.
+    """
+    j = int(np.argmin(energies))
+    lo = min(max(j - 1, 0), len(scales) - 3)
+    coef = np.polyfit(scales[lo:lo + 3], energies[lo:lo + 3], 2)
+    best = -coef[1] / (2 * coef[0]) if coef[0] > 0 else scales[j]
+    return float(np.clip(best, min(scales), max(scales)))
+
+
 #: Force tolerance (eV/Angstrom) and step cap of the pre-relaxation at the input cell,
 #: before the lattice scan (loose on purpose; common practice for a first pass).
 PRE_RELAX_FMAX_EV_PER_A: float = 0.2
@@ -609,15 +627,16 @@ def relax_monolayer(structure: "Structure | Atoms",
                     workdir: Path | None = None,
                     grid_spacing_A: float | None = None,
                     scf_density_tol: float | None = None,
+                    refine_step: float = REFINE_STEP,
                     ) -> tuple["Structure | Atoms", float, bool]:
     """Relax a monolayer at the labeller's level of theory (LCAO, PBE).
 
     GPAW 26.7 has no stress tensor in LCAO mode, so the in-plane cell is optimised by
     energy: the in-plane lattice is scaled isotropically through ``scales`` (positions
     first roughly relaxed at the input cell, to :data:`PRE_RELAX_FMAX_EV_PER_A`, then
-    held in fractional coordinates), a parabola
-    through the lowest energies gives the best scale, and positions are relaxed again
-    there (BFGS). The out-of-plane cell is not changed apart from re-centring with
+    held in fractional coordinates), then through a finer scan of step ``refine_step``
+    around the coarse minimum; a parabola through the lowest energies of each scan gives
+    the best scale, and positions are relaxed again there (BFGS). The out-of-plane cell is not changed apart from re-centring with
     ``settings.vacuum_A`` of vacuum; the in-plane cell *shape* is not optimised.
 
     Parameters
@@ -640,6 +659,9 @@ def relax_monolayer(structure: "Structure | Atoms",
     scf_density_tol
         Self-consistency tolerance on the density (GPAW's ``convergence["density"]``)
         for the relaxation only; GPAW's default when None.
+    refine_step
+        Relative step of the second, finer scan around the coarse minimum (three more
+        energies); 0 skips it.
 
     Returns
     -------
@@ -672,27 +694,33 @@ def relax_monolayer(structure: "Structure | Atoms",
         return bool(BFGS(a, logfile=str(folder / f"bfgs-{tag}.log")).run(fmax=f_tol,
                                                                           steps=n_steps))
 
+    def scan(a: "Atoms", folder: Path, factors: tuple[float, ...], tag: str) -> np.ndarray:
+        """Energies (eV) with the in-plane cell scaled by each factor, positions fractional."""
+        energies = []
+        for i, f in enumerate(factors):
+            trial = a.copy()
+            cell = np.array(trial.cell)
+            cell[:2] *= f
+            trial.set_cell(cell, scale_atoms=True)
+            attach(trial, folder, f"{tag}{i}")
+            energies.append(trial.get_potential_energy())
+        return np.array(energies)
+
     with _run_in(workdir) as folder, _one_thread():
         try:
             # A rough pre-relaxation at the input cell: the lattice is still off there, so
             # converging tightly would waste steps that the final relaxation repeats.
             relax_positions(atoms, folder, "start", max(fmax, PRE_RELAX_FMAX_EV_PER_A),
                             min(steps, PRE_RELAX_STEPS))
-            energies = []
-            for i, s in enumerate(scales):
-                trial = atoms.copy()
-                cell = np.array(trial.cell)
-                cell[:2] *= s
-                trial.set_cell(cell, scale_atoms=True)
-                attach(trial, folder, f"scale{i}")
-                energies.append(trial.get_potential_energy())
-            energies = np.array(energies)
+            energies = scan(atoms, folder, scales, "scale")
             j = int(np.argmin(energies))
             edge = j in (0, len(scales) - 1)
-            lo = min(max(j - 1, 0), len(scales) - 3)
-            coef = np.polyfit(scales[lo:lo + 3], energies[lo:lo + 3], 2)
-            best = (-coef[1] / (2 * coef[0]) if coef[0] > 0 else scales[j])
-            best = float(np.clip(best, scales[0], scales[-1]))
+            best = _parabola_minimum(scales, energies)
+            if refine_step > 0 and not edge:
+                # A second, finer scan around the coarse minimum: a parabola through widely
+                # spaced points is biased where the energy curve is anharmonic.
+                fine = tuple(best * f for f in (1 - refine_step, 1.0, 1 + refine_step))
+                best = _parabola_minimum(fine, scan(atoms, folder, fine, "fine"))
             cell = np.array(atoms.cell)
             cell[:2] *= best
             atoms.set_cell(cell, scale_atoms=True)
