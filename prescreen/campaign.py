@@ -689,9 +689,17 @@ class Campaign:
             )
 
     def latest_model(self) -> dict[str, Any] | None:
+        """The newest model record (see :meth:`model_record`), or None."""
+        return self._model_row("ORDER BY created_at DESC, rowid DESC LIMIT 1", ())
+
+    def model_record(self, version: str) -> dict[str, Any] | None:
+        """The record of model ``version``: path, schema, rows, metrics, training settings."""
+        return self._model_row("WHERE version=?", (str(version),))
+
+    def _model_row(self, where: str, args: tuple[Any, ...]) -> dict[str, Any] | None:
         row = self._conn.execute(
             "SELECT version, path, created_at, feature_schema, training_rows, metrics, settings "
-            "FROM models ORDER BY created_at DESC, rowid DESC LIMIT 1"
+            f"FROM models {where}", args
         ).fetchone()
         if row is None:
             return None

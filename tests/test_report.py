@@ -224,3 +224,50 @@ def test_unknown_round_and_no_round(built, tmp_path):
         build_report(empty, out_path=tmp_path / "r.html")
     empty.close()
     assert not (tmp_path / "r.html").exists()
+
+
+def test_an_earlier_round_keeps_the_pool_figures_it_was_proposed_on(tmp_path):
+    from prescreen.acquire.rounds import rank, train
+    from prescreen.report.build import _pool_mask
+
+    camp, proposed, _ = build_small_campaign(tmp_path / "camp", seed=1)
+    path = proposed.folder / "round.json"
+    record = json.loads(path.read_text())
+    # a later model with other settings changes today's probabilities
+    train(camp, use_open=False, n_models=2, campaign_weight=3.0, random_state=7, progress=False)
+    data = collect(camp, round_number=proposed.number, use_open=False)
+    at = record["pool_at_proposal"]
+    assert data.round.pool_size == at["size"]
+    assert data.round.pool_base_rate == at["base_rate"]
+    assert data.round.random_hits_per_core_hour == at["random_hits_per_core_hour"]
+    for row in data.proposals:
+        assert row.cost_low == record["picks"][row.id]["cost_low"]
+    ranked = rank(camp, progress=False)
+    pool = ranked[_pool_mask(ranked, set(camp.pending_ids()), set(proposed.table.index))]
+    assert float(pool["probability"].mean()) != at["base_rate"]  # so the check can fail
+    assert not any("recomputed" in n for n in data.notes)
+
+    # a round written before the pool was recorded: recomputed, and the report says so
+    del record["pool_at_proposal"]
+    path.write_text(json.dumps(record))
+    old = collect(camp, round_number=proposed.number, use_open=False,
+                  validation=data.validation)
+    assert old.round.pool_base_rate == pytest.approx(float(pool["probability"].mean()))
+    assert any("recomputed with today's model" in n for n in old.notes)
+    camp.close()
+
+
+def test_validation_rebuilds_the_table_with_the_models_training_settings(built):
+    from prescreen.acquire.rounds import load_model
+    from prescreen.report.build import _model_settings, _validation
+
+    camp = built["campaign"]
+    model, version = load_model(camp)
+    settings = _model_settings(camp, version)
+    assert settings["use_open"] is False and settings["campaign_filter"] == {}
+    kept, note = _validation(camp, model, None, None, False,
+                             settings={**settings, "campaign_filter": {"code": "GPAW"}})
+    assert note == "" and len(kept.y) == len(camp.labels())
+    none, note = _validation(camp, model, None, None, False,
+                             settings={**settings, "campaign_filter": {"code": "VASP"}})
+    assert none is None and note.startswith("validation left out")

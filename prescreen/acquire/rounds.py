@@ -628,6 +628,13 @@ def propose(
         "expected_hits_interval": [proposal.expected_hits_low, proposal.expected_hits_high],
         "interval_level": proposal.interval_level, "interval_method": proposal.interval_method,
         "after_this_round": after,
+        # What the report compares the batch with, fixed now: a later model or cost model
+        # must not rewrite the figures a round was proposed on.
+        "pool_at_proposal": _pool_summary(pool),
+        "picks": {cid: {"formula": str(pool.at[cid, "formula"]),
+                        "flags": str(pool.at[cid, "flags"] or ""),
+                        "cost_low": float(pool.at[cid, "cost_low"]),
+                        "cost_high": float(pool.at[cid, "cost_high"])} for cid in table.index},
     }, indent=2))
     return ProposedRound(number=number, table=table, folder=folder,
                          expected_hits=proposal.expected_hits,
@@ -635,6 +642,15 @@ def propose(
                                                  proposal.expected_hits_high),
                          total_cost=proposal.total_cost, budget=float(budget_core_hours),
                          strategy=proposal.strategy, after=after)
+
+
+def _pool_summary(pool: pd.DataFrame) -> dict[str, float]:
+    """Size, mean probability and random selection's hits per core-hour of a pool."""
+    p = pool["probability"].to_numpy(float)
+    cost = pool["cost_core_hours"].to_numpy(float)
+    return {"size": int(len(pool)), "base_rate": float(p.mean()) if len(p) else float("nan"),
+            "random_hits_per_core_hour": float(p.sum() / cost.sum()) if cost.sum() > 0
+            else float("nan")}
 
 
 def _stop_rule(rest: pd.DataFrame) -> dict[str, Any]:

@@ -266,7 +266,7 @@ def _round_model(campaign: Campaign, version: str):
 
 
 def out_of_fold(model: Any, X: Any, y: np.ndarray, formulas: list[str], *, n_splits: int = 5,
-                random_state: int = 0) -> np.ndarray:
+                random_state: int = 0, sample_weight: np.ndarray | None = None) -> np.ndarray:
     """Out-of-fold probabilities of a fresh copy of ``model`` under grouped folds.
 
     Parameters
@@ -277,6 +277,8 @@ def out_of_fold(model: Any, X: Any, y: np.ndarray, formulas: list[str], *, n_spl
     y : ndarray of {0, 1}, shape (n,)
     formulas : list of str, length n
         Chemistry groups, as in :func:`prescreen.validation.grouped_folds`.
+    sample_weight : ndarray, shape (n,), optional
+        Training weights (the campaign's rows weighted as in training).
 
     Returns
     -------
@@ -292,7 +294,8 @@ def out_of_fold(model: Any, X: Any, y: np.ndarray, formulas: list[str], *, n_spl
     p = np.full(len(y), np.nan)
     for tr, te in grouped_folds(formulas, n_splits=n_splits, y=y, random_state=random_state):
         fold = clone(model)
-        fold.fit(X.iloc[tr], y[tr], groups=groups[tr])
+        kw = {} if sample_weight is None else {"sample_weight": np.asarray(sample_weight)[tr]}
+        fold.fit(X.iloc[tr], y[tr], groups=groups[tr], **kw)
         p[te] = fold.predict_proba(X.iloc[te])[:, 1]
     return p
 
@@ -305,17 +308,33 @@ def trained_with_open_data(campaign: Campaign) -> bool:
     return bool(record["settings"].get("use_open", True))
 
 
+def _model_settings(campaign: Campaign, version: str) -> dict[str, Any]:
+    """Training settings recorded with model ``version`` ({} for the shipped default)."""
+    record = campaign.model_record(version) if version != "default" else None
+    return dict(record["settings"]) if record is not None else {}
+
+
 def _validation(campaign: Campaign, model: Any, model_dir: Path | None,
-                use_open: bool | None, progress: bool) -> tuple[ValidationData | None, str]:
+                use_open: bool | None, progress: bool, *,
+                settings: dict[str, Any] | None = None) -> tuple[ValidationData | None, str]:
+    """Grouped out-of-fold validation of the model's recipe on the table it was trained on.
+
+    ``settings`` are the training settings recorded with the model (``use_open``,
+    ``campaign_weight``, ``campaign_filter``), so the table is built as training built it.
+    """
     import pandas as pd
 
     from prescreen.acquire.rounds import training_table
 
+    settings = settings or {}
     if use_open is None:
-        use_open = trained_with_open_data(campaign)
+        use_open = bool(settings.get("use_open", trained_with_open_data(campaign)))
     try:
-        table = training_table(campaign, use_open=use_open, progress=progress)
-    except CampaignError as exc:
+        table = training_table(campaign, use_open=use_open,
+                               campaign_weight=float(settings.get("campaign_weight", 1.0)),
+                               campaign_filter=settings.get("campaign_filter") or None,
+                               progress=progress)
+    except (CampaignError, InputError) as exc:
         return None, f"validation left out: {exc}"
     if len(set(table.y)) < 2:
         return None, "validation left out: the training data has one class only"
@@ -326,8 +345,9 @@ def _validation(campaign: Campaign, model: Any, model_dir: Path | None,
         from sklearn.base import clone
 
         cv_table = cross_validate(lambda: clone(model), table.X, table.y, table.formulas,
-                                  progress=progress, random_state=0, label="grouped CV")
-    p = out_of_fold(model, table.X, table.y, table.formulas)
+                                  progress=progress, random_state=0, label="grouped CV",
+                                  sample_weight=table.weight)
+    p = out_of_fold(model, table.X, table.y, table.formulas, sample_weight=table.weight)
     return ValidationData(y=np.asarray(table.y), p_oof=p, cv_table=cv_table), ""
 
 
@@ -415,7 +435,7 @@ def collect(
     ReportData
     """
     from prescreen import __version__
-    from prescreen.acquire.rounds import _feature_columns, candidate_features, rank
+    from prescreen.acquire.rounds import _feature_columns, _pool_summary, candidate_features, rank
     from prescreen.explain import explain
 
     rec = _round_record(campaign, round_number)
@@ -425,9 +445,11 @@ def collect(
     ranked = rank(campaign, progress=progress)
     feats = _feature_columns(candidate_features(campaign, progress=progress))
     ids = list(stored["candidate_id"])
+    notes = []
+    recorded_picks = rec.get("picks") or {}
     rows = []
     for r in stored.itertuples():
-        info = ranked.loc[r.candidate_id]
+        info = recorded_picks.get(r.candidate_id) or ranked.loc[r.candidate_id]
         rows.append(ProposalRow(
             rank=int(r.rank), id=str(r.candidate_id), formula=str(info["formula"]),
             probability=float(r.probability), uncertainty=float(r.uncertainty),
@@ -436,7 +458,13 @@ def collect(
             reason=str(r.reason or ""), status=str(r.status)))
     picked = set(ids)
     pool = ranked[_pool_mask(ranked, set(campaign.pending_ids()), picked)]
-    base_rate = float(pool["probability"].mean())
+    at_proposal = rec.get("pool_at_proposal")
+    if at_proposal is None:
+        # rounds proposed before the pool was recorded with the round
+        at_proposal = _pool_summary(pool)
+        notes.append("the pool figures of this round were recomputed with today's model and "
+                     "cost model (the round did not record them)")
+    base_rate = float(at_proposal["base_rate"])
     total = float(rec["total_cost_core_hours"])
     summary = RoundSummary(
         number=number, strategy=str(rec["strategy"]), seed=rec.get("seed"),
@@ -446,18 +474,18 @@ def collect(
                                 float(rec["expected_hits_interval"][1])),
         interval_level=float(rec.get("interval_level", float("nan"))),
         interval_method=str(rec.get("interval_method", "")),
-        n_picks=len(ids), pool_size=len(pool), pool_base_rate=base_rate,
+        n_picks=len(ids), pool_size=int(at_proposal["size"]), pool_base_rate=base_rate,
         random_expected_hits=base_rate * len(ids),
         hits_per_core_hour=float(rec["expected_hits"]) / total if total > 0 else float("nan"),
-        random_hits_per_core_hour=float(pool["probability"].sum() / pool["cost_core_hours"].sum()),
+        random_hits_per_core_hour=float(at_proposal["random_hits_per_core_hour"]),
         after=rec.get("after_this_round"),
     )
     explanation = explain(model, feats.loc[ids])
     sample = pool.index[_even_sample(len(pool), GLOBAL_SHAP_ROWS)]
     global_explanation = explain(model, feats.loc[sample])
-    notes = []
     if validation is None:
-        validation, note = _validation(campaign, model, model_dir, use_open, progress)
+        validation, note = _validation(campaign, model, model_dir, use_open, progress,
+                                       settings=_model_settings(campaign, summary.model))
         if note:
             notes.append(note)
     status = campaign.status()
