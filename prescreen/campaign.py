@@ -90,7 +90,8 @@ CREATE TABLE IF NOT EXISTS results (
     functional TEXT, code TEXT, kmesh TEXT, core_hours REAL, notes TEXT,
     source TEXT NOT NULL,
     ingested_at TEXT NOT NULL,
-    active INTEGER NOT NULL DEFAULT 1
+    active INTEGER NOT NULL DEFAULT 1,
+    gap_soc_eV REAL
 );
 CREATE INDEX IF NOT EXISTS results_candidate ON results(candidate_id, active);
 CREATE TABLE IF NOT EXISTS rounds (
@@ -218,10 +219,13 @@ class Campaign:
 
     def _upgrade(self) -> None:
         """Add columns that later releases of the same store format introduced."""
-        columns = {row[1] for row in self._conn.execute("PRAGMA table_info(models)")}
-        if "settings" not in columns:
-            with self._transaction() as conn:
-                conn.execute("ALTER TABLE models ADD COLUMN settings TEXT NOT NULL DEFAULT '{}'")
+        added = {"models": ("settings", "TEXT NOT NULL DEFAULT '{}'"),
+                 "results": ("gap_soc_eV", "REAL")}
+        for table, (column, kind) in added.items():
+            columns = {row[1] for row in self._conn.execute(f"PRAGMA table_info({table})")}
+            if column not in columns:
+                with self._transaction() as conn:
+                    conn.execute(f"ALTER TABLE {table} ADD COLUMN {column} {kind}")
 
     # ------------------------------------------------------------------ opening
     @staticmethod
@@ -510,10 +514,10 @@ class Campaign:
                     report.rejections.append(rej)
                     continue
                 old = conn.execute(
-                    "SELECT seq, spillage FROM results WHERE candidate_id=? AND active=1",
-                    (row.id,),
+                    "SELECT seq, spillage, gap_soc_eV FROM results"
+                    " WHERE candidate_id=? AND active=1", (row.id,),
                 ).fetchone()
-                if old is not None and old[1] == row.spillage:
+                if old is not None and (old[1], old[2]) == (row.spillage, row.gap_soc_eV):
                     report.unchanged += 1
                     continue
                 if old is not None:
@@ -522,10 +526,14 @@ class Campaign:
                         continue
                     if on_conflict == "error":
                         rej = Rejection(
-                            path=path, line=line, value=f"{row.id}={row.spillage!r}",
-                            reason=f"conflicts with the stored spillage {old[1]!r} for this "
-                            "ID; expected the same value, or choose on_conflict "
-                            "'keep' or 'replace'",
+                            path=path, line=line, value=f"{row.id}={row.spillage!r}"
+                            + (f" (gap_soc_eV {row.gap_soc_eV!r})" if old[1] == row.spillage
+                               else ""),
+                            reason=("conflicts with the stored "
+                                    + (f"spillage {old[1]!r}" if old[1] != row.spillage
+                                       else f"gap_soc_eV {old[2]!r}")
+                                    + " for this ID; expected the same value, or choose "
+                                    "on_conflict 'keep' or 'replace'"),
                         )
                         self._record_rejection(conn, "result", rej, now)
                         report.rejections.append(rej)
@@ -536,9 +544,10 @@ class Campaign:
                     report.added += 1
                 conn.execute(
                     "INSERT INTO results (candidate_id, spillage, functional, code, kmesh,"
-                    " core_hours, notes, source, ingested_at) VALUES (?,?,?,?,?,?,?,?,?)",
+                    " core_hours, notes, source, ingested_at, gap_soc_eV)"
+                    " VALUES (?,?,?,?,?,?,?,?,?,?)",
                     (row.id, row.spillage, row.functional, row.code, row.kmesh,
-                     row.core_hours, row.notes, row.source, now),
+                     row.core_hours, row.notes, row.source, now, row.gap_soc_eV),
                 )
                 conn.execute(
                     "UPDATE proposals SET status='done' WHERE candidate_id=? AND status='pending'",
@@ -554,7 +563,7 @@ class Campaign:
 
         return pd.read_sql_query(
             "SELECT candidate_id AS id, spillage, functional, code, kmesh, core_hours,"
-            " notes, source, ingested_at FROM results WHERE active=1 ORDER BY seq",
+            " gap_soc_eV, notes, source, ingested_at FROM results WHERE active=1 ORDER BY seq",
             self._conn,
         ).set_index("id")
 

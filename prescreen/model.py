@@ -836,6 +836,7 @@ class SpillageClassifier(ClassifierMixin, _BoostedEnsemble, BaseEstimator):
         training_data_hash: str | None = None,
         metrics: dict | None = None,
         threshold: float = 0.5,
+        min_gap_eV: float | None = None,
     ) -> None:
         """Write the model as a folder of LightGBM text models plus ``metadata.json``.
 
@@ -852,6 +853,9 @@ class SpillageClassifier(ClassifierMixin, _BoostedEnsemble, BaseEstimator):
             JSON-serialisable validation metrics to keep with the model.
         threshold
             Spillage value that defined the positive label.
+        min_gap_eV
+            Band gap with spin-orbit coupling (eV) a positive also needed; None when the
+            spillage alone defined the label.
 
         Notes
         -----
@@ -861,6 +865,7 @@ class SpillageClassifier(ClassifierMixin, _BoostedEnsemble, BaseEstimator):
         extra = {
             "classes": [_plain(c) for c in self.classes_],
             "threshold": float(threshold),
+            "min_gap_eV": None if min_gap_eV is None else float(min_gap_eV),
             "calibration_method": self.calibration_method_,
             "calibration_scores": self.calibration_scores_,
             "calibrators": [c.to_dict() for c in self.calibrators_],
@@ -895,6 +900,8 @@ class SpillageClassifier(ClassifierMixin, _BoostedEnsemble, BaseEstimator):
             model.calibration_scores_ = dict(meta["calibration_scores"])
             model.calibrators_ = [Calibrator.from_dict(c) for c in meta["calibrators"]]
             model.threshold_ = float(meta["threshold"])
+            gap = meta.get("min_gap_eV")  # absent from files written before it existed
+            model.min_gap_eV_ = None if gap is None else float(gap)
         except (KeyError, TypeError, ValueError) as exc:
             raise InputError(f"damaged model file: {type(exc).__name__}: {exc}", path=meta_path) from exc
         if len(model.members_) != len(model.calibrators_):

@@ -210,14 +210,25 @@ def test_killed_ingest_leaves_store_exactly_as_before(campaign, tmp_path):
     conn.close()
 
 
-def test_store_without_model_settings_column_is_upgraded_on_open(campaign):
-    # A store written before models recorded their settings gains the column on open.
+def _store_settings(camp):
+    camp.record_model("m1", "models/m1", feature_schema="s", training_rows=1, metrics={},
+                      settings={"use_open": False})
+    assert camp.latest_model()["settings"] == {"use_open": False}
+
+
+def _store_gap(camp):
+    assert "gap_soc_eV" in camp.labels().columns
+
+
+@pytest.mark.parametrize(("table", "column", "check"), [
+    ("models", "settings", _store_settings),  # models before they recorded their settings
+    ("results", "gap_soc_eV", _store_gap),  # results before they could carry a gap
+])
+def test_store_from_an_earlier_release_is_upgraded_on_open(campaign, table, column, check):
     path = campaign.path
     campaign.close()
     conn = sqlite3.connect(path / DB_NAME)
-    conn.executescript("ALTER TABLE models DROP COLUMN settings;")
+    conn.executescript(f"ALTER TABLE {table} DROP COLUMN {column};")
     conn.close()
     with Campaign.open(path) as again:
-        again.record_model("m1", "models/m1", feature_schema="s", training_rows=1, metrics={},
-                           settings={"use_open": False})
-        assert again.latest_model()["settings"] == {"use_open": False}
+        check(again)

@@ -78,3 +78,21 @@ def test_each_command_help_is_its_module_docstring():
     for name, module in COMMANDS.items():
         doc = importlib.import_module(f"prescreen.cli.{module}").__doc__
         assert HELP[name] == doc.strip().splitlines()[0]
+
+
+def test_tables_go_to_the_stdout_of_the_call_not_of_the_import():
+    # a notebook or a test capture may replace (and close) sys.stdout after the import
+    import contextlib
+    import importlib
+    import io
+
+    from prescreen.cli import _render
+
+    at_import = io.StringIO()
+    with contextlib.redirect_stdout(at_import):
+        render = importlib.reload(_render)
+    at_import.close()
+    now = io.StringIO()
+    with contextlib.redirect_stdout(now):
+        render.print_table([("added", 3)])
+    assert now.getvalue() == "  added  3\n"

@@ -143,3 +143,12 @@ def test_json_top_level_must_be_list(tmp_path):
     path.write_text(json.dumps({"id": "A", "spillage": 0.1}))
     with pytest.raises(InputError, match="JSON document is not a list of results"):
         read_results(path)
+
+
+def test_gap_column_is_read_and_checked(tmp_path):
+    path = tmp_path / "gaps.csv"
+    path.write_text("id,spillage,gap_soc_eV\nA,0.7,0.0\nB,0.6,0.12\nC,0.1,-1\nD,0.2,\n")
+    rows, rejections = read_results(path)
+    assert [(r.id, r.gap_soc_eV) for r in rows] == [("A", 0.0), ("B", 0.12), ("D", None)]
+    (bad,) = rejections
+    assert bad.line == 4 and bad.value == "-1" and "gap_soc_eV is negative" in bad.reason

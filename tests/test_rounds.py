@@ -262,3 +262,46 @@ def test_a_filter_that_matches_nothing_names_the_values_present(trained):
     with pytest.raises(InputError, match=r"no result has functional=pbe.*'PBE'"):
         rounds.training_table(camp, use_open=False, progress=False,
                               campaign_filter={"functional": "pbe"})
+
+
+def test_requiring_a_gap_without_gaps_names_the_rows(trained):
+    camp, _ = trained
+    missing = int(camp.labels()["gap_soc_eV"].isna().sum())
+    assert missing > 0
+    with pytest.raises(InputError, match=rf"{missing} labelled rows have no gap_soc_eV") as err:
+        rounds.training_table(camp, use_open=False, min_gap_eV=0.02, progress=False)
+    assert "campaign:" in str(err.value)
+
+
+def test_a_gap_requirement_turns_gapless_high_spillage_negative(tmp_path, capsys):
+    """Metals with a high spillage stop counting as hits once a gap is required."""
+    from prescreen.cli.main import main
+    from prescreen.model import SpillageClassifier
+
+    camp = _new_campaign(tmp_path / "camp")
+    items = _structures()
+    camp.add_candidates([Candidate(cid, f, f"gen:{i}", s) for i, (cid, f, s) in enumerate(items)])
+    rows, expected = [], {}
+    for i, (cid, _, s) in enumerate(items):
+        spill = _rule(s)
+        gap = 0.0 if (spill > 0.5 and i % 3 == 0) else 0.3  # every third heavy one a metal
+        rows.append(ResultRow(id=cid, spillage=spill, gap_soc_eV=gap, source=f"r.csv:{i + 2}"))
+        expected[cid] = int(spill >= 0.5 and gap >= 0.02)
+    camp.ingest_results((rows, []))
+    assert camp.labels()["gap_soc_eV"].notna().all()
+    plain = rounds.training_table(camp, use_open=False, progress=False)
+    gapped = rounds.training_table(camp, use_open=False, min_gap_eV=0.02, progress=False)
+    assert list(gapped.y) == [expected[i] for i in gapped.X.index]
+    assert 0 < gapped.y.sum() < plain.y.sum()
+    assert (gapped.y <= plain.y).all()
+    camp.close()
+
+    assert main(["train", str(tmp_path / "camp"), "--no-open-data", "--min-gap", "0.02",
+                 "--models", "2", "--no-progress"]) == 0
+    out = capsys.readouterr().out
+    assert f"({int(gapped.y.sum())} positive: spillage >= 0.5 and band gap with SOC >= 0.02 eV)" in out
+    with Campaign.open(tmp_path / "camp") as again:
+        record = again.latest_model()
+        assert record["settings"]["min_gap_eV"] == 0.02
+        model = SpillageClassifier.load(again.path / record["path"])
+    assert model.min_gap_eV_ == 0.02

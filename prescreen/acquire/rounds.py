@@ -43,6 +43,7 @@ __all__ = [
     "load_open_labelled",
     "candidate_features",
     "training_table",
+    "positive_rule",
     "train",
     "load_model",
     "rank",
@@ -79,7 +80,7 @@ def load_open_labelled(path: str | Path | None = None) -> pd.DataFrame:
     -------
     pandas.DataFrame
         Index ``id``; columns ``formula`` (reduced), ``prototype``, ``spillage``,
-        ``core_hours``, ``structure`` (pymatgen ``Structure``), ``n_atoms``.
+        ``gap_soc_eV``, ``core_hours``, ``structure`` (pymatgen ``Structure``), ``n_atoms``.
     """
     import pandas as pd
 
@@ -93,7 +94,8 @@ def load_open_labelled(path: str | Path | None = None) -> pd.DataFrame:
     df = df[df["spillage"].notna()].copy()
     df["structure"] = [structure_from_row(row) for row in df.to_dict("records")]
     df = df.rename(columns={"reduced_formula": "formula"})
-    keep = ["id", "formula", "prototype", "spillage", "core_hours", "n_atoms", "structure"]
+    keep = ["id", "formula", "prototype", "spillage", "gap_soc_eV", "core_hours", "n_atoms",
+            "structure"]
     return df[keep].set_index("id")
 
 
@@ -123,7 +125,8 @@ class TrainingTable:
         Features (the ``error`` column removed).
     spillage : ndarray, shape (n,)
     y : ndarray of int, shape (n,)
-        ``spillage >= threshold``.
+        ``spillage >= threshold``, and ``gap_soc_eV >= min_gap_eV`` when a gap is
+        required.
     weight : ndarray, shape (n,)
     formulas : list of str, length n
         For grouped validation folds.
@@ -131,6 +134,10 @@ class TrainingTable:
         ``"open"`` or ``"campaign"``.
     core_hours : ndarray, shape (n,)
         Recorded cost of each label (NaN where the result did not say).
+    gap_soc_eV : ndarray, shape (n,)
+        Band gap with spin-orbit coupling (NaN where the result did not say).
+    min_gap_eV : float or None
+        The gap a positive needed (None: spillage alone decides).
     """
 
     X: Any
@@ -141,6 +148,8 @@ class TrainingTable:
     origin: np.ndarray
     threshold: float
     core_hours: np.ndarray
+    gap_soc_eV: np.ndarray
+    min_gap_eV: float | None = None
 
     def __len__(self) -> int:
         return len(self.y)
@@ -160,6 +169,7 @@ def training_table(
     data_open: str | Path | None = None,
     threshold: float | None = None,
     campaign_filter: dict[str, str] | None = None,
+    min_gap_eV: float | None = None,
     progress: bool = True,
 ) -> TrainingTable:
     """Join the open labelled data and the campaign's own results into one table.
@@ -178,6 +188,11 @@ def training_table(
     campaign_filter
         Keep only the campaign's results whose provenance matches every item, e.g.
         ``{"functional": "PBE"}``; keys among :data:`FILTER_KEYS`.
+    min_gap_eV
+        Count a row as positive only if its band gap with spin-orbit coupling is at least
+        this (eV) as well: a high spillage in a metal comes from states crossing the
+        Fermi level, not from an inversion across a gap. Every row then needs a
+        ``gap_soc_eV``; rows without one are an error naming them.
     """
     import pandas as pd
 
@@ -186,9 +201,12 @@ def training_table(
     if not campaign_weight > 0:
         raise InputError("campaign_weight must be positive", value=campaign_weight,
                          expected="a number > 0")
+    if min_gap_eV is not None and not (np.isfinite(min_gap_eV) and min_gap_eV >= 0):
+        raise InputError("min_gap_eV must be a finite number >= 0", value=min_gap_eV,
+                         expected="a band gap in eV, e.g. 0.02")
     if threshold is None:
         threshold = campaign.threshold if campaign is not None else SPILLAGE_THRESHOLD
-    parts, spill, weights, formulas, origin, hours = [], [], [], [], [], []
+    parts, spill, weights, formulas, origin, hours, gaps = [], [], [], [], [], [], []
     if use_open:
         open_df = load_open_labelled(data_open)
         feats = _feature_columns(_featurise_frame(list(open_df["formula"]),
@@ -196,6 +214,7 @@ def training_table(
         feats.index = open_df.index
         parts.append(feats)
         spill.append(open_df["spillage"].to_numpy(float))
+        gaps.append(open_df["gap_soc_eV"].to_numpy(float))
         hours.append(open_df["core_hours"].to_numpy(float))
         weights.append(np.ones(len(open_df)))
         formulas += list(open_df["formula"])
@@ -207,6 +226,7 @@ def training_table(
             feats = feats.loc[labels.index]
             parts.append(feats)
             spill.append(labels["spillage"].to_numpy(float))
+            gaps.append(pd.to_numeric(labels["gap_soc_eV"], errors="coerce").to_numpy(float))
             hours.append(pd.to_numeric(labels["core_hours"], errors="coerce").to_numpy(float))
             weights.append(np.full(len(labels), float(campaign_weight)))
             frame = campaign.candidates_frame()
@@ -216,10 +236,30 @@ def training_table(
         raise CampaignError("no labelled data to train on: ingest results or use the open data")
     X = pd.concat(parts)
     spillage = np.concatenate(spill)
-    return TrainingTable(X=X, spillage=spillage, y=(spillage >= threshold).astype(int),
+    gap = np.concatenate(gaps)
+    y = spillage >= threshold
+    if min_gap_eV is not None:
+        missing = ~np.isfinite(gap)
+        if missing.any():
+            ids = [f"{o}:{i}" for o, i in zip(np.asarray(origin)[missing], X.index[missing])]
+            raise InputError(
+                f"{int(missing.sum())} labelled rows have no gap_soc_eV, needed to require a "
+                f"gap of {min_gap_eV:g} eV", value=", ".join(ids[:5]) + (" ..." if len(ids) > 5 else ""),
+                expected="a gap_soc_eV column in the results, or no min_gap_eV")
+        y &= gap >= min_gap_eV
+    return TrainingTable(X=X, spillage=spillage, y=y.astype(int),
                          weight=np.concatenate(weights), formulas=formulas,
                          origin=np.asarray(origin), threshold=float(threshold),
-                         core_hours=np.concatenate(hours))
+                         core_hours=np.concatenate(hours), gap_soc_eV=gap,
+                         min_gap_eV=None if min_gap_eV is None else float(min_gap_eV))
+
+
+def positive_rule(threshold: float, min_gap_eV: float | None = None) -> str:
+    """What made a label positive, in words: ``"spillage >= 0.5"`` [``" and ... gap"``]."""
+    rule = f"spillage >= {threshold:g}"
+    if min_gap_eV is not None:
+        rule += f" and band gap with SOC >= {min_gap_eV:g} eV"
+    return rule
 
 
 #: Provenance columns of a result that ``campaign_filter`` can select on.
@@ -326,23 +366,25 @@ def train(
     random_state: int = DEFAULT_SEED,
     data_open: str | Path | None = None,
     campaign_filter: dict[str, str] | None = None,
+    min_gap_eV: float | None = None,
     progress: bool = True,
 ) -> TrainedModel:
     """Train, validate and store a model for the campaign (a new version each call).
 
-    See :func:`training_table` for ``use_open``, ``campaign_weight`` and
-    ``campaign_filter``; the settings are recorded with the model.
+    See :func:`training_table` for ``use_open``, ``campaign_weight``,
+    ``campaign_filter`` and ``min_gap_eV``; the settings are recorded with the model.
     """
     from prescreen.featurise import schema_version
     from prescreen.model import training_data_hash
 
     table = training_table(campaign, use_open=use_open, campaign_weight=campaign_weight,
                            data_open=data_open, campaign_filter=campaign_filter,
-                           progress=progress)
+                           min_gap_eV=min_gap_eV, progress=progress)
     if len(set(table.y)) < 2:
         raise CampaignError(
             f"training data has only one class ({len(table)} rows, all "
-            f"{'positive' if table.y[0] else 'negative'} at spillage >= {table.threshold:g}); "
+            f"{'positive' if table.y[0] else 'negative'} at "
+            f"{positive_rule(table.threshold, table.min_gap_eV)}); "
             "a classifier needs both"
         )
     model, cv = fit_and_validate(table, n_models=n_models, random_state=random_state,
@@ -354,13 +396,14 @@ def train(
     path = campaign.path / "models" / version
     model.save(path, feature_schema=schema_version(),
                training_data_hash=training_data_hash(table.X, table.y, table.weight),
-               metrics=metrics, threshold=table.threshold)
+               metrics=metrics, threshold=table.threshold, min_gap_eV=table.min_gap_eV)
     cv.to_csv(path / "grouped_cv.csv")
     campaign.record_model(version, path.relative_to(campaign.path),
                           feature_schema=schema_version(), training_rows=len(table),
                           metrics=metrics,
                           settings={"use_open": use_open, "campaign_weight": campaign_weight,
                                     "campaign_filter": campaign_filter or {},
+                                    "min_gap_eV": min_gap_eV,
                                     "n_models": n_models, "random_state": random_state})
     return TrainedModel(version=version, path=path, n_rows=len(table),
                         n_positive=int(table.y.sum()), metrics=metrics, cv_table=cv)
@@ -739,7 +782,8 @@ def label_pending(
             id=cid, spillage=float(rec.spillage), functional=str(rec.settings.get("xc", "PBE")),
             code=f"GPAW {rec.versions.get('gpaw', '')}".strip(),
             kmesh="x".join(str(k) for k in kmesh) if kmesh else None,
-            core_hours=float(rec.core_hours), notes="prescreen DFT labeller (LCAO, non-self-"
+            core_hours=float(rec.core_hours), gap_soc_eV=float(rec.gap_soc_eV),
+            notes="prescreen DFT labeller (LCAO, non-self-"
             "consistent spin-orbit coupling)", source=f"{out_dir / 'records.jsonl'}:{cid}",
         ))
     report = campaign.ingest_results((rows, []), on_conflict="keep")
@@ -767,9 +811,12 @@ def replay_labelled(
     n_rounds: int = 8,
     min_rows: int = MIN_REPLAY_ROWS,
     min_positives: int = MIN_REPLAY_POSITIVES,
+    min_gap_eV: float | None = None,
     progress: bool = True,
 ) -> Any:
     """Replay campaigns on the labelled data (open plus the campaign's) for the report.
+
+    A hit is a positive label of :func:`training_table` (``min_gap_eV`` as there).
 
     Each strategy, plus random selection, starts from 10 % of the rows at random and
     picks rounds of 10 % of the total recorded cost. Rows without a recorded cost are
@@ -787,7 +834,7 @@ def replay_labelled(
     from prescreen.acquire.replay import replay
     from prescreen.report import ReplayCurves
 
-    table = training_table(campaign, use_open=use_open, progress=progress)
+    table = training_table(campaign, use_open=use_open, min_gap_eV=min_gap_eV, progress=progress)
     if len(table) < min_rows or int(table.y.sum()) < min_positives:
         return None
     cost = table.core_hours.copy()

@@ -14,10 +14,14 @@ __all__ = ["print_rejections", "print_table"]
 SHOWN_REJECTIONS = 20
 
 
-def print_rejections(rejections: Sequence[Rejection], *, stream: TextIO = sys.stderr,
+def print_rejections(rejections: Sequence[Rejection], *, stream: TextIO | None = None,
                      campaign: str | None = None) -> None:
+    """List rejections in file and line order (``stream``: standard error when None)."""
     if not rejections:
         return
+    # sys.stderr is looked up per call: a default bound at import would keep a stream
+    # that a caller (a notebook, a test's capture) has since replaced or closed
+    stream = sys.stderr if stream is None else stream
 
     def where(rej: Rejection) -> tuple:
         line = rej.line
@@ -35,7 +39,9 @@ def print_rejections(rejections: Sequence[Rejection], *, stream: TextIO = sys.st
         print(f"  ... and {more} more{hint}", file=stream)
 
 
-def print_table(rows: Sequence[tuple[str, object]], *, stream: TextIO = sys.stdout) -> None:
+def print_table(rows: Sequence[tuple[str, object]], *, stream: TextIO | None = None) -> None:
+    """Two aligned columns (``stream``: standard output when None, looked up per call)."""
+    stream = sys.stdout if stream is None else stream
     width = max((len(k) for k, _ in rows), default=0)
     for key, value in rows:
         print(f"  {key:<{width}}  {value}", file=stream)

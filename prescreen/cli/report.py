@@ -36,7 +36,10 @@ def run(args: argparse.Namespace) -> int:
         if args.replay:
             from prescreen.acquire.rounds import replay_labelled
 
-            curves = replay_labelled(campaign)
+            record = campaign.latest_model()
+            settings = record["settings"] if record is not None else {}
+            curves = replay_labelled(campaign, use_open=bool(settings.get("use_open", True)),
+                                     min_gap_eV=settings.get("min_gap_eV"))
             if curves is None:
                 print("replay skipped: too few labelled rows or positives")
         path = build_report(campaign, out_path=out, round_number=number,

@@ -17,13 +17,17 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--only", action="append", default=[], metavar="KEY=VALUE",
                         help="use only the campaign's results whose provenance matches, e.g. "
                         "--only functional=PBE (keys: functional, code, kmesh; repeatable)")
+    parser.add_argument("--min-gap", type=float, default=None, metavar="EV",
+                        help="count a label as positive only if its band gap with spin-orbit "
+                        "coupling is at least EV as well (a high spillage in a metal is not an "
+                        "inversion across a gap); every result then needs gap_soc_eV")
     parser.add_argument("--models", type=int, default=5, help="ensemble members")
     parser.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
     parser.add_argument("--no-progress", action="store_true", help="hide progress bars")
 
 
 def run(args: argparse.Namespace) -> int:
-    from prescreen.acquire.rounds import train
+    from prescreen.acquire.rounds import positive_rule, train
     from prescreen.campaign import Campaign
     from prescreen.cli._render import print_table
 
@@ -42,9 +46,11 @@ def run(args: argparse.Namespace) -> int:
         result = train(campaign, use_open=not args.no_open_data,
                        campaign_weight=args.campaign_weight, campaign_filter=only,
                        n_models=args.models, random_state=args.seed,
-                       progress=not args.no_progress)
+                       min_gap_eV=args.min_gap, progress=not args.no_progress)
+        rule = positive_rule(campaign.threshold, args.min_gap)
     m = result.metrics
-    print(f"trained {result.version} on {result.n_rows} rows ({result.n_positive} positive)")
+    print(f"trained {result.version} on {result.n_rows} rows ({result.n_positive} positive: "
+          f"{rule})")
     n_folds = len(result.cv_table) - 3  # per-fold rows, then mean, std and pooled
     if n_folds > 0:
         print(f"grouped {n_folds}-fold cross-validation (mean over folds):")

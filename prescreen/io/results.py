@@ -12,6 +12,8 @@ name           required   meaning
 ``code``       no         DFT code that produced it
 ``kmesh``      no         k-point mesh, three positive integers (``12x12x1``)
 ``core_hours`` no         CPU cost, a finite number >= 0 (core hours)
+``gap_soc_eV`` no         band gap with spin-orbit coupling, eV (0 for a metal);
+                          lets a model require a gap (``min_gap_eV``)
 ``notes``      no         free text
 =============  =========  =====================================================
 
@@ -35,12 +37,14 @@ from prescreen.io.ids import validate_id
 __all__ = ["RESULT_COLUMNS", "ResultRow", "read_results", "unknown_ids"]
 
 #: Canonical column names, in output order.
-RESULT_COLUMNS: tuple[str, ...] = ("id", "spillage", "functional", "code", "kmesh", "core_hours", "notes")
+RESULT_COLUMNS: tuple[str, ...] = ("id", "spillage", "functional", "code", "kmesh", "core_hours",
+                                   "gap_soc_eV", "notes")
 
 _ALIASES = {
     "id": "id", "spillage": "spillage", "functional": "functional", "code": "code",
     "kmesh": "kmesh", "k_mesh": "kmesh", "k-mesh": "kmesh",
     "core_hours": "core_hours", "core-hours": "core_hours", "notes": "notes",
+    "gap_soc_ev": "gap_soc_eV",
 }
 _KMESH = re.compile(r"\s*(\d+)\s*[x×, ]\s*(\d+)\s*[x×, ]\s*(\d+)\s*")
 
@@ -61,6 +65,8 @@ class ResultRow:
         Optional metadata (``kmesh`` normalised to ``"AxBxC"``); ``None`` when absent.
     core_hours
         CPU cost of the calculation in core hours, or ``None``.
+    gap_soc_eV
+        Band gap with spin-orbit coupling (eV; 0 for a metal), or ``None``.
     source
         ``"path:line"`` (CSV) or ``"path:[index]"`` (JSON) of the row.
     """
@@ -73,10 +79,12 @@ class ResultRow:
     core_hours: float | None = None
     notes: str | None = None
     source: str = ""
+    gap_soc_eV: float | None = None
 
     def values(self) -> tuple[Any, ...]:
         """Everything except ``source``: two rows with equal values say the same thing."""
-        return (self.id, self.spillage, self.functional, self.code, self.kmesh, self.core_hours, self.notes)
+        return (self.id, self.spillage, self.functional, self.code, self.kmesh, self.core_hours,
+                self.notes, self.gap_soc_eV)
 
 
 def _number(raw: Any, name: str, *, path: Path, line: int | str, required: bool) -> float | None:
@@ -109,6 +117,7 @@ def _row(fields: dict[str, Any], *, path: Path, line: int | str, source: str) ->
     ident = validate_id(str(fields.get("id") or ""), path=path, line=line)
     spillage = _number(fields.get("spillage"), "spillage", path=path, line=line, required=True)
     core_hours = _number(fields.get("core_hours"), "core_hours", path=path, line=line, required=False)
+    gap = _number(fields.get("gap_soc_eV"), "gap_soc_eV", path=path, line=line, required=False)
     kmesh = _text(fields.get("kmesh"))
     if kmesh is not None:
         match = _KMESH.fullmatch(kmesh)
@@ -119,7 +128,7 @@ def _row(fields: dict[str, Any], *, path: Path, line: int | str, source: str) ->
     assert spillage is not None
     return ResultRow(id=ident, spillage=spillage, functional=_text(fields.get("functional")),
                      code=_text(fields.get("code")), kmesh=kmesh, core_hours=core_hours,
-                     notes=_text(fields.get("notes")), source=source)
+                     notes=_text(fields.get("notes")), source=source, gap_soc_eV=gap)
 
 
 def _canonical_names(names: Iterable[str], *, path: Path, line: int | str) -> tuple[dict[str, str], list[str]]:
@@ -157,7 +166,7 @@ def _require(mapping: dict[str, str], path: Path) -> None:
     for needed in ("id", "spillage"):
         if needed not in mapping.values():
             raise InputError(f"no {needed!r} column", path=path, line=1, value=", ".join(mapping) or "",
-                             expected="columns id and spillage (optional: functional, code, kmesh, core_hours, notes)")
+                             expected="columns id and spillage (optional: " + ", ".join(RESULT_COLUMNS[2:]) + ")")
 
 
 def _iter_json(path: Path) -> Iterable[tuple[int | str, str, dict[str, Any]] | Rejection]:

@@ -230,6 +230,8 @@ class ReportData:
     cautions: tuple[str, ...] = CAUTIONS
     replay: ReplayCurves | None = None
     notes: tuple[str, ...] = field(default_factory=tuple)
+    #: What a hit is, in words (see :func:`prescreen.acquire.rounds.positive_rule`).
+    positive_rule: str = ""
 
 
 # ------------------------------------------------------------------------------ helpers
@@ -333,7 +335,7 @@ def _validation(campaign: Campaign, model: Any, model_dir: Path | None,
         table = training_table(campaign, use_open=use_open,
                                campaign_weight=float(settings.get("campaign_weight", 1.0)),
                                campaign_filter=settings.get("campaign_filter") or None,
-                               progress=progress)
+                               min_gap_eV=settings.get("min_gap_eV"), progress=progress)
     except (CampaignError, InputError) as exc:
         return None, f"validation left out: {exc}"
     if len(set(table.y)) < 2:
@@ -435,7 +437,8 @@ def collect(
     ReportData
     """
     from prescreen import __version__
-    from prescreen.acquire.rounds import _feature_columns, _pool_summary, candidate_features, rank
+    from prescreen.acquire.rounds import (_feature_columns, _pool_summary, candidate_features,
+                                          positive_rule, rank)
     from prescreen.explain import explain
 
     rec = _round_record(campaign, round_number)
@@ -507,6 +510,7 @@ def collect(
         spent_core_hours=float(np.sum(costs)) if len(costs) else 0.0,
         n_costed_results=int(len(costs)), cost_model=cost_model,
         provenance=_provenance(campaign, used_open), replay=replay_curves, notes=tuple(notes),
+        positive_rule=positive_rule(campaign.threshold, getattr(model, "min_gap_eV_", None)),
     )
 
 
