@@ -27,7 +27,9 @@ pack
     datasheet ``README.md`` (every number computed here) and ``MANIFEST.json`` (SHA-256
     of every shipped file).
 all
-    pool, then batches of relax + label + pack until ``--limit`` is reached.
+    pool, then relaxations and labels as one stream (:func:`pipeline_stage`: a free
+    worker labels a finished relaxation first, so no core waits for a batch), packing
+    after every ``--batch`` new labels, until ``--limit`` is reached.
 
 Everything is checkpointed per structure: killing the command (even ``kill -9``) loses
 at most the structures in progress, and rerunning it skips what is done.
@@ -49,7 +51,7 @@ import time
 import traceback
 from collections import Counter, defaultdict
 from pathlib import Path
-from typing import TYPE_CHECKING, Any, Iterable, Sequence
+from typing import TYPE_CHECKING, Any, Iterable, NamedTuple, Sequence
 
 import numpy as np
 
@@ -82,6 +84,7 @@ __all__ = [
     "stratified_order",
     "build_pool",
     "relax_stage",
+    "pipeline_stage",
     "label_stage",
     "pack_stage",
     "main",
@@ -328,6 +331,75 @@ def _relax_one(ident: str, row: dict[str, Any], kpt_density: float, result_path:
     os.replace(tmp, result_path)
 
 
+class _Job(NamedTuple):
+    """One child process: a relaxation or a labelling of one structure."""
+
+    kind: str  # "relax" or "label"
+    ident: str
+    process: Any
+    started: float
+    result: Path
+
+
+def _label_one(ident: str, payload: dict[str, Any], result_path: str) -> None:
+    """Child process: label one relaxed structure and write its record as JSON."""
+    from prescreen.physics.dft import LabelRecord, LabelSettings, label_structure
+
+    os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+    t0 = time.perf_counter()
+    settings = LabelSettings()
+    try:
+        rec = label_structure(structure_from_row(payload), settings, id=ident)
+    except Exception as exc:  # recorded, not raised: one failure must not stop the run
+        rec = LabelRecord.failed(ident, str(payload.get("formula", "?")), settings,
+                                 f"{type(exc).__name__}: {exc}", time.perf_counter() - t0)
+    tmp = result_path + ".tmp"
+    with open(tmp, "w", encoding="utf-8") as fh:
+        json.dump(rec.as_dict(), fh)
+    os.replace(tmp, result_path)
+
+
+def _start(kind: str, ident: str, payload: dict[str, Any], tmpdir: Path,
+           kpt_density: float) -> _Job:
+    """Fork a child for one job; its result lands in ``<tmpdir>/<kind>-<id>.json``."""
+    result = tmpdir / f"{kind}-{ident}.json"
+    result.unlink(missing_ok=True)
+    if kind == "relax":
+        target, args = _relax_one, (ident, payload, kpt_density, str(result))
+    else:
+        target, args = _label_one, (ident, payload, str(result))
+    proc = mp.get_context("fork").Process(target=target, args=args)
+    proc.start()
+    return _Job(kind, ident, proc, time.perf_counter(), result)
+
+
+def _finished(job: _Job, timeout_s: float) -> dict[str, Any] | None:
+    """The job's result once its process has ended (killed after ``timeout_s``), else None.
+
+    A child that left no result (timeout, crash, out of memory) gives
+    ``{"status": "failed", "reason": ...}``.
+    """
+    elapsed = time.perf_counter() - job.started
+    if job.process.is_alive() and elapsed < timeout_s:
+        return None
+    if job.process.is_alive():
+        job.process.kill()
+    job.process.join()
+    if job.result.exists():
+        rec = json.loads(job.result.read_text(encoding="utf-8"))
+        job.result.unlink()
+        return rec
+    why = (f"timeout after {timeout_s:.0f} s" if elapsed >= timeout_s
+           else f"worker died with exit code {job.process.exitcode}")
+    return {"id": job.ident, "status": "failed", "reason": why, "wall_s": round(elapsed, 2)}
+
+
+def _relax_payload(rows: "pd.DataFrame", ident: str) -> dict[str, Any]:
+    row = rows.loc[ident]
+    return {"id": ident, "lattice": list(row["lattice"]), "species": list(row["species"]),
+            "frac_coords": list(row["frac_coords"])}
+
+
 def relax_stage(pool: "pd.DataFrame", ids: Sequence[str], work: Path, *, workers: int = 1,
                 timeout_s: float = 3600.0, kpt_density: float = RELAX_KPT_DENSITY,
                 progress: bool = True) -> list[dict[str, Any]]:
@@ -342,47 +414,103 @@ def relax_stage(pool: "pd.DataFrame", ids: Sequence[str], work: Path, *, workers
     work.mkdir(parents=True, exist_ok=True)
     log = work / "relax.jsonl"
     done = {r["id"] for r in _read_jsonl(log)}
-    todo = [i for i in ids if i not in done]
+    queue = [i for i in ids if i not in done]
     rows = pool.set_index("id")
     tmpdir = work / "relax_tmp"
     tmpdir.mkdir(exist_ok=True)
-    ctx = mp.get_context("fork")
-    running: dict[str, tuple[Any, float, Path]] = {}
-    bar = tqdm(total=len(todo), desc="relaxing", unit="struct", disable=not progress)
-    queue = list(todo)
+    running: list[_Job] = []
+    bar = tqdm(total=len(queue), desc="relaxing", unit="struct", disable=not progress)
     while queue or running:
         while queue and len(running) < max(1, workers):
             ident = queue.pop(0)
-            row = rows.loc[ident]
-            payload = {"id": ident, "lattice": list(row["lattice"]), "species": list(row["species"]),
-                       "frac_coords": list(row["frac_coords"])}
-            result = tmpdir / f"{ident}.json"
-            result.unlink(missing_ok=True)
-            proc = ctx.Process(target=_relax_one, args=(ident, payload, kpt_density, str(result)))
-            proc.start()
-            running[ident] = (proc, time.perf_counter(), result)
+            running.append(_start("relax", ident, _relax_payload(rows, ident), tmpdir, kpt_density))
         time.sleep(0.2)
-        for ident, (proc, start, result) in list(running.items()):
-            elapsed = time.perf_counter() - start
-            if proc.is_alive() and elapsed < timeout_s:
+        for job in list(running):
+            rec = _finished(job, timeout_s)
+            if rec is None:
                 continue
-            if proc.is_alive():
-                proc.kill()
-            proc.join()
-            if result.exists():
-                rec = json.loads(result.read_text(encoding="utf-8"))
-                result.unlink()
-            else:
-                why = (f"timeout after {timeout_s:.0f} s" if elapsed >= timeout_s
-                       else f"worker died with exit code {proc.exitcode}")
-                rec = {"id": ident, "status": "failed", "reason": why,
-                       "wall_s": round(elapsed, 2)}
+            running.remove(job)
             _append_jsonl(log, rec)
-            del running[ident]
             bar.update(1)
-            bar.set_postfix_str(f"{ident}: {rec['status']}")
+            bar.set_postfix_str(f"{job.ident}: {rec['status']}")
     bar.close()
     return _read_jsonl(log)
+
+
+def pipeline_stage(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Path, seed: int,
+                   *, workers: int = 1, relax_timeout_s: float = 3600.0,
+                   label_timeout_s: float = 1800.0, kpt_density: float = RELAX_KPT_DENSITY,
+                   pack_every: int = 10, progress: bool = True) -> int:
+    """Relax and label ``ids`` as one stream; returns the number of new label records.
+
+    A free worker takes the label of a finished relaxation first, else the next
+    relaxation, so no core waits for a batch to finish (relaxations take from one minute
+    to half an hour). The parent is the only writer of both checkpoints
+    (``<work>/relax.jsonl`` and the labeller's ``<work>/labels``); ``data_open/`` is
+    packed after every ``pack_every`` new labels and at the end. Resumes like the
+    separate stages: structures relaxed but not labelled are labelled first.
+    """
+    from tqdm.auto import tqdm
+
+    from prescreen.physics.dft import LabelRecord, LabelSettings
+    from prescreen.physics.labeller import RecordStore
+
+    work.mkdir(parents=True, exist_ok=True)
+    log = work / "relax.jsonl"
+    relaxed = _read_jsonl(log)
+    settings = LabelSettings()
+    store = RecordStore(work / "labels", settings)
+    labelled = store.status()
+    rows = pool.set_index("id")
+    label_queue = [r for r in relaxed if r.get("status") == "ok" and r["id"] not in labelled]
+    done = {r["id"] for r in relaxed}
+    relax_queue = [i for i in ids if i not in done]
+    tmpdir = work / "relax_tmp"
+    tmpdir.mkdir(exist_ok=True)
+    running: list[_Job] = []
+    new_labels = 0
+    bar = tqdm(total=len(label_queue) + len(relax_queue), desc="relax + label", unit="job",
+               disable=not progress)
+    while label_queue or relax_queue or running:
+        while len(running) < max(1, workers) and (label_queue or relax_queue):
+            if label_queue:
+                rec = label_queue.pop(0)
+                payload = {k: rec[k] for k in ("lattice", "species", "frac_coords")}
+                payload["formula"] = str(rows.loc[rec["id"], "reduced_formula"])
+                running.append(_start("label", rec["id"], payload, tmpdir, kpt_density))
+            else:
+                ident = relax_queue.pop(0)
+                running.append(_start("relax", ident, _relax_payload(rows, ident), tmpdir,
+                                      kpt_density))
+        time.sleep(0.5)
+        for job in list(running):
+            limit = relax_timeout_s if job.kind == "relax" else label_timeout_s
+            rec = _finished(job, limit)
+            if rec is None:
+                continue
+            running.remove(job)
+            bar.update(1)
+            if job.kind == "relax":
+                _append_jsonl(log, rec)
+                if rec.get("status") == "ok":
+                    label_queue.append(rec)
+                    bar.total += 1
+                bar.set_postfix_str(f"{job.ident}: relax {rec['status']}")
+                continue
+            if "settings" not in rec:  # the child left no record: timeout or crash
+                rec = LabelRecord.failed(job.ident, str(rows.loc[job.ident, "reduced_formula"]),
+                                         settings, rec["reason"], rec["wall_s"]).as_dict()
+            label = LabelRecord.from_dict(rec)
+            store.append(label)
+            new_labels += 1
+            bar.set_postfix_str(f"{job.ident}: " + (f"spillage {label.spillage:.3f}" if label.ok
+                                                    else "label failed"))
+            if new_labels % max(1, pack_every) == 0:
+                pack_stage(out, work, seed)
+    bar.close()
+    if new_labels:
+        pack_stage(out, work, seed)
+    return new_labels
 
 
 # --- labelling ----------------------------------------------------------------------
@@ -666,7 +794,7 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--max-atoms", type=int, default=DEFAULT_MAX_ATOMS,
                    help="cells up to this size come first in the subset")
     p.add_argument("--batch", type=int, default=10,
-                   help="structures relaxed before each label + pack round (stage all)")
+                   help="new labels between two packs of data_open/ (stage all)")
     p.add_argument("--timeout", type=float, default=1800.0, help="seconds per labelling job")
     p.add_argument("--relax-timeout", type=float, default=3600.0, help="seconds per relaxation")
     p.add_argument("--relax-kpt-density", type=float, default=RELAX_KPT_DENSITY)
@@ -707,19 +835,10 @@ def run(args: argparse.Namespace) -> int:
     elif args.stage == "pack":
         pack_stage(args.out, args.work, args.seed)
     else:
-        batch = max(1, args.batch)
-        # finish labelling what an interrupted run relaxed, then continue in batches
-        label_stage(_read_jsonl(args.work / "relax.jsonl"), args.work, workers=args.workers,
-                    timeout_s=args.timeout, progress=progress)
-        for start in range(0, len(order), batch):
-            done = {r["id"] for r in _read_jsonl(args.work / "relax.jsonl")}
-            chunk = [i for i in order[start:start + batch] if i not in done]
-            if not chunk:
-                continue
-            relaxed = relax_stage(pool, chunk, args.work, **relax_kw)
-            label_stage(relaxed, args.work, workers=args.workers, timeout_s=args.timeout,
-                        progress=progress)
-            pack_stage(args.out, args.work, args.seed)
+        pipeline_stage(pool, order, args.work, args.out, args.seed, workers=args.workers,
+                       relax_timeout_s=args.relax_timeout, label_timeout_s=args.timeout,
+                       kpt_density=args.relax_kpt_density, pack_every=args.batch,
+                       progress=progress)
         pack_stage(args.out, args.work, args.seed)
     return 0
 

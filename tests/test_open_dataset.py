@@ -275,3 +275,49 @@ def test_relax_stage_records_outcomes_and_resumes(tmp_path, monkeypatch):
     log.write_text('{"id": broken\n' + log.read_text(encoding="utf-8"), encoding="utf-8")
     with pytest.raises(InputError, match=r"relax.jsonl:1: damaged checkpoint line"):
         driver._read_jsonl(log)
+
+
+def _fake_label(structure, settings, *, id=None):
+    """Stand-in for label_structure: a record whose spillage is the atom count / 10."""
+    from prescreen.physics.dft import LabelRecord
+
+    if structure[0].specie.symbol == "Nb":
+        raise RuntimeError("SOC diagonalisation failed")
+    return LabelRecord(id=id, formula=structure.composition.reduced_formula,
+                       spillage=len(structure) / 10, k_max=np.zeros(3), gap_nosoc_eV=0.1,
+                       gap_soc_eV=0.1, is_metal=False, magmom=0.0, settings=settings.as_dict(),
+                       versions={}, wall_s=1.0, core_hours=1 / 3600, gamma=np.zeros(4),
+                       kpts=np.zeros((4, 3)))
+
+
+def test_pipeline_labels_each_relaxed_structure_once_and_resumes(tmp_path, monkeypatch):
+    import prescreen.physics.dft as dft
+    from prescreen.physics.labeller import load_records
+    from prescreen.prototypes import generate_pool, pool_table
+
+    driver = _driver()
+    monkeypatch.setattr(dft, "relax_monolayer", lambda s, *a, **k: (s, 0.01, True))
+    monkeypatch.setattr(dft, "label_structure", _fake_label)  # inherited by forked workers
+    packs = []
+    monkeypatch.setattr(driver, "pack_stage", lambda out, work, seed: packs.append(seed))
+    table = pool_table(generate_pool(prototypes=["MX2-2H"], match_structures=False, progress=False))
+    pick = {json.loads(d)["M"]: i for d, i in zip(table["decoration"], table["id"])
+            if json.loads(d)["X"] == "S"}
+    ids = [pick[m] for m in ("Mo", "W", "Nb")]
+    work = tmp_path / "work"
+    new = driver.pipeline_stage(table, ids, work, tmp_path / "out", 7, workers=2,
+                                pack_every=2, progress=False)
+    assert new == 3 and packs == [7, 7]  # after the second label, and at the end
+    records = {r.id: r for r in load_records(work / "labels")}
+    assert set(records) == set(ids)
+    assert records[pick["Mo"]].ok and records[pick["Mo"]].spillage == pytest.approx(0.3)
+    assert not records[pick["Nb"]].ok and "SOC diagonalisation failed" in records[pick["Nb"]].error
+    assert [r["status"] for r in driver._read_jsonl(work / "relax.jsonl")] == ["ok"] * 3
+    # rerun: nothing repeated; a structure relaxed but not labelled is labelled first
+    more = [pick["Cr"]]
+    driver._append_jsonl(work / "relax.jsonl", {**driver._read_jsonl(work / "relax.jsonl")[0],
+                                                 "id": pick["V"]})
+    assert driver.pipeline_stage(table, ids + more, work, tmp_path / "out", 7, workers=1,
+                                 progress=False) == 2
+    assert len(load_records(work / "labels")) == 5
+    assert len(driver._read_jsonl(work / "relax.jsonl")) == 5

@@ -47,6 +47,7 @@ __all__ = [
     "SETTINGS_FILE",
     "ARRAYS_DIR",
     "LabelSummary",
+    "RecordStore",
     "run_labelling",
     "load_records",
     "records_frame",
@@ -139,8 +140,13 @@ class _Slot:
     started: float = 0.0
 
 
-class _Store:
-    """The append-only checkpoint of one output folder."""
+class RecordStore:
+    """The append-only checkpoint of one output folder (one writer process at a time).
+
+    Opening checks that the folder was made with the same ``settings`` (or records
+    them) and removes a line torn by a crash; :meth:`append` writes a record's arrays,
+    then its line, fsync'ed; :meth:`status` gives the newest status of every id.
+    """
 
     def __init__(self, out_dir: Path, settings: LabelSettings) -> None:
         self.dir = Path(out_dir)
@@ -279,7 +285,7 @@ def run_labelling(jobs: Iterable[tuple[str, "Structure | Atoms"]], out_dir: Path
         raise InputError("timeout_s must be positive", value=timeout_s, expected="> 0 s")
     t0 = time.perf_counter()
     all_jobs = _validate_jobs(jobs)
-    store = _Store(Path(out_dir), settings)
+    store = RecordStore(Path(out_dir), settings)
     done = store.status()
     pending = [(i, s) for i, s in all_jobs
                if i not in done or (retry_failed and done[i] == "failed")]
