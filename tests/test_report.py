@@ -271,3 +271,18 @@ def test_validation_rebuilds_the_table_with_the_models_training_settings(built):
     none, note = _validation(camp, model, None, None, False,
                              settings={**settings, "campaign_filter": {"code": "VASP"}})
     assert none is None and note.startswith("validation left out")
+
+
+def test_training_hits_are_split_by_band_gap(built, collected):
+    # the synthetic results of build_small_campaign record no gap: every hit is "unknown"
+    doc = parse(built["html"])
+    line = next(a for t, a in doc.tags if a.get("id") == "hits-by-gap")
+    hits = int(collected.validation.y.sum())
+    assert (int(line["data-gapped"]), int(line["data-metallic"]), int(line["data-unknown"])) == (0, 0, hits)
+    from prescreen.physics.dft import METAL_GAP_EV
+    from prescreen.report.build import ValidationData
+
+    v = ValidationData(y=np.array([1, 1, 1, 0]), p_oof=np.zeros(4), cv_table=None,
+                       gap_soc_eV=np.array([0.0, 0.5, np.nan, 0.0]))
+    assert v.hits_by_gap() == {"hits": 3, "gapped": 1, "metallic": 1, "unknown": 1,
+                               "metal_gap_eV": METAL_GAP_EV}

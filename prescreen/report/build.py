@@ -105,11 +105,33 @@ class ValidationData:
     cv_table : DataFrame
         Metrics per fold plus ``mean``, ``std`` and ``pooled`` rows
         (:func:`prescreen.validation.cross_validate`).
+    gap_soc_eV : ndarray, shape (n,), optional
+        Band gap with spin-orbit coupling of each training row (NaN: not recorded).
     """
 
     y: np.ndarray
     p_oof: np.ndarray
     cv_table: Any
+    gap_soc_eV: np.ndarray | None = None
+
+    def hits_by_gap(self, metal_gap_eV: float | None = None) -> dict[str, float]:
+        """Training hits with a gap, without one (metals, gap < ``metal_gap_eV``), unknown.
+
+        ``metal_gap_eV`` defaults to the labeller's metal threshold
+        (:data:`prescreen.physics.dft.METAL_GAP_EV`, the smearing scale); it is returned
+        as ``"metal_gap_eV"``.
+        """
+        from prescreen.physics.dft import METAL_GAP_EV
+
+        metal_gap_eV = METAL_GAP_EV if metal_gap_eV is None else float(metal_gap_eV)
+        hits = np.asarray(self.y) == 1
+        gap = (np.full(len(hits), np.nan) if self.gap_soc_eV is None
+               else np.asarray(self.gap_soc_eV, dtype=float))
+        known = np.isfinite(gap)
+        return {"hits": int(hits.sum()),
+                "gapped": int((hits & known & (gap >= metal_gap_eV)).sum()),
+                "metallic": int((hits & known & (gap < metal_gap_eV)).sum()),
+                "unknown": int((hits & ~known).sum()), "metal_gap_eV": metal_gap_eV}
 
     def enrichment(self) -> pd.DataFrame:
         """Hits in the top ``k`` of the out-of-fold ranking against random, per ``k``.
@@ -350,7 +372,8 @@ def _validation(campaign: Campaign, model: Any, model_dir: Path | None,
                                   progress=progress, random_state=0, label="grouped CV",
                                   sample_weight=table.weight)
     p = out_of_fold(model, table.X, table.y, table.formulas, sample_weight=table.weight)
-    return ValidationData(y=np.asarray(table.y), p_oof=p, cv_table=cv_table), ""
+    return ValidationData(y=np.asarray(table.y), p_oof=p, cv_table=cv_table,
+                          gap_soc_eV=table.gap_soc_eV), ""
 
 
 def _provenance(campaign: Campaign, used_open: bool) -> tuple[Provenance, ...]:
