@@ -16,7 +16,8 @@ calculations, made with prescreen's own labeller at the input geometries::
     prescreen label /tmp/fg fg-hc-001 fg-hc-002 fg-hc-003 fg-hc-004 fg-hc-005 fg-hc-006 \
         fg-flat-001 fg-flat-002 fg-tmd-001 fg-tmd-003 fg-db-001
 
-and copied from ``/tmp/fg/labels/records.jsonl``; this script leaves that file alone.
+and copied (spillage, core-hours, band gap with SOC) from ``/tmp/fg/labels/records.jsonl``;
+this script leaves that file alone.
 """
 
 from __future__ import annotations
