@@ -60,6 +60,7 @@ if str(ROOT) not in sys.path:  # run as a plain script from a checkout
     sys.path.insert(0, str(ROOT))
 
 from prescreen.errors import InputError  # noqa: E402
+from prescreen.physics.dft import MAX_SCAN_EXTENSIONS  # noqa: E402
 from prescreen.prototypes import (  # noqa: E402
     COVALENT_RADII_SOURCE,
     DEFAULT_SEED,
@@ -299,7 +300,8 @@ def _relax_one(ident: str, row: dict[str, Any], kpt_density: float, result_path:
     os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
     t0 = time.perf_counter()
     rec: dict[str, Any] = {"id": ident, "attempts": 0, "smearing_eV": RELAX_SMEARING_EV,
-                           "lattice_scan": f"coarse + fine (step {REFINE_STEP})"}
+                           "lattice_scan": f"coarse (extended by up to {MAX_SCAN_EXTENSIONS} "
+                                           f"points past an edge) + fine (step {REFINE_STEP})"}
     try:
         settings = LabelSettings(kpt_density=kpt_density, smearing_eV=RELAX_SMEARING_EV)
         structure = structure_from_row(row)
@@ -701,9 +703,10 @@ python scripts/build_open_dataset.py --seed {seed} --workers 1
    {RELAX_SMEARING_EV} eV (the first relaxations used 0.01 eV; the width of each is in
    `{RELAX_PARQUET}`, column `smearing_eV`); positions by BFGS to
    {RELAX_FMAX} eV/A (at most {RELAX_STEPS} steps), in-plane lattice by an isotropic
-   energy scan over scales {RELAX_SCALES} and a finer scan around its minimum, each with
-   a parabola fit (the first relaxations used the coarse scan only; column
-   `lattice_scan`; the in-plane cell shape
+   energy scan over scales {RELAX_SCALES} (extended by up to {MAX_SCAN_EXTENSIONS} more
+   points when the lowest energy lies at an edge) and a finer scan around its minimum,
+   each with a parabola fit (earlier relaxations used the coarse scan only, or no
+   extension; column `lattice_scan`; the in-plane cell shape
    is not optimised); up to {RELAX_ATTEMPTS} attempts. Structures that do not converge,
    or that are no longer one bonded, 2-periodic sheet with at least 8 A of vacuum
    (covalent radii x 1.25 bond test), are recorded in `{RELAX_PARQUET}` and left out.

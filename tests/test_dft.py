@@ -218,3 +218,28 @@ def test_settings_and_failed_record_round_trip():
     back = LabelRecord.from_dict(json.loads(json.dumps(rec.as_dict())))
     assert back.status == "failed" and back.error == "LabellingError: boom"
     assert math.isnan(back.spillage) and back.gamma.shape == (0,)
+
+
+@pytest.mark.parametrize(("minimum", "n_extra", "edge"), [
+    (1.00, 0, False),   # inside the scan: nothing added
+    (1.12, 1, False),   # past the upper edge: one step more brackets it
+    (0.84, 2, False),   # two steps below
+    (1.40, 3, True),    # beyond three steps: still at the edge, reported as such
+])
+def test_lattice_scan_extends_past_an_edge_until_the_minimum_is_bracketed(minimum, n_extra, edge):
+    from prescreen.physics.dft import _bracketed_scan, _parabola_minimum
+
+    calls = []
+
+    def energy(factors):  # a harmonic well at `minimum` (eV, arbitrary curvature)
+        calls.append(factors)
+        return np.array([3.0 * (f - minimum) ** 2 for f in factors])
+
+    scales = (0.90, 0.95, 1.00, 1.05, 1.10)
+    xs, es = _bracketed_scan(scales, energy, max_extensions=3)
+    assert len(xs) == len(scales) + n_extra and len(calls) == 1 + n_extra
+    assert list(xs) == sorted(xs)
+    j = int(np.argmin(es))
+    assert (j in (0, len(xs) - 1)) == edge
+    if not edge:  # a parabola through the bracketing points is exact for a harmonic well
+        assert _parabola_minimum(xs, es) == pytest.approx(minimum, abs=1e-9)

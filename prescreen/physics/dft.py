@@ -614,6 +614,40 @@ def _parabola_minimum(scales: tuple[float, ...], energies: np.ndarray) -> float:
     return float(np.clip(best, min(scales), max(scales)))
 
 
+def _bracketed_scan(scales: tuple[float, ...], energy: Any,
+                    max_extensions: int) -> tuple[tuple[float, ...], np.ndarray]:
+    """Energies over ``scales``, extended past an edge until the minimum is inside.
+
+    ``energy(factors)`` returns the energies of a tuple of scale factors. While the
+    lowest energy lies at the first or last scale, one more scale is added beyond it
+    (at the scan's smallest spacing), at most ``max_extensions`` times: a starting
+    lattice more than the scan's half-width off then costs one energy per step instead
+    of a whole second relaxation.
+
+    Returns
+    -------
+    (scales, energies)
+        Every scale evaluated, ascending, with its energy.
+    """
+    points = dict(zip(scales, energy(tuple(scales))))
+    step = float(np.min(np.diff(sorted(scales))))
+    for _ in range(max(0, int(max_extensions))):
+        xs = sorted(points)
+        j = int(np.argmin([points[x] for x in xs]))
+        if 0 < j < len(xs) - 1:
+            break
+        new = xs[0] - step if j == 0 else xs[-1] + step
+        if new <= 0:
+            break
+        points[new] = float(energy((new,))[0])
+    xs = tuple(sorted(points))
+    return xs, np.array([points[x] for x in xs])
+
+
+#: Most scale points added past an edge of the coarse lattice scan (see
+#: :func:`_bracketed_scan`); 3 steps of 0.05 reach 25 % from the start (chosen here).
+MAX_SCAN_EXTENSIONS: int = 3
+
 #: Force tolerance (eV/Angstrom) and step cap of the pre-relaxation at the input cell,
 #: before the lattice scan (loose on purpose; common practice for a first pass).
 PRE_RELAX_FMAX_EV_PER_A: float = 0.2
@@ -628,6 +662,7 @@ def relax_monolayer(structure: "Structure | Atoms",
                     grid_spacing_A: float | None = None,
                     scf_density_tol: float | None = None,
                     refine_step: float = REFINE_STEP,
+                    max_extensions: int = MAX_SCAN_EXTENSIONS,
                     ) -> tuple["Structure | Atoms", float, bool]:
     """Relax a monolayer at the labeller's level of theory (LCAO, PBE).
 
@@ -662,13 +697,16 @@ def relax_monolayer(structure: "Structure | Atoms",
     refine_step
         Relative step of the second, finer scan around the coarse minimum (three more
         energies); 0 skips it.
+    max_extensions
+        Scale points added past an edge of ``scales`` when the lowest energy lies there
+        (:func:`_bracketed_scan`); 0 keeps the scan as given.
 
     Returns
     -------
     (relaxed, residual_fmax_eV_per_A, converged)
         ``relaxed`` has the input's type (pymatgen ``Structure`` or ``ase.Atoms``).
-        ``converged`` is False if BFGS did not reach ``fmax`` or the best scale lies
-        at the edge of ``scales``.
+        ``converged`` is False if BFGS did not reach ``fmax`` or the lowest energy still
+        lies at an edge of the scanned scales after ``max_extensions`` extensions.
     """
     from ase.optimize import BFGS
 
@@ -712,10 +750,13 @@ def relax_monolayer(structure: "Structure | Atoms",
             # converging tightly would waste steps that the final relaxation repeats.
             relax_positions(atoms, folder, "start", max(fmax, PRE_RELAX_FMAX_EV_PER_A),
                             min(steps, PRE_RELAX_STEPS))
-            energies = scan(atoms, folder, scales, "scale")
+            counter = iter(range(10**6))
+            scanned, energies = _bracketed_scan(
+                scales, lambda f: scan(atoms, folder, f, f"scale{next(counter)}-"),
+                max_extensions)
             j = int(np.argmin(energies))
-            edge = j in (0, len(scales) - 1)
-            best = _parabola_minimum(scales, energies)
+            edge = j in (0, len(scanned) - 1)
+            best = _parabola_minimum(scanned, energies)
             if refine_step > 0 and not edge:
                 # A second, finer scan around the coarse minimum: a parabola through widely
                 # spaced points is biased where the energy curve is anharmonic.
