@@ -95,6 +95,7 @@ def test_rank_scores_every_candidate_once(trained):
     # A formula-only candidate is ranked but has no cost (nothing to compute yet).
     assert np.isnan(table.loc["f-only", "cost_core_hours"])
     assert "no structure" in table.loc["f-only", "flags"]
+    assert table.attrs["positive_rule"] == f"spillage >= {camp.threshold:g}"  # no gap required
 
 
 def test_propose_respects_budget_exclusions_and_seed(trained, tmp_path):
@@ -304,4 +305,6 @@ def test_a_gap_requirement_turns_gapless_high_spillage_negative(tmp_path, capsys
         record = again.latest_model()
         assert record["settings"]["min_gap_eV"] == 0.02
         model = SpillageClassifier.load(again.path / record["path"])
+        ranked = rounds.rank(again, progress=False)
     assert model.min_gap_eV_ == 0.02
+    assert ranked.attrs["positive_rule"] == "spillage >= 0.5 and band gap with SOC >= 0.02 eV"

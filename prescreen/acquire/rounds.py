@@ -515,7 +515,8 @@ def rank(campaign: Campaign, *, progress: bool = True) -> pd.DataFrame:
         ``formula``, ``probability``, ``uncertainty`` (ensemble spread), ``rank``,
         ``cost_core_hours`` with ``cost_low``/``cost_high`` (NaN for formula-only
         candidates), ``layer_status``, ``duplicate_of``, ``hazard``, ``spillage`` (if
-        labelled), ``flags`` (a readable summary), ``model``.
+        labelled), ``flags`` (a readable summary), ``model``. ``attrs["positive_rule"]``
+        says what the probability is the probability of (:func:`positive_rule`).
     """
     from prescreen.acquire.cost import descriptors_for_structure
 
@@ -548,6 +549,8 @@ def rank(campaign: Campaign, *, progress: bool = True) -> pd.DataFrame:
     out["model"] = version
     out = out.sort_values(["probability", "uncertainty"], ascending=[False, True], kind="stable")
     out.insert(0, "rank", np.arange(1, len(out) + 1))
+    out.attrs["positive_rule"] = positive_rule(getattr(model, "threshold_", campaign.threshold),
+                                               getattr(model, "min_gap_eV_", None))
     return out
 
 

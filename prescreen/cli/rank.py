@@ -33,7 +33,8 @@ def run(args: argparse.Namespace) -> int:
         cost = "" if hours != hours else f"{hours:7.3g}"
         print(f"{r['rank']:>4}  {cid:<24} {r['formula']:<10} {r['probability']:5.2f} "
               f"{r['uncertainty']:5.2f} {cost:>7}  {r['flags']}")
-    print(f"ranked {len(table)} candidates with model {table['model'].iloc[0]}; "
+    print(f"ranked {len(table)} candidates with model {table['model'].iloc[0]} "
+          f"(p: probability of {table.attrs['positive_rule']}); "
           f"written to {stem.with_suffix('.csv')} and .parquet")
     print("note: a probability is not a topological classification; confirm hits with an "
           "invariant (Z2).")
