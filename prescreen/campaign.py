@@ -161,6 +161,8 @@ class ResultIngestReport:
     unchanged: int = 0
     replaced: int = 0
     kept_existing: int = 0
+    #: Stored results without a band gap that a row with the same spillage completed.
+    gaps_added: int = 0
     rejections: list[Rejection] = field(default_factory=list)
 
 
@@ -517,9 +519,18 @@ class Campaign:
                     "SELECT seq, spillage, gap_soc_eV FROM results"
                     " WHERE candidate_id=? AND active=1", (row.id,),
                 ).fetchone()
-                if old is not None and (old[1], old[2]) == (row.spillage, row.gap_soc_eV):
-                    report.unchanged += 1
-                    continue
+                if old is not None and old[1] == row.spillage:
+                    # The same result. A missing gap is not a different value: a row
+                    # without one changes nothing, and a row with one completes a stored
+                    # result that had none (in place: nothing is lost).
+                    if row.gap_soc_eV is None or old[2] == row.gap_soc_eV:
+                        report.unchanged += 1
+                        continue
+                    if old[2] is None:
+                        conn.execute("UPDATE results SET gap_soc_eV=? WHERE seq=?",
+                                     (row.gap_soc_eV, old[0]))
+                        report.gaps_added += 1
+                        continue
                 if old is not None:
                     if on_conflict == "keep":
                         report.kept_existing += 1

@@ -130,6 +130,27 @@ def test_conflicting_values_follow_the_policy(campaign, policy, expected_value, 
     assert campaign.labels().loc["mos2", "spillage"] == expected_value
 
 
+def test_a_band_gap_completes_a_result_and_a_missing_one_changes_nothing(campaign):
+    from dataclasses import replace
+
+    campaign.ingest_results(([result("mos2", 0.01)], []))  # no gap recorded
+    # the same result without a gap: unchanged
+    assert campaign.ingest_results(([result("mos2", 0.01)], [])).unchanged == 1
+    # the same spillage with a gap: the stored result gains it, in place
+    rep = campaign.ingest_results(([replace(result("mos2", 0.01), gap_soc_eV=1.6)], []))
+    assert (rep.gaps_added, rep.unchanged, rep.rejections) == (1, 0, [])
+    assert campaign.labels().loc["mos2", "gap_soc_eV"] == 1.6
+    assert campaign.labels().loc["mos2", "source"] == "r.csv:2"
+    # a file without the gap column afterwards: unchanged, the gap stays
+    assert campaign.ingest_results(([result("mos2", 0.01)], [])).unchanged == 1
+    assert campaign.labels().loc["mos2", "gap_soc_eV"] == 1.6
+    # another gap for the same spillage: a conflict, settled by the policy
+    rep = campaign.ingest_results(([replace(result("mos2", 0.01), gap_soc_eV=0.2)], []))
+    (rej,) = rep.rejections
+    assert "conflicts with the stored gap_soc_eV 1.6" in rej.reason
+    assert campaign.labels().loc["mos2", "gap_soc_eV"] == 1.6
+
+
 def test_unknown_policy_is_an_input_error(campaign):
     with pytest.raises(InputError, match="unknown conflict policy"):
         campaign.ingest_results(([], []), on_conflict="average")

@@ -259,18 +259,27 @@ def test_an_earlier_round_keeps_the_pool_figures_it_was_proposed_on(tmp_path):
 
 def test_validation_rebuilds_the_table_with_the_models_training_settings(built):
     from prescreen.acquire.rounds import load_model
-    from prescreen.report.build import _model_settings, _validation
+    from prescreen.report.build import _model_settings, _validation, round_model_settings
 
     camp = built["campaign"]
     model, version = load_model(camp)
     settings = _model_settings(camp, version)
     assert settings["use_open"] is False and settings["campaign_filter"] == {}
-    kept, note = _validation(camp, model, None, None, False,
-                             settings={**settings, "campaign_filter": {"code": "GPAW"}})
-    assert note == "" and len(kept.y) == len(camp.labels())
-    none, note = _validation(camp, model, None, None, False,
-                             settings={**settings, "campaign_filter": {"code": "VASP"}})
-    assert none is None and note.startswith("validation left out")
+    assert round_model_settings(camp) == settings  # the round was proposed with this model
+    n = len(camp.labels())
+    kept, notes = _validation(camp, model, None, False, False,
+                              settings={**settings, "campaign_filter": {"code": "GPAW"}},
+                              training_rows=n)
+    assert notes == [] and len(kept.y) == n
+    none, notes = _validation(camp, model, None, False, False,
+                              settings={**settings, "campaign_filter": {"code": "VASP"}})
+    assert none is None and notes[0].startswith("validation left out")
+    # labels added since training: the stored per-fold table is older, and the note says so
+    _, notes = _validation(camp, model, None, False, False, settings=settings,
+                           training_rows=n - 3)
+    assert notes == [f"the model was trained on {n - 3} rows and the labelled data now has {n}: "
+                     "the per-fold table is the model's own, from training; the curves and "
+                     "the enrichment use today's rows"]
 
 
 def test_training_hits_are_split_by_band_gap(built, collected):
@@ -286,3 +295,15 @@ def test_training_hits_are_split_by_band_gap(built, collected):
                        gap_soc_eV=np.array([0.0, 0.5, np.nan, 0.0]))
     assert v.hits_by_gap() == {"hits": 3, "gapped": 1, "metallic": 1, "unknown": 1,
                                "metal_gap_eV": METAL_GAP_EV}
+
+
+def test_labelled_hit_fraction_follows_the_models_rule():
+    import pandas as pd
+
+    from prescreen.report.build import _labelled_hit_fraction
+
+    labels = pd.DataFrame({"spillage": [0.9, 0.9, 0.1, 0.7],
+                           "gap_soc_eV": [0.0, 0.3, 1.0, None]})
+    assert _labelled_hit_fraction(labels, 0.5, None) == 0.75
+    assert _labelled_hit_fraction(labels, 0.5, 0.02) == 0.25  # the metal and the unknown drop
+    assert np.isnan(_labelled_hit_fraction(labels.iloc[:0], 0.5, None))

@@ -271,7 +271,7 @@ def test_requiring_a_gap_without_gaps_names_the_rows(trained):
     assert missing > 0
     with pytest.raises(InputError, match=rf"{missing} labelled rows have no gap_soc_eV") as err:
         rounds.training_table(camp, use_open=False, min_gap_eV=0.02, progress=False)
-    assert "campaign:" in str(err.value)
+    assert "rule.csv:" in str(err.value)  # names the results file and line
 
 
 def test_a_gap_requirement_turns_gapless_high_spillage_negative(tmp_path, capsys):
@@ -297,6 +297,8 @@ def test_a_gap_requirement_turns_gapless_high_spillage_negative(tmp_path, capsys
     assert (gapped.y <= plain.y).all()
     camp.close()
 
+    assert main(["train", str(tmp_path / "camp"), "--min-gap", "-1"]) == 2
+    assert "bad --min-gap (got -1.0" in capsys.readouterr().err
     assert main(["train", str(tmp_path / "camp"), "--no-open-data", "--min-gap", "0.02",
                  "--models", "2", "--no-progress"]) == 0
     out = capsys.readouterr().out

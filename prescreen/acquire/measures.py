@@ -73,7 +73,8 @@ class PoolView:
         Features used for batch diversity (any units; standardised inside the selectors;
         NaN allowed and treated as the column mean).
     mean : ndarray of float, shape (n,)
-        Calibrated probability that the candidate is a hit (spillage >= threshold).
+        Calibrated probability that the candidate is a hit (spillage >= threshold, and a
+        band gap with SOC when the model was trained to require one).
     std : ndarray of float, shape (n,)
         Spread of that probability (e.g. the standard deviation over ensemble members).
     cost : ndarray of float, shape (n,)

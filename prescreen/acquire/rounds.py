@@ -207,6 +207,7 @@ def training_table(
     if threshold is None:
         threshold = campaign.threshold if campaign is not None else SPILLAGE_THRESHOLD
     parts, spill, weights, formulas, origin, hours, gaps = [], [], [], [], [], [], []
+    where: list[str] = []  # each row's source, for error messages
     if use_open:
         open_df = load_open_labelled(data_open)
         feats = _feature_columns(_featurise_frame(list(open_df["formula"]),
@@ -219,6 +220,7 @@ def training_table(
         weights.append(np.ones(len(open_df)))
         formulas += list(open_df["formula"])
         origin += ["open"] * len(open_df)
+        where += [f"data_open/labelled.parquet:{i}" for i in open_df.index]
     if campaign is not None:
         labels = _filtered(campaign.labels(), campaign_filter or {})
         if len(labels):
@@ -232,6 +234,7 @@ def training_table(
             frame = campaign.candidates_frame()
             formulas += list(frame.loc[labels.index, "reduced_formula"])
             origin += ["campaign"] * len(labels)
+            where += [f"{src} ({cid})" for cid, src in labels["source"].items()]
     if not parts:
         raise CampaignError("no labelled data to train on: ingest results or use the open data")
     X = pd.concat(parts)
@@ -241,11 +244,12 @@ def training_table(
     if min_gap_eV is not None:
         missing = ~np.isfinite(gap)
         if missing.any():
-            ids = [f"{o}:{i}" for o, i in zip(np.asarray(origin)[missing], X.index[missing])]
+            rows = [w for w, m in zip(where, missing) if m]
             raise InputError(
-                f"{int(missing.sum())} labelled rows have no gap_soc_eV, needed to require a "
-                f"gap of {min_gap_eV:g} eV", value=", ".join(ids[:5]) + (" ..." if len(ids) > 5 else ""),
-                expected="a gap_soc_eV column in the results, or no min_gap_eV")
+                f"{len(rows)} labelled rows have no gap_soc_eV, needed to require a "
+                f"gap of {min_gap_eV:g} eV", value="; ".join(rows[:5]) + (" ..." if len(rows) > 5 else ""),
+                expected="a gap_soc_eV for every result (ingest the results again with that "
+                "column: the gap completes the stored result), or no gap requirement")
         y &= gap >= min_gap_eV
     return TrainingTable(X=X, spillage=spillage, y=y.astype(int),
                          weight=np.concatenate(weights), formulas=formulas,

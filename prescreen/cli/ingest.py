@@ -27,9 +27,11 @@ def run(args: argparse.Namespace) -> int:
             print(f"{path}:")
             print_table([("added", report.added), ("unchanged", report.unchanged),
                          ("replaced", report.replaced), ("kept existing", report.kept_existing),
+                         ("band gap added", report.gaps_added),
                          ("rejected", len(report.rejections))])
             print_rejections(report.rejections, campaign=str(campaign.path))
-            landed += report.added + report.unchanged + report.replaced + report.kept_existing
+            landed += (report.added + report.unchanged + report.replaced + report.kept_existing
+                       + report.gaps_added)
             rejected += len(report.rejections)
     # Exit 1 when rows were given but none landed, so that scripts notice.
     return 1 if rejected and not landed else 0

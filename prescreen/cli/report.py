@@ -35,13 +35,19 @@ def run(args: argparse.Namespace) -> int:
         curves = None
         if args.replay:
             from prescreen.acquire.rounds import replay_labelled
+            from prescreen.errors import InputError
+            from prescreen.report.build import round_model_settings
 
-            record = campaign.latest_model()
-            settings = record["settings"] if record is not None else {}
-            curves = replay_labelled(campaign, use_open=bool(settings.get("use_open", True)),
-                                     min_gap_eV=settings.get("min_gap_eV"))
-            if curves is None:
-                print("replay skipped: too few labelled rows or positives")
+            # replayed with the training data and hit rule of the round's model
+            settings = round_model_settings(campaign, number)
+            try:
+                curves = replay_labelled(campaign, use_open=bool(settings.get("use_open", True)),
+                                         min_gap_eV=settings.get("min_gap_eV"))
+            except (CampaignError, InputError) as exc:
+                print(f"replay skipped: {exc}")
+            else:
+                if curves is None:
+                    print("replay skipped: too few labelled rows or positives")
         path = build_report(campaign, out_path=out, round_number=number,
                             replay_curves=curves)
     print(f"report written to {path}")

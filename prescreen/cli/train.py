@@ -33,6 +33,9 @@ def run(args: argparse.Namespace) -> int:
 
     from prescreen.errors import InputError
 
+    if args.min_gap is not None and not (args.min_gap >= 0 and args.min_gap != float("inf")):
+        raise InputError("bad --min-gap", value=args.min_gap,
+                         expected="a band gap in eV, >= 0, e.g. --min-gap 0.02")
     only: dict[str, str] = {}
     for item in args.only:
         key, sep, value = item.partition("=")

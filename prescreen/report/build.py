@@ -41,6 +41,7 @@ __all__ = [
     "ReportData",
     "collect",
     "out_of_fold",
+    "round_model_settings",
     "build_report",
     "CHROMIUM",
     "write_pdf",
@@ -324,46 +325,56 @@ def out_of_fold(model: Any, X: Any, y: np.ndarray, formulas: list[str], *, n_spl
     return p
 
 
-def trained_with_open_data(campaign: Campaign) -> bool:
-    """Whether the campaign's latest model saw data_open/ (the shipped default model did)."""
-    record = campaign.latest_model()
-    if record is None:
-        return True
-    return bool(record["settings"].get("use_open", True))
-
-
 def _model_settings(campaign: Campaign, version: str) -> dict[str, Any]:
     """Training settings recorded with model ``version`` ({} for the shipped default)."""
     record = campaign.model_record(version) if version != "default" else None
     return dict(record["settings"]) if record is not None else {}
 
 
-def _validation(campaign: Campaign, model: Any, model_dir: Path | None,
-                use_open: bool | None, progress: bool, *,
-                settings: dict[str, Any] | None = None) -> tuple[ValidationData | None, str]:
-    """Grouped out-of-fold validation of the model's recipe on the table it was trained on.
+def round_model_settings(campaign: Campaign, round_number: int | None = None) -> dict[str, Any]:
+    """Training settings of the model a round was proposed with (default: latest round).
 
-    ``settings`` are the training settings recorded with the model (``use_open``,
-    ``campaign_weight``, ``campaign_filter``), so the table is built as training built it.
+    Keys as recorded by :func:`prescreen.acquire.rounds.train` (``use_open``,
+    ``campaign_weight``, ``campaign_filter``, ``min_gap_eV``, ...); ``{}`` for the shipped
+    default model, which was trained on ``data_open/`` alone.
+    """
+    return _model_settings(campaign, str(_round_record(campaign, round_number).get("model", "")))
+
+
+def _validation(campaign: Campaign, model: Any, model_dir: Path | None,
+                use_open: bool, progress: bool, *,
+                settings: dict[str, Any] | None = None,
+                training_rows: int | None = None) -> tuple[ValidationData | None, list[str]]:
+    """Grouped out-of-fold validation of the model's recipe on today's labelled data.
+
+    The table is rebuilt the way training built it, from ``settings`` (the model's
+    recorded ``campaign_weight``, ``campaign_filter`` and ``min_gap_eV``) and
+    ``use_open``, but with the labels as they are now: when ``training_rows`` (the
+    model's recorded count) differs, the stored per-fold table describes the smaller
+    training set, and a note says so. Returns the validation (None when it cannot be
+    made) and the notes.
     """
     import pandas as pd
 
     from prescreen.acquire.rounds import training_table
 
     settings = settings or {}
-    if use_open is None:
-        use_open = bool(settings.get("use_open", trained_with_open_data(campaign)))
+    notes: list[str] = []
     try:
         table = training_table(campaign, use_open=use_open,
                                campaign_weight=float(settings.get("campaign_weight", 1.0)),
                                campaign_filter=settings.get("campaign_filter") or None,
                                min_gap_eV=settings.get("min_gap_eV"), progress=progress)
     except (CampaignError, InputError) as exc:
-        return None, f"validation left out: {exc}"
+        return None, [f"validation left out: {exc}"]
     if len(set(table.y)) < 2:
-        return None, "validation left out: the training data has one class only"
+        return None, ["validation left out: the training data has one class only"]
     cv_path = None if model_dir is None else model_dir / "grouped_cv.csv"
     cv_table = pd.read_csv(cv_path, index_col=0) if cv_path and cv_path.is_file() else None
+    if training_rows is not None and training_rows != len(table):
+        notes.append(f"the model was trained on {training_rows} rows and the labelled data "
+                     f"now has {len(table)}: the per-fold table is the model's own, from "
+                     "training; the curves and the enrichment use today's rows")
     if cv_table is None:
         from prescreen.validation import cross_validate
         from sklearn.base import clone
@@ -373,7 +384,7 @@ def _validation(campaign: Campaign, model: Any, model_dir: Path | None,
                                   sample_weight=table.weight)
     p = out_of_fold(model, table.X, table.y, table.formulas, sample_weight=table.weight)
     return ValidationData(y=np.asarray(table.y), p_oof=p, cv_table=cv_table,
-                          gap_soc_eV=table.gap_soc_eV), ""
+                          gap_soc_eV=table.gap_soc_eV), notes
 
 
 def _provenance(campaign: Campaign, used_open: bool) -> tuple[Provenance, ...]:
@@ -410,6 +421,23 @@ def _provenance(campaign: Campaign, used_open: bool) -> tuple[Provenance, ...]:
                       ("matplotlib", "matplotlib licence (PSF-style)"), ("jinja2", "BSD-3-Clause")):
         items.append(Provenance(f"{name} {version(name)}", lic, "software"))
     return tuple(items)
+
+
+def _labelled_hit_fraction(labels: pd.DataFrame, threshold: float,
+                           min_gap_eV: float | None) -> float:
+    """Fraction of the campaign's results that are hits by the model's rule (NaN if none).
+
+    With a gap requirement a result without a recorded gap does not count as a hit.
+    """
+    import pandas as pd
+
+    if not len(labels):
+        return float("nan")
+    hit = labels["spillage"].to_numpy(float) >= threshold
+    if min_gap_eV is not None:
+        gap = pd.to_numeric(labels["gap_soc_eV"], errors="coerce").to_numpy(float)
+        hit &= np.nan_to_num(gap, nan=-1.0) >= min_gap_eV
+    return float(hit.mean())
 
 
 def _pool_mask(ranked: pd.DataFrame, pending: set[str], picked: set[str]) -> np.ndarray:
@@ -450,8 +478,8 @@ def collect(
         Precomputed validation (else recomputed: grouped out-of-fold predictions of the
         model's recipe on its training table).
     use_open
-        Whether the model's training table includes ``data_open/`` (default: inferred
-        from the recorded number of training rows).
+        Whether the model's training table includes ``data_open/`` (default: as recorded
+        with the round's model; the shipped default model did).
     progress
         Show progress bars.
 
@@ -506,14 +534,18 @@ def collect(
         random_hits_per_core_hour=float(at_proposal["random_hits_per_core_hour"]),
         after=rec.get("after_this_round"),
     )
+    settings = _model_settings(campaign, summary.model)
+    used_open = bool(settings.get("use_open", True)) if use_open is None else bool(use_open)
     explanation = explain(model, feats.loc[ids])
     sample = pool.index[_even_sample(len(pool), GLOBAL_SHAP_ROWS)]
     global_explanation = explain(model, feats.loc[sample])
     if validation is None:
-        validation, note = _validation(campaign, model, model_dir, use_open, progress,
-                                       settings=_model_settings(campaign, summary.model))
-        if note:
-            notes.append(note)
+        record = (campaign.model_record(summary.model) if summary.model != "default" else None)
+        validation, more = _validation(campaign, model, model_dir, used_open, progress,
+                                       settings=settings,
+                                       training_rows=None if record is None
+                                       else int(record["training_rows"]))
+        notes.extend(more)
     status = campaign.status()
     labels = campaign.labels()
     costs = labels["core_hours"].dropna() if len(labels) else labels.get("core_hours", [])
@@ -522,12 +554,12 @@ def collect(
     fitted, source = cost_model_with_source(campaign)
     cost_model = fitted.as_dict()
     cost_model["source"] = source
-    used_open = bool(use_open) if use_open is not None else trained_with_open_data(campaign)
     return ReportData(
         campaign_name=campaign.name, campaign_path=str(campaign.path),
         generated_at=_dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
         prescreen_version=__version__, status=status, threshold=campaign.threshold,
-        labelled_base_rate=status.positives / status.labelled if status.labelled else float("nan"),
+        labelled_base_rate=_labelled_hit_fraction(labels, campaign.threshold,
+                                                  getattr(model, "min_gap_eV_", None)),
         round=summary, proposals=tuple(rows), explanation=explanation,
         global_explanation=global_explanation, validation=validation,
         spent_core_hours=float(np.sum(costs)) if len(costs) else 0.0,

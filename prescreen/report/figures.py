@@ -142,8 +142,11 @@ def calibration_figure(y: np.ndarray, p: np.ndarray, n_bins: int = 10) -> Figure
     return fig
 
 
-def expected_hits_figure(summary: RoundSummary) -> Figure:
-    """Expected hits of the batch against random picks, and the same per core-hour."""
+def expected_hits_figure(summary: RoundSummary, hit: str = "spillage ≥ threshold") -> Figure:
+    """Expected hits of the batch against random picks, and the same per core-hour.
+
+    ``hit`` says what a hit is, for the axis label (e.g. ``"spillage >= 0.5"``).
+    """
     import matplotlib as mpl
 
     lo, hi = summary.expected_hits_interval
@@ -156,7 +159,7 @@ def expected_hits_figure(summary: RoundSummary) -> Figure:
                       yerr=[[summary.expected_hits - lo], [hi - summary.expected_hits]],
                       color="black", capsize=6, linewidth=1.2,
                       label=f"{summary.interval_level:.0%} interval")
-        left.set_ylabel("expected hits (spillage ≥ threshold)")
+        left.set_ylabel(f"expected hits\n({hit.replace('>=', '≥')})")
         left.legend(loc="upper right")
         left.set_title(f"Round {summary.number}: {summary.n_picks} candidates")
         right.bar(["this batch", "random picks\n(pool average)"],
