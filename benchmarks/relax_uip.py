@@ -10,8 +10,16 @@ the in-plane lattice against the DFT-relaxed one, plus a summary: median and lar
 relative difference, how many land within 1 % and 2 %, and how many changed phase
 (more than 10 % off, or no longer one bonded sheet).
 
-Needs the optional extra: ``pip install -e .[uip-check]`` (CHGNet and PyTorch's CPU
-build, about 1 GB; neither is needed anywhere else in prescreen).
+The potential is free to change the in-plane cell shape (xx, yy, xy strain), while the
+DFT relaxation scales the cell isotropically; the "changed phase" cases are near-isotropic
+changes, so this does not explain them, but compare shapes with that in mind. CHGNet's
+weights were fitted by its authors to relaxations of another project's database; only
+geometries computed here are compared, nothing of it enters ``data_open/``.
+
+Needs the optional extra: ``pip install -e .[uip-check]`` (CHGNet and PyTorch, about
+1 GB with a CPU build of torch 2.13.0; PyPI's default Linux build of torch pulls in CUDA
+libraries of several GB; neither is needed anywhere else in prescreen). It compares every
+labelled structure in ``--data``.
 
 Run: ``python benchmarks/relax_uip.py [--data data_open]`` (about a minute).
 """

@@ -46,10 +46,12 @@ import math
 import multiprocessing as mp
 import os
 import platform
+import signal
 import sys
 import time
 import traceback
 from collections import Counter, defaultdict
+from contextlib import contextmanager
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Iterable, NamedTuple, Sequence
 
@@ -186,6 +188,13 @@ def _write_extxyz_gz(structures: Iterable[tuple["Structure", dict[str, Any]]], p
     os.replace(tmp, path)
 
 
+def _write_text_atomic(path: Path, text: str) -> None:
+    """Write through a temporary file and rename: a kill leaves the old file or the new."""
+    tmp = path.with_name(path.name + ".tmp")
+    tmp.write_text(text, encoding="utf-8")
+    os.replace(tmp, path)
+
+
 def _read_jsonl(path: Path) -> list[dict[str, Any]]:
     """Records of a JSONL checkpoint; a torn last line (after kill -9) is ignored."""
     if not path.exists():
@@ -207,6 +216,15 @@ def _read_jsonl(path: Path) -> list[dict[str, Any]]:
 
 
 def _append_jsonl(path: Path, record: dict[str, Any]) -> None:
+    """Append one record (fsync'ed); a torn last line left by a kill is cut off first."""
+    if path.exists() and path.stat().st_size:
+        with open(path, "rb") as fh:
+            fh.seek(-1, os.SEEK_END)
+            torn = fh.read(1) != b"\n"
+        if torn:
+            data = path.read_bytes()
+            with open(path, "r+b") as fh:
+                fh.truncate(data.rfind(b"\n") + 1)
     with open(path, "a", encoding="utf-8") as fh:
         fh.write(json.dumps(record, sort_keys=True) + "\n")
         fh.flush()
@@ -361,6 +379,19 @@ def _label_one(ident: str, payload: dict[str, Any], result_path: str) -> None:
     os.replace(tmp, result_path)
 
 
+def _child(target: Any, parent: int, *args: Any) -> None:
+    """Child process entry: die with the parent (no orphan runs on), then do the job."""
+    try:
+        import ctypes
+
+        ctypes.CDLL(None, use_errno=True).prctl(1, signal.SIGKILL)  # 1: PR_SET_PDEATHSIG
+    except (OSError, AttributeError):  # not Linux: the parent's clean-up still applies
+        pass
+    if os.getppid() != parent:  # the parent died before the line above
+        os._exit(1)
+    target(*args)
+
+
 def _start(kind: str, ident: str, payload: dict[str, Any], tmpdir: Path,
            kpt_density: float) -> _Job:
     """Fork a child for one job; its result lands in ``<tmpdir>/<kind>-<id>.json``."""
@@ -370,9 +401,42 @@ def _start(kind: str, ident: str, payload: dict[str, Any], tmpdir: Path,
         target, args = _relax_one, (ident, payload, kpt_density, str(result))
     else:
         target, args = _label_one, (ident, payload, str(result))
-    proc = mp.get_context("fork").Process(target=target, args=args)
+    proc = mp.get_context("fork").Process(target=_child, args=(target, os.getpid(), *args))
     proc.start()
     return _Job(kind, ident, proc, time.perf_counter(), result)
+
+
+def _stop(jobs: Sequence[_Job]) -> None:
+    """Kill and reap the children still running (the parent is stopping)."""
+    for job in jobs:
+        if job.process.is_alive():
+            job.process.kill()
+        job.process.join()
+
+
+@contextmanager
+def _work_lock(work: Path) -> Any:
+    """Hold ``<work>/.lock`` for the duration: one writer of the checkpoints at a time.
+
+    A POSIX record lock (``lockf``): it belongs to this process only, so forked
+    workers do not inherit it, and it goes away with the process, however it ends.
+    """
+    import fcntl
+
+    work.mkdir(parents=True, exist_ok=True)
+    path = work / ".lock"
+    fh = open(path, "w")
+    try:
+        fcntl.lockf(fh, fcntl.LOCK_EX | fcntl.LOCK_NB)
+    except OSError:
+        fh.close()
+        raise InputError("another build is using this work folder", path=path,
+                         expected="one build per work folder at a time: wait for it or "
+                         "stop it") from None
+    try:
+        yield
+    finally:
+        fh.close()
 
 
 def _finished(job: _Job, timeout_s: float) -> dict[str, Any] | None:
@@ -391,8 +455,10 @@ def _finished(job: _Job, timeout_s: float) -> dict[str, Any] | None:
         rec = json.loads(job.result.read_text(encoding="utf-8"))
         job.result.unlink()
         return rec
-    why = (f"timeout after {timeout_s:.0f} s" if elapsed >= timeout_s
-           else f"worker died with exit code {job.process.exitcode}")
+    # the labeller's own wording, so that both kinds of failure read alike
+    why = (f"Timeout: no result within {timeout_s:g} s" if elapsed >= timeout_s
+           else f"WorkerDied: worker process ended (exit code {job.process.exitcode}), "
+                "e.g. killed or out of memory")
     return {"id": job.ident, "status": "failed", "reason": why, "wall_s": round(elapsed, 2)}
 
 
@@ -411,32 +477,9 @@ def relax_stage(pool: "pd.DataFrame", ids: Sequence[str], work: Path, *, workers
     ``timeout_s`` seconds; the outcome is appended to the checkpoint as soon as it is
     known.
     """
-    from tqdm.auto import tqdm
-
-    work.mkdir(parents=True, exist_ok=True)
-    log = work / "relax.jsonl"
-    done = {r["id"] for r in _read_jsonl(log)}
-    queue = [i for i in ids if i not in done]
-    rows = pool.set_index("id")
-    tmpdir = work / "relax_tmp"
-    tmpdir.mkdir(exist_ok=True)
-    running: list[_Job] = []
-    bar = tqdm(total=len(queue), desc="relaxing", unit="struct", disable=not progress)
-    while queue or running:
-        while queue and len(running) < max(1, workers):
-            ident = queue.pop(0)
-            running.append(_start("relax", ident, _relax_payload(rows, ident), tmpdir, kpt_density))
-        time.sleep(0.2)
-        for job in list(running):
-            rec = _finished(job, timeout_s)
-            if rec is None:
-                continue
-            running.remove(job)
-            _append_jsonl(log, rec)
-            bar.update(1)
-            bar.set_postfix_str(f"{job.ident}: {rec['status']}")
-    bar.close()
-    return _read_jsonl(log)
+    with _work_lock(work):
+        return _pipeline(pool, ids, work, None, 0, workers=workers, relax_timeout_s=timeout_s,
+                         kpt_density=kpt_density, label=False, progress=progress)[1]
 
 
 def pipeline_stage(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Path, seed: int,
@@ -448,71 +491,111 @@ def pipeline_stage(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
     A free worker takes the label of a finished relaxation first, else the next
     relaxation, so no core waits for a batch to finish (relaxations take from one minute
     to half an hour). The parent is the only writer of both checkpoints
-    (``<work>/relax.jsonl`` and the labeller's ``<work>/labels``); ``data_open/`` is
-    packed after every ``pack_every`` new labels and at the end. Resumes like the
-    separate stages: structures relaxed but not labelled are labelled first.
+    (``<work>/relax.jsonl`` and the labeller's ``<work>/labels``; a lock file keeps a
+    second build out); ``data_open/`` is packed after every ``pack_every`` new labels and
+    at the end when anything changed. Resumes like the separate stages: results that
+    children finished before an interruption are collected, and structures relaxed but
+    not labelled are labelled first. Children die with the parent.
     """
+    with _work_lock(work):
+        return _pipeline(pool, ids, work, out, seed, workers=workers,
+                         relax_timeout_s=relax_timeout_s, label_timeout_s=label_timeout_s,
+                         kpt_density=kpt_density, pack_every=pack_every, progress=progress)[0]
+
+
+def _pipeline(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Path | None,
+              seed: int, *, workers: int, relax_timeout_s: float = 3600.0,
+              label_timeout_s: float = 1800.0, kpt_density: float = RELAX_KPT_DENSITY,
+              pack_every: int = 10, label: bool = True,
+              progress: bool = True) -> tuple[int, list[dict[str, Any]]]:
+    """The scheduler behind both stages; returns (new labels, all relaxation records)."""
     from tqdm.auto import tqdm
 
     from prescreen.physics.dft import LabelRecord, LabelSettings
     from prescreen.physics.labeller import RecordStore
 
-    work.mkdir(parents=True, exist_ok=True)
     log = work / "relax.jsonl"
-    relaxed = _read_jsonl(log)
-    settings = LabelSettings()
-    store = RecordStore(work / "labels", settings)
-    labelled = store.status()
     rows = pool.set_index("id")
-    label_queue = [r for r in relaxed if r.get("status") == "ok" and r["id"] not in labelled]
-    done = {r["id"] for r in relaxed}
-    relax_queue = [i for i in ids if i not in done]
+    settings = LabelSettings()
+    store = RecordStore(work / "labels", settings) if label else None
     tmpdir = work / "relax_tmp"
-    tmpdir.mkdir(exist_ok=True)
-    running: list[_Job] = []
-    new_labels = 0
-    bar = tqdm(total=len(label_queue) + len(relax_queue), desc="relax + label", unit="job",
+    tmpdir.mkdir(parents=True, exist_ok=True)
+    new_labels = changed = 0
+    label_queue: list[dict[str, Any]] = []
+
+    def record(kind: str, ident: str, rec: dict[str, Any]) -> str:
+        """Write one finished job to its checkpoint; returns a short outcome."""
+        nonlocal new_labels, changed
+        changed += 1
+        if kind == "relax":
+            _append_jsonl(log, rec)
+            if label and rec.get("status") == "ok":
+                label_queue.append(rec)
+                bar.total += 1
+            return f"relax {rec.get('status')}"
+        if "settings" not in rec:  # the child left no record: timeout or crash
+            rec = LabelRecord.failed(ident, str(rows.loc[ident, "reduced_formula"]), settings,
+                                     rec["reason"], rec["wall_s"]).as_dict()
+        done = LabelRecord.from_dict(rec)
+        store.append(done)
+        new_labels += 1
+        if out is not None and new_labels % max(1, pack_every) == 0:
+            pack_stage(out, work, seed)
+        return f"spillage {done.spillage:.3f}" if done.ok else "label failed"
+
+    bar = tqdm(total=0, desc="relax + label" if label else "relaxing", unit="job",
                disable=not progress)
-    while label_queue or relax_queue or running:
-        while len(running) < max(1, workers) and (label_queue or relax_queue):
-            if label_queue:
-                rec = label_queue.pop(0)
-                payload = {k: rec[k] for k in ("lattice", "species", "frac_coords")}
-                payload["formula"] = str(rows.loc[rec["id"], "reduced_formula"])
-                running.append(_start("label", rec["id"], payload, tmpdir, kpt_density))
-            else:
-                ident = relax_queue.pop(0)
-                running.append(_start("relax", ident, _relax_payload(rows, ident), tmpdir,
-                                      kpt_density))
-        time.sleep(0.5)
-        for job in list(running):
-            limit = relax_timeout_s if job.kind == "relax" else label_timeout_s
-            rec = _finished(job, limit)
-            if rec is None:
-                continue
-            running.remove(job)
-            bar.update(1)
-            if job.kind == "relax":
-                _append_jsonl(log, rec)
-                if rec.get("status") == "ok":
-                    label_queue.append(rec)
-                    bar.total += 1
-                bar.set_postfix_str(f"{job.ident}: relax {rec['status']}")
-                continue
-            if "settings" not in rec:  # the child left no record: timeout or crash
-                rec = LabelRecord.failed(job.ident, str(rows.loc[job.ident, "reduced_formula"]),
-                                         settings, rec["reason"], rec["wall_s"]).as_dict()
-            label = LabelRecord.from_dict(rec)
-            store.append(label)
-            new_labels += 1
-            bar.set_postfix_str(f"{job.ident}: " + (f"spillage {label.spillage:.3f}" if label.ok
-                                                    else "label failed"))
-            if new_labels % max(1, pack_every) == 0:
-                pack_stage(out, work, seed)
-    bar.close()
-    if new_labels:
+    # results that children wrote before the last run stopped
+    relaxed = {r["id"] for r in _read_jsonl(log)}
+    labelled = store.status() if store is not None else {}
+    for path in sorted(tmpdir.glob("*.json")):
+        kind, _, ident = path.stem.partition("-")
+        try:
+            rec = json.loads(path.read_text(encoding="utf-8"))
+        except (OSError, json.JSONDecodeError):
+            rec = None
+        if rec is not None and kind == "relax" and ident not in relaxed:
+            record(kind, ident, rec)
+        elif rec is not None and kind == "label" and store is not None and ident not in labelled:
+            record(kind, ident, rec)
+        path.unlink()
+    for stale in tmpdir.glob("*.tmp"):
+        stale.unlink()
+    relax = _read_jsonl(log)
+    labelled = store.status() if store is not None else {}
+    label_queue[:] = [r for r in relax if label and r.get("status") == "ok"
+                      and r["id"] not in labelled]
+    done = {r["id"] for r in relax}
+    relax_queue = [i for i in ids if i not in done]
+    bar.total = len(label_queue) + len(relax_queue)
+    running: list[_Job] = []
+    try:
+        while label_queue or relax_queue or running:
+            while len(running) < max(1, workers) and (label_queue or relax_queue):
+                if label_queue:
+                    rec = label_queue.pop(0)
+                    payload = {k: rec[k] for k in ("lattice", "species", "frac_coords")}
+                    payload["formula"] = str(rows.loc[rec["id"], "reduced_formula"])
+                    running.append(_start("label", rec["id"], payload, tmpdir, kpt_density))
+                else:
+                    ident = relax_queue.pop(0)
+                    running.append(_start("relax", ident, _relax_payload(rows, ident), tmpdir,
+                                          kpt_density))
+            time.sleep(0.2)
+            for job in list(running):
+                limit = relax_timeout_s if job.kind == "relax" else label_timeout_s
+                rec = _finished(job, limit)
+                if rec is None:
+                    continue
+                running.remove(job)
+                bar.update(1)
+                bar.set_postfix_str(f"{job.ident}: {record(job.kind, job.ident, rec)}")
+    finally:
+        _stop(running)
+        bar.close()
+    if out is not None and changed:
         pack_stage(out, work, seed)
-    return new_labels
+    return new_labels, _read_jsonl(log)
 
 
 # --- labelling ----------------------------------------------------------------------
@@ -523,8 +606,9 @@ def label_stage(relaxed: Sequence[dict[str, Any]], work: Path, *, workers: int =
     from prescreen.physics.labeller import run_labelling
 
     jobs = [(r["id"], structure_from_row(r)) for r in relaxed if r.get("status") == "ok"]
-    return run_labelling(jobs, work / "labels", settings=LabelSettings(), workers=workers,
-                         timeout_s=timeout_s, progress=progress)
+    with _work_lock(work):
+        return run_labelling(jobs, work / "labels", settings=LabelSettings(), workers=workers,
+                             timeout_s=timeout_s, progress=progress)
 
 
 def _label_records(work: Path) -> list[Any]:
@@ -542,7 +626,8 @@ def _labelled_table(pool: "pd.DataFrame", relax: Sequence[dict[str, Any]],
     import pandas as pd
 
     meta = pool.set_index("id")
-    relax_by_id = {r["id"]: r for r in relax}
+    # the newest successful relaxation of each id (a later failed retry does not count)
+    relax_by_id = {r["id"]: r for r in relax if r.get("status") == "ok"}
     rows = []
     for rec in records:
         if not rec.ok or rec.id not in relax_by_id:
@@ -769,7 +854,7 @@ def pack_stage(out: Path, work: Path, seed: int) -> dict[str, Any]:
     versions = _versions()
     if len(labelled):
         versions.update(json.loads(labelled["versions"].iloc[0]))
-    (out / DATASHEET).write_text(datasheet(pool, labelled, relax_df, seed, versions), encoding="utf-8")
+    _write_text_atomic(out / DATASHEET, datasheet(pool, labelled, relax_df, seed, versions))
     files = [POOL_PARQUET, POOL_XYZ, LABELLED_PARQUET, LABELLED_XYZ, RELAX_PARQUET, DATASHEET]
     manifest = {
         "licence": LICENCE,
@@ -780,7 +865,7 @@ def pack_stage(out: Path, work: Path, seed: int) -> dict[str, Any]:
                    "relaxations": int(len(relax_df))},
         "files": {f: {"sha256": _sha256(out / f), "bytes": (out / f).stat().st_size} for f in files},
     }
-    (out / MANIFEST).write_text(json.dumps(manifest, indent=2, sort_keys=True) + "\n", encoding="utf-8")
+    _write_text_atomic(out / MANIFEST, json.dumps(manifest, indent=2, sort_keys=True) + "\n")
     print(f"pack: {len(pool)} pool, {len(relax_df)} relaxations, {len(labelled)} labelled, "
           f"{manifest['counts']['positives']} positive")
     return manifest
@@ -842,13 +927,14 @@ def run(args: argparse.Namespace) -> int:
                        relax_timeout_s=args.relax_timeout, label_timeout_s=args.timeout,
                        kpt_density=args.relax_kpt_density, pack_every=args.batch,
                        progress=progress)
-        pack_stage(args.out, args.work, args.seed)
     return 0
 
 
 def main(argv: Sequence[str] | None = None) -> int:
     """Command-line entry point; returns the exit code."""
     args = _parser().parse_args(argv)
+    # `kill` (SIGTERM) unwinds like Ctrl-C: the running children are stopped, nothing torn
+    signal.signal(signal.SIGTERM, lambda signum, frame: sys.exit(128 + signum))
     try:
         return run(args)
     except Exception as exc:

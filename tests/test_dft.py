@@ -243,3 +243,15 @@ def test_lattice_scan_extends_past_an_edge_until_the_minimum_is_bracketed(minimu
     assert (j in (0, len(xs) - 1)) == edge
     if not edge:  # a parabola through the bracketing points is exact for a harmonic well
         assert _parabola_minimum(xs, es) == pytest.approx(minimum, abs=1e-9)
+
+
+def test_a_failing_extension_point_ends_the_extension_at_the_edge():
+    from prescreen.physics.dft import _bracketed_scan
+
+    def energy(factors):
+        if factors == (1.15,):
+            raise RuntimeError("SCF did not converge")
+        return np.array([(f - 1.3) ** 2 for f in factors])
+
+    xs, es = _bracketed_scan((0.90, 0.95, 1.00, 1.05, 1.10), energy, max_extensions=3)
+    assert xs[-1] == 1.10 and int(np.argmin(es)) == len(xs) - 1  # still at the edge

@@ -260,7 +260,7 @@ def test_relax_stage_records_outcomes_and_resumes(tmp_path, monkeypatch):
                       pick["Nb"]: "failed", pick["Ti"]: "failed"}
     reasons = {r["id"]: r["reason"] for r in records}
     assert "SCF did not converge" in reasons[pick["Nb"]]
-    assert "timeout" in reasons[pick["Ti"]]
+    assert "Timeout: no result within 5 s" in reasons[pick["Ti"]]
     assert "bonded pieces" in reasons[pick["Cr"]]
     ok = next(r for r in records if r["status"] == "ok")
     assert ok["residual_fmax_eV_per_A"] == pytest.approx(0.01)
@@ -321,3 +321,87 @@ def test_pipeline_labels_each_relaxed_structure_once_and_resumes(tmp_path, monke
                                  progress=False) == 2
     assert len(load_records(work / "labels")) == 5
     assert len(driver._read_jsonl(work / "relax.jsonl")) == 5
+
+
+def test_an_append_after_a_torn_line_keeps_every_record(tmp_path):
+    driver = _driver()
+    log = tmp_path / "relax.jsonl"
+    driver._append_jsonl(log, {"id": "a"})
+    with open(log, "a", encoding="utf-8") as fh:
+        fh.write('{"id": "torn')  # kill -9 while writing
+    driver._append_jsonl(log, {"id": "b"})
+    driver._append_jsonl(log, {"id": "c"})
+    assert [r["id"] for r in driver._read_jsonl(log)] == ["a", "b", "c"]
+
+
+def test_a_second_build_on_the_same_work_folder_is_refused(tmp_path):
+    import multiprocessing as mp
+
+    driver = _driver()
+    ctx = mp.get_context("fork")
+    ready, release = ctx.Event(), ctx.Event()
+
+    def hold():  # another build, in another process
+        with driver._work_lock(tmp_path):
+            ready.set()
+            release.wait(20)
+
+    other = ctx.Process(target=hold)
+    other.start()
+    try:
+        assert ready.wait(20)
+        with pytest.raises(InputError, match=r"another build is using this work folder"):
+            with driver._work_lock(tmp_path):
+                pass
+    finally:
+        release.set()
+        other.join(20)
+    with driver._work_lock(tmp_path):  # free again once the other build has ended
+        pass
+
+
+def _slow_relax(structure, settings, **kwargs):
+    import time as _time
+
+    _time.sleep(60)
+    return structure, 0.01, True
+
+
+def test_the_pipeline_stops_its_children_and_collects_what_they_left(tmp_path, monkeypatch):
+    import prescreen.physics.dft as dft
+    from prescreen.physics.labeller import load_records
+    from prescreen.prototypes import generate_pool, pool_table
+
+    driver = _driver()
+    table = pool_table(generate_pool(prototypes=["MX2-2H"], match_structures=False, progress=False))
+    ids = list(table["id"][:3])
+    work = tmp_path / "work"
+    # a parent that fails mid-run (here: packing) stops its children instead of orphaning them
+    monkeypatch.setattr(dft, "relax_monolayer", _slow_relax)
+    started = []
+    real_start = driver._start
+
+    def spy(*args, **kwargs):
+        if started:  # the parent fails while its first child runs
+            raise RuntimeError("parent fails")
+        started.append(real_start(*args, **kwargs))
+        return started[-1]
+
+    monkeypatch.setattr(driver, "_start", spy)
+    with pytest.raises(RuntimeError, match="parent fails"):
+        driver.pipeline_stage(table, ids, work, tmp_path / "out", 1, workers=2, progress=False)
+    assert len(started) == 1 and not started[0].process.is_alive()  # stopped, not orphaned
+    # results a child finished before the parent stopped are collected on the next run
+    monkeypatch.setattr(driver, "_start", real_start)
+    monkeypatch.setattr(driver, "pack_stage", lambda out, w, seed: None)
+    monkeypatch.setattr(dft, "label_structure", _fake_label)
+    first = driver._relax_payload(table.set_index("id"), ids[0])
+    (work / "relax_tmp" / f"relax-{ids[0]}.json").write_text(json.dumps(
+        {**first, "status": "ok", "reason": "", "residual_fmax_eV_per_A": 0.02, "wall_s": 9.0}))
+    monkeypatch.setattr(dft, "relax_monolayer", lambda s, *a, **k: (s, 0.01, True))
+    assert driver.pipeline_stage(table, ids, work, tmp_path / "out", 1, workers=2,
+                                 progress=False) == 3
+    relax = driver._read_jsonl(work / "relax.jsonl")
+    assert [r["id"] for r in relax].count(ids[0]) == 1 and relax[0]["wall_s"] == 9.0
+    assert {r.id for r in load_records(work / "labels")} == set(ids)
+    assert not list((work / "relax_tmp").iterdir())

@@ -622,7 +622,8 @@ def _bracketed_scan(scales: tuple[float, ...], energy: Any,
     lowest energy lies at the first or last scale, one more scale is added beyond it
     (at the scan's smallest spacing), at most ``max_extensions`` times: a starting
     lattice more than the scan's half-width off then costs one energy per step instead
-    of a whole second relaxation.
+    of a whole second relaxation. An extension point whose energy raises ends the
+    extension (the minimum stays at the edge); an error in the first scan propagates.
 
     Returns
     -------
@@ -639,7 +640,10 @@ def _bracketed_scan(scales: tuple[float, ...], energy: Any,
         new = xs[0] - step if j == 0 else xs[-1] + step
         if new <= 0:
             break
-        points[new] = float(energy((new,))[0])
+        try:
+            points[new] = float(energy((new,))[0])
+        except Exception:  # noqa: BLE001 - e.g. no SCF convergence in a squeezed cell
+            break  # keep what was scanned: the caller sees the edge and may retry
     xs = tuple(sorted(points))
     return xs, np.array([points[x] for x in xs])
 
