@@ -226,8 +226,13 @@ class Campaign:
         for table, (column, kind) in added.items():
             columns = {row[1] for row in self._conn.execute(f"PRAGMA table_info({table})")}
             if column not in columns:
-                with self._transaction() as conn:
-                    conn.execute(f"ALTER TABLE {table} ADD COLUMN {column} {kind}")
+                try:
+                    with self._transaction() as conn:
+                        conn.execute(f"ALTER TABLE {table} ADD COLUMN {column} {kind}")
+                except sqlite3.OperationalError as exc:
+                    # another process opened the same old store at the same moment
+                    if "duplicate column name" not in str(exc):
+                        raise
 
     # ------------------------------------------------------------------ opening
     @staticmethod
