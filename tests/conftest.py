@@ -53,3 +53,16 @@ def rocksalt():
 @pytest.fixture
 def rng():
     return np.random.default_rng(20261202)
+
+
+def pytest_collection_modifyitems(config, items):
+    """Skip the tests marked ``dft``, with the reason, where GPAW is not importable."""
+    import importlib.util
+
+    if importlib.util.find_spec("gpaw") is not None:
+        return
+    skip = pytest.mark.skip(reason="gpaw is not importable; run "
+                            "`bash scripts/install_gpaw.sh .venv` (make dft-env)")
+    for item in items:
+        if "dft" in item.keywords:
+            item.add_marker(skip)

@@ -96,3 +96,30 @@ def test_tables_go_to_the_stdout_of_the_call_not_of_the_import():
     with contextlib.redirect_stdout(now):
         render.print_table([("added", 3)])
     assert now.getvalue() == "  added  3\n"
+
+
+def test_z2_refuses_a_layer_without_inversion_and_keeps_earlier_rows(tmp_path, capsys):
+    # 2H-MoS2 (point group -6m2) has no inversion centre (International Tables for
+    # Crystallography, Vol. A; from memory): the parity method must refuse it, before DFT
+    from ase.build import mx2
+    from ase.io import write
+
+    src = tmp_path / "in"
+    src.mkdir()
+    write(src / "mos2-2h.cif", mx2("MoS2", "2H", a=3.18, thickness=3.13, vacuum=8.0))
+    camp = tmp_path / "camp"
+    assert main(["create", str(camp), str(src), "--no-progress"]) == 0
+    out = camp / "z2.csv"
+    out.write_text("id,formula,z2,delta,direct_gap_soc_eV,kmesh,parity_error,wall_s,status,"
+                   "reason\nearlier,Bi,1,-1 +1 +1 +1,0.59,6x6x1,1e-15,20,ok,\n")
+    capsys.readouterr()
+    assert main(["z2", str(camp), "mos2-2h", "--no-progress"]) == 0
+    printed = capsys.readouterr().out
+    assert "mos2-2h: no invariant: the structure has no inversion centre" in printed
+    import pandas as pd
+
+    table = pd.read_csv(out, dtype=str, keep_default_na=False).set_index("id")
+    assert table.loc["mos2-2h", "status"] == "refused" and table.loc["mos2-2h", "z2"] == ""
+    assert table.loc["earlier", "z2"] == "1"  # an earlier run's row is kept
+    assert main(["z2", str(camp), "nope"]) == 2
+    assert "unknown candidate ID" in capsys.readouterr().err

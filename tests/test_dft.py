@@ -15,7 +15,6 @@ reason, only when GPAW is not importable. Reference facts:
 
 from __future__ import annotations
 
-import importlib.util
 import json
 import math
 
@@ -37,9 +36,6 @@ from prescreen.physics.dft import (
     relax_monolayer,
 )
 
-HAVE_GPAW = importlib.util.find_spec("gpaw") is not None
-needs_gpaw = pytest.mark.skipif(not HAVE_GPAW, reason="gpaw is not importable; "
-                                "run `bash scripts/install_gpaw.sh .venv` (make dft-env)")
 
 # Lattice constants and bucklings (Angstrom), all from memory:
 # Bi(111) bilayer a = 4.33, buckling 1.73; stanene a = 4.67, buckling 0.85 (Xu et al. 2013);
@@ -61,7 +57,6 @@ def _same_k(k1: np.ndarray, k2: np.ndarray) -> bool:
 
 
 @pytest.mark.dft
-@needs_gpaw
 @pytest.mark.parametrize(
     "name, topological, gamma_range, k_expected",
     [
@@ -89,7 +84,6 @@ def test_spillage_of_reference_monolayers(name, topological, gamma_range, k_expe
 
 
 @pytest.mark.dft
-@needs_gpaw
 def test_spillage_vanishes_without_soc():
     # With the SOC term scaled to zero the SOC states are the spinor states without SOC,
     # so gamma(k) = 0 at every k: checks the interleaved basis layout and the occupations.
@@ -100,7 +94,6 @@ def test_spillage_vanishes_without_soc():
 
 
 @pytest.mark.dft
-@needs_gpaw
 @pytest.mark.parametrize("soc_scale", [1.0, 0.0])
 def test_ferromagnetic_semiconductor_2h_vse2(soc_scale):
     # 2H-VSe2 monolayer: a ferromagnetic semiconductor in PBE with 1 Bohr magneton per
@@ -122,7 +115,6 @@ def test_ferromagnetic_semiconductor_2h_vse2(soc_scale):
 
 
 @pytest.mark.dft
-@needs_gpaw
 def test_relax_monolayer_finds_the_hbn_lattice_constant():
     # PBE lattice constant of monolayer hBN: about 2.51 A (from memory; experiment for
     # bulk h-BN 2.504 A). Start 2 % compressed; LCAO dzp may differ by ~1 %.

@@ -24,6 +24,7 @@ COMMANDS: dict[str, str] = {
     "rank": "rank",
     "propose": "propose",
     "label": "label",
+    "z2": "z2",
     "report": "report",
 }
 
@@ -37,6 +38,7 @@ HELP: dict[str, str] = {
     "rank": "Rank every candidate by its probability of high spillage (CSV and Parquet).",
     "propose": "Propose the next batch to compute under a core-hour budget.",
     "label": "Compute spillage with the built-in DFT labeller (GPAW) and ingest it.",
+    "z2": "Compute the Z2 invariant of centrosymmetric candidates from DFT parities (GPAW).",
     "report": "Write the allocation report (one HTML file) for a campaign round.",
 }
 

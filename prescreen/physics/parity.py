@@ -1,0 +1,292 @@
+"""The Z2 invariant of a centrosymmetric monolayer from DFT parity eigenvalues.
+
+A high spillage hints at a band inversion; an invariant says whether the inversion is
+topological. For layers with an inversion centre and time-reversal symmetry (no
+magnetism), Fu and Kane, Phys. Rev. B 76, 045302 (2007), showed that
+
+    (-1)^nu = prod_i delta_i,    delta_i = prod_m xi_2m(Gamma_i),
+
+over the four time-reversal-invariant momenta Gamma_i of the 2D Brillouin zone, where
+xi_2m = +-1 is the parity eigenvalue of the m-th occupied Kramers pair. This module
+computes it at the labeller's level of theory (:mod:`prescreen.physics.dft`: GPAW LCAO,
+PBE, dzp, spin-orbit coupling added non-self-consistently):
+
+1. spglib finds the inversion ``r -> -r + t``; each atom ``a`` maps onto an atom
+   ``P(a)`` of the same species, ``t - tau_a = tau_P(a) + L_a`` with a lattice vector
+   ``L_a``.
+2. A ground state without symmetry reduction on an even Gamma-centred mesh, which
+   contains the four TRIMs (0, 0), (1/2, 0), (0, 1/2), (1/2, 1/2).
+3. In GPAW's Bloch sums ``Phi_Mk(r) = sum_R exp(i k.R) phi_M(r - tau_a - R)`` an atomic
+   orbital of angular momentum ``l`` has parity ``(-1)^l``, so at a TRIM the inversion
+   acts on the LCAO basis as ``D[(P(a), mu), (a, mu)] = (-1)^l exp(2 pi i k.L_a)``. Its
+   matrix in the states without SOC is ``P = C* S D C^T`` (coefficients ``C_nM``,
+   overlap ``S_MM``), and in the spinor states with SOC ``V* (P (x) 1_2) V^T`` with the
+   eigenvectors ``V`` of :func:`gpaw.spinorbit.soc_eigenstates` (basis ``2 j + s``, as in
+   :mod:`prescreen.physics.dft`). Its eigenvalues over the occupied states are +-1 in
+   pairs; ``delta_i = (-1)^(N_minus / 2)``.
+
+The eigenvalues are checked: they must lie within :data:`PARITY_TOL` of +-1 and the
+minus signs must come in pairs, else the result is refused (a basis-convention or
+degeneracy problem, never a silent guess). The method needs an insulator with spin-orbit
+coupling at every TRIM; metals and magnets are refused with the reason. Layers without
+an inversion centre need Wilson loops (:mod:`prescreen.physics.z2` for model
+Hamiltonians) instead.
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+
+from prescreen.errors import InputError, LabellingError
+from prescreen.physics.dft import (
+    METAL_GAP_EV,
+    LabelSettings,
+    _formula,
+    _gpaw_calculator,
+    _one_thread,
+    _run_in,
+    choose_kpts,
+    code_versions,
+    prepare_monolayer,
+)
+
+if TYPE_CHECKING:  # pragma: no cover - typing only
+    from ase import Atoms
+    from pymatgen.core import Structure
+
+__all__ = ["PARITY_TOL", "TRIMS", "ParityZ2", "inversion_map", "even_mesh", "z2_from_parities"]
+
+#: Largest distance of a computed parity eigenvalue from +-1 accepted (dimensionless).
+#: Exact symmetry gives 0; the LCAO basis is mapped onto itself, so deviations come
+#: from finite SCF convergence only. Chosen here (numerical tolerance).
+PARITY_TOL: float = 1e-3
+
+#: The four time-reversal-invariant momenta of a 2D Brillouin zone (fractional).
+TRIMS: tuple[tuple[float, float, float], ...] = (
+    (0.0, 0.0, 0.0), (0.5, 0.0, 0.0), (0.0, 0.5, 0.0), (0.5, 0.5, 0.0))
+
+#: Symmetry tolerance (Angstrom) for finding the inversion centre with spglib; common
+#: practice for relaxed structures.
+SYMPREC_A: float = 1e-3
+
+
+@dataclass(frozen=True)
+class ParityZ2:
+    """The Z2 invariant of one monolayer from parities at the TRIMs.
+
+    Attributes
+    ----------
+    id, formula
+        Identifier and reduced formula.
+    z2
+        0 (trivial) or 1 (quantum spin Hall insulator).
+    delta
+        ``delta_i`` (+1 or -1) at each TRIM, in the order of :data:`TRIMS`.
+    n_minus
+        Occupied spinor states of odd parity at each TRIM.
+    parity_error
+        Largest distance of a parity eigenvalue from +-1 (see :data:`PARITY_TOL`).
+    direct_gap_soc_eV
+        Smallest direct gap with SOC over the mesh between the occupied and the empty
+        states (the invariant belongs to the occupied states; the layer can still be a
+        semimetal if bands overlap between different k).
+    kmesh
+        The mesh of the calculation (even in-plane).
+    inversion_centre
+        ``t / 2`` in fractional coordinates: the point the inversion fixes.
+    settings, versions, wall_s
+        Level of theory, code versions, wall time (s).
+    """
+
+    id: str | None
+    formula: str
+    z2: int
+    delta: tuple[int, int, int, int]
+    n_minus: tuple[int, int, int, int]
+    parity_error: float
+    direct_gap_soc_eV: float
+    kmesh: tuple[int, int, int]
+    inversion_centre: tuple[float, float, float]
+    settings: dict[str, Any] = field(repr=False)
+    versions: dict[str, str] = field(repr=False)
+    wall_s: float = 0.0
+
+
+def inversion_map(atoms: "Atoms", symprec: float = SYMPREC_A) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The inversion of a structure: translation, atom permutation and lattice shifts.
+
+    Returns
+    -------
+    t : ndarray, shape (3,)
+        Fractional translation of the inversion ``x -> -x + t``.
+    partner : ndarray of int, shape (n_atoms,)
+        ``partner[a]`` is the atom that ``a`` is mapped onto (same species).
+    shift : ndarray of int, shape (n_atoms, 3)
+        Lattice vectors ``L_a`` (fractional) with ``-x_a + t = x_partner[a] + L_a``.
+
+    Raises
+    ------
+    InputError
+        If the structure has no inversion centre (within ``symprec`` Angstrom).
+    """
+    import spglib
+
+    cell = (np.asarray(atoms.cell), atoms.get_scaled_positions(wrap=False),
+            atoms.get_atomic_numbers())
+    data = spglib.get_symmetry_dataset(cell, symprec=symprec)
+    found = None if data is None else next(
+        (t for r, t in zip(data.rotations, data.translations)
+         if np.array_equal(r, -np.eye(3, dtype=int))), None)
+    if found is None:
+        raise InputError("the structure has no inversion centre", value=_formula(atoms),
+                         expected="a centrosymmetric layer for the parity method (use "
+                         "Wilson loops otherwise)")
+    t = np.asarray(found, dtype=float)
+    x = atoms.get_scaled_positions(wrap=False)
+    numbers = atoms.get_atomic_numbers()
+    partner = np.empty(len(atoms), dtype=int)
+    shift = np.empty((len(atoms), 3), dtype=int)
+    tol = symprec / max(float(np.min(atoms.cell.lengths()[:2])), 1.0) * 10
+    for a in range(len(atoms)):
+        image = -x[a] + t
+        diff = image[None, :] - x
+        nearest = np.rint(diff)
+        err = np.abs(diff - nearest).max(axis=1)
+        err[numbers != numbers[a]] = np.inf
+        b = int(np.argmin(err))
+        if err[b] > tol:
+            raise InputError("inversion found by spglib does not map the atoms onto each "
+                             "other", value=f"{_formula(atoms)} atom {a}",
+                             expected=f"a partner within {tol:.1e} (fractional)")
+        partner[a] = b
+        shift[a] = nearest[b].astype(int)
+    return t, partner, shift
+
+
+def even_mesh(kmesh: tuple[int, int, int]) -> tuple[int, int, int]:
+    """The in-plane sizes rounded up to even numbers (so the mesh holds every TRIM)."""
+    n1, n2, n3 = (int(n) for n in kmesh)
+    return (n1 + n1 % 2, n2 + n2 % 2, n3)
+
+
+def _basis_layout(setups: Any) -> list[tuple[int, int, int]]:
+    """(atom, radial function J, l) of every LCAO basis function M, in GPAW's order."""
+    layout = []
+    for a, setup in enumerate(setups):
+        for j, spline in enumerate(setup.basis_functions_J):
+            layout += [(a, j, spline.l)] * (2 * spline.l + 1)
+    return layout
+
+
+def _inversion_in_basis(layout: list[tuple[int, int, int]], partner: np.ndarray,
+                        shift: np.ndarray, k_c: np.ndarray) -> np.ndarray:
+    """Matrix D of the inversion on the Bloch sums at a TRIM ``k_c`` (fractional)."""
+    first: dict[tuple[int, int], int] = {}
+    for M, (a, j, _) in enumerate(layout):
+        first.setdefault((a, j), M)
+    D = np.zeros((len(layout), len(layout)), dtype=complex)
+    for M, (a, j, ell) in enumerate(layout):
+        m = M - first[(a, j)]
+        target = first[(int(partner[a]), j)] + m
+        D[target, M] = (-1) ** ell * np.exp(2j * np.pi * float(np.dot(k_c, shift[a])))
+    return D
+
+
+def z2_from_parities(structure: "Structure | Atoms", settings: LabelSettings = LabelSettings(),
+                     *, id: str | None = None, workdir: Path | None = None) -> ParityZ2:
+    """Compute the Z2 invariant of a centrosymmetric, non-magnetic insulating monolayer.
+
+    Parameters
+    ----------
+    structure
+        The monolayer (pymatgen ``Structure`` or ``ase.Atoms``), relaxed or as given.
+    settings
+        Level of theory (:class:`~prescreen.physics.dft.LabelSettings`); the mesh is the
+        settings' mesh with each in-plane size rounded up to an even number. ``spinpol``
+        must be False.
+    id
+        Identifier carried into the result.
+    workdir
+        Folder for GPAW's log; a temporary folder when None.
+
+    Returns
+    -------
+    ParityZ2
+
+    Raises
+    ------
+    InputError
+        No inversion centre, or magnetic settings.
+    LabellingError
+        GPAW failed, the layer is a metal with SOC (no gap at some k), or the parity
+        eigenvalues are not +-1 within :data:`PARITY_TOL`.
+    """
+    if settings.spinpol:
+        raise InputError("the parity method needs time-reversal symmetry", value="spinpol=True",
+                         expected="a non-magnetic calculation (spinpol=False)")
+    t0 = time.perf_counter()
+    atoms = prepare_monolayer(structure, settings.vacuum_A)
+    formula = _formula(atoms)
+    name = id or formula
+    t, partner, shift = inversion_map(atoms)
+    kmesh = even_mesh(choose_kpts(atoms, settings))
+    try:
+        from gpaw.spinorbit import soc_eigenstates
+    except ImportError as exc:
+        raise LabellingError(f"{name}: GPAW is not importable; install it with "
+                             "`bash scripts/install_gpaw.sh .venv` (or `make dft-env`)") from exc
+    with _run_in(workdir) as folder, _one_thread():
+        try:
+            calc = _gpaw_calculator(settings, kmesh, folder / "gpaw-parity.txt", False,
+                                    symmetry="off")
+            atoms.calc = calc
+            atoms.get_potential_energy()
+            soc = soc_eigenstates(calc, scale=settings.soc_scale)
+            v_kmn = soc.eigenvectors()  # [k, SOC state m, basis 2 j + s]
+            e_soc = soc.eigenvalues()
+            kpts = np.asarray(calc.get_bz_k_points(), dtype=float)
+            n_occ = int(round(calc.get_number_of_electrons()))
+            wfs_by_k = {int(w.k): (w.C_nM.data.copy(), w.S_MM.data.copy())
+                        for w in calc.dft.ibzwfs}
+            layout = _basis_layout(calc.dft.setups)
+        except Exception as exc:  # GPAW raises many types; keep the cause
+            raise LabellingError(f"{name}: GPAW calculation failed: "
+                                 f"{type(exc).__name__}: {exc}") from exc
+    if len(wfs_by_k) != len(kpts):
+        raise LabellingError(f"{name}: expected the whole mesh without symmetry reduction, "
+                             f"got {len(wfs_by_k)} of {len(kpts)} k points")
+    gap = float(np.min(e_soc[:, n_occ] - e_soc[:, n_occ - 1]))
+    if gap < METAL_GAP_EV:
+        raise LabellingError(f"{name}: no direct gap with spin-orbit coupling at some k "
+                             f"(smallest {gap:.3f} eV < {METAL_GAP_EV} eV): the occupied "
+                             "states, and so the invariant, are not defined")
+    deltas, minus, worst = [], [], 0.0
+    for trim in TRIMS:
+        k = int(np.argmin(np.abs(((kpts - np.asarray(trim)) + 0.5) % 1.0 - 0.5).sum(axis=1)))
+        C, S = wfs_by_k[k]
+        D = _inversion_in_basis(layout, partner, shift, np.asarray(trim))
+        P = C.conj() @ S @ D @ C.T  # inversion in the states without SOC
+        V = v_kmn[k, :n_occ, :]
+        M = V.conj() @ np.kron(P, np.eye(2)) @ V.T
+        xi = np.linalg.eigvalsh(0.5 * (M + M.conj().T))
+        worst = max(worst, float(np.max(np.abs(np.abs(xi) - 1.0))))
+        n_minus = int(np.sum(xi < 0))
+        if worst > PARITY_TOL or n_minus % 2:
+            raise LabellingError(
+                f"{name}: parity eigenvalues at k = {trim[:2]} are not +-1 in Kramers pairs "
+                f"(largest deviation {worst:.2e}, {n_minus} negative); the basis mapping or "
+                "the convergence is in doubt, so no invariant is given")
+        deltas.append(-1 if (n_minus // 2) % 2 else 1)
+        minus.append(n_minus)
+    z2 = 0 if int(np.prod(deltas)) == 1 else 1
+    sdict = settings.as_dict()
+    sdict.update(kmesh=list(kmesh), mode="lcao", nbands="nao", symmetry="off")
+    return ParityZ2(id=id, formula=formula, z2=z2, delta=tuple(deltas), n_minus=tuple(minus),
+                    parity_error=worst, direct_gap_soc_eV=gap, kmesh=kmesh,
+                    inversion_centre=tuple(float(v) for v in (t / 2) % 1.0), settings=sdict,
+                    versions=code_versions(), wall_s=time.perf_counter() - t0)
