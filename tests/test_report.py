@@ -307,3 +307,24 @@ def test_labelled_hit_fraction_follows_the_models_rule():
     assert _labelled_hit_fraction(labels, 0.5, None) == 0.75
     assert _labelled_hit_fraction(labels, 0.5, 0.02) == 0.25  # the metal and the unknown drop
     assert np.isnan(_labelled_hit_fraction(labels.iloc[:0], 0.5, None))
+
+
+def test_invariants_written_by_z2_are_shown_with_the_spillage(built, collected, tmp_path):
+    from prescreen.report.build import INVARIANTS_FILE
+
+    camp = built["campaign"]
+    labelled = camp.labels().index[0]
+    path = camp.path / INVARIANTS_FILE
+    path.write_text("id,formula,z2,delta,direct_gap_soc_eV,kmesh,parity_error,wall_s,status,"
+                    f"reason\n{labelled},X,1,-1 +1 +1 +1,0.5908,6x6x1,4e-15,20,ok,\n"
+                    "other,MoS2,,,,,,,refused,the structure has no inversion centre\n")
+    try:
+        out = build_report(camp, out_path=tmp_path / "r.html", validation=collected.validation)
+    finally:
+        path.unlink()
+    doc = parse(out.read_text(encoding="utf-8"))
+    rows = {a["data-id"]: a for t, a in doc.tags if t == "tr" and "data-z2" in a}
+    assert rows[labelled]["data-z2"] == "1" and rows["other"]["data-z2"] == ""
+    text = " ".join(doc.text)
+    assert f"{camp.labels().loc[labelled, 'spillage']:.3f}" in text
+    assert "the structure has no inversion centre" in text

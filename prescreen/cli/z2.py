@@ -28,10 +28,11 @@ def run(args: argparse.Namespace) -> int:
     from prescreen.campaign import Campaign
     from prescreen.errors import InputError, LabellingError
     from prescreen.physics.parity import z2_from_parities
+    from prescreen.report.build import INVARIANTS_FILE
 
     rows = []
     with Campaign.open(args.campaign) as campaign:
-        out = args.out or campaign.path / "z2.csv"
+        out = args.out or campaign.path / INVARIANTS_FILE
         known = set(campaign.candidate_ids())
         for cid in args.ids:
             if cid not in known:

@@ -38,6 +38,8 @@ __all__ = [
     "RoundSummary",
     "ProposalRow",
     "Provenance",
+    "InvariantRow",
+    "INVARIANTS_FILE",
     "ReportData",
     "collect",
     "out_of_fold",
@@ -46,6 +48,9 @@ __all__ = [
     "CHROMIUM",
     "write_pdf",
 ]
+
+#: File in a campaign folder where ``prescreen z2`` writes the invariants it computed.
+INVARIANTS_FILE = "z2.csv"
 
 #: Shortlist sizes of the enrichment table (those larger than the data are left out).
 ENRICHMENT_K: tuple[int, ...] = (5, 10, 20, 50, 100)
@@ -232,6 +237,20 @@ class Provenance:
 
 
 @dataclass(frozen=True)
+class InvariantRow:
+    """One line of ``<campaign>/z2.csv`` (written by ``prescreen z2``), with the spillage."""
+
+    id: str
+    formula: str
+    z2: int | None
+    delta: str
+    direct_gap_soc_eV: float | None
+    status: str
+    reason: str
+    spillage: float | None
+
+
+@dataclass(frozen=True)
 class ReportData:
     """Everything the report shows; built by :func:`collect`."""
 
@@ -256,6 +275,8 @@ class ReportData:
     notes: tuple[str, ...] = field(default_factory=tuple)
     #: What a hit is, in words (see :func:`prescreen.acquire.rounds.positive_rule`).
     positive_rule: str = ""
+    #: Z2 invariants computed for the campaign's candidates (``prescreen z2``).
+    invariants: tuple[InvariantRow, ...] = ()
 
 
 # ------------------------------------------------------------------------------ helpers
@@ -441,6 +462,37 @@ def _labelled_hit_fraction(labels: pd.DataFrame, threshold: float,
     return float(hit.mean())
 
 
+def _invariants(campaign: Campaign, labels: pd.DataFrame) -> tuple[InvariantRow, ...]:
+    """The rows of ``<campaign>/z2.csv`` (none when absent), with each one's spillage."""
+    import pandas as pd
+
+    path = campaign.path / INVARIANTS_FILE
+    if not path.is_file():
+        return ()
+    try:
+        table = pd.read_csv(path, dtype=str, keep_default_na=False)
+    except (OSError, ValueError, pd.errors.ParserError) as exc:
+        raise InputError(f"cannot read the invariants file: {exc}", path=path,
+                         expected="the CSV written by `prescreen z2`") from exc
+
+    def number(text: str) -> float | None:
+        return float(text) if text.strip() else None
+
+    rows = []
+    for i, r in enumerate(table.to_dict("records"), start=2):
+        try:
+            rows.append(InvariantRow(
+                id=r["id"], formula=r["formula"], z2=None if not r["z2"] else int(float(r["z2"])),
+                delta=r["delta"], direct_gap_soc_eV=number(r["direct_gap_soc_eV"]),
+                status=r["status"], reason=r["reason"],
+                spillage=(float(labels.loc[r["id"], "spillage"]) if r["id"] in labels.index
+                          else None)))
+        except (KeyError, ValueError) as exc:
+            raise InputError(f"bad invariants row: {exc}", path=path, line=i, value=str(r)[:120],
+                             expected="the columns written by `prescreen z2`") from exc
+    return tuple(rows)
+
+
 def _pool_mask(ranked: pd.DataFrame, pending: set[str], picked: set[str]) -> np.ndarray:
     """Candidates that could be picked in the round: as in propose, plus the picks."""
     from prescreen.acquire.rounds import PROPOSABLE_STATUSES
@@ -567,6 +619,7 @@ def collect(
         n_costed_results=int(len(costs)), cost_model=cost_model,
         provenance=_provenance(campaign, used_open), replay=replay_curves, notes=tuple(notes),
         positive_rule=positive_rule(campaign.threshold, getattr(model, "min_gap_eV_", None)),
+        invariants=_invariants(campaign, labels),
     )
 
 
