@@ -130,6 +130,8 @@ POOL_XYZ = "pool.extxyz.gz"
 LABELLED_PARQUET = "labelled.parquet"
 LABELLED_XYZ = "labelled.extxyz.gz"
 RELAX_PARQUET = "relaxation.parquet"
+#: Checkpoint of the Z2 invariants (in the work folder), one JSON record per line.
+Z2_LOG = "z2.jsonl"
 MANIFEST = "MANIFEST.json"
 DATASHEET = "README.md"
 
@@ -392,6 +394,47 @@ def _child(target: Any, parent: int, *args: Any) -> None:
     target(*args)
 
 
+def _z2_one(ident: str, payload: dict[str, Any], result_path: str) -> None:
+    """Child process: the Z2 invariant of one labelled structure from its parities."""
+    from prescreen.physics.dft import LabelSettings
+    from prescreen.physics.parity import z2_from_parities
+
+    os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+    t0 = time.perf_counter()
+    try:
+        r = z2_from_parities(structure_from_row(payload), LabelSettings(), id=ident)
+        rec = {"id": ident, "status": "ok", "z2": r.z2, "delta": list(r.delta),
+               "n_minus": list(r.n_minus), "parity_error": r.parity_error,
+               "direct_gap_soc_eV": r.direct_gap_soc_eV, "kmesh": list(r.kmesh)}
+    except Exception as exc:  # recorded, not raised: one failure must not stop the run
+        rec = {"id": ident, "status": "failed", "reason": f"{type(exc).__name__}: {exc}"}
+    rec["wall_s"] = round(time.perf_counter() - t0, 2)
+    tmp = result_path + ".tmp"
+    with open(tmp, "w", encoding="utf-8") as fh:
+        json.dump(rec, fh)
+    os.replace(tmp, result_path)
+
+
+def _z2_candidate(relax_rec: dict[str, Any], label: Any) -> dict[str, Any] | None:
+    """Whether a label earns a parity invariant; a record when it cannot have one.
+
+    Returns None when the structure is a gapped positive with an inversion centre (a Z2
+    job is due), ``{"status": "no_inversion", ...}`` for a gapped positive without one,
+    and ``{"status": "skipped"}`` for everything else (not positive, or no gap).
+    """
+    from prescreen.physics.dft import METAL_GAP_EV, prepare_monolayer
+    from prescreen.physics.parity import inversion_map
+
+    if not (label.ok and label.spillage >= POSITIVE_THRESHOLD
+            and label.gap_soc_eV >= METAL_GAP_EV):
+        return {"id": label.id, "status": "skipped"}
+    try:
+        inversion_map(prepare_monolayer(structure_from_row(relax_rec)))
+    except InputError as exc:
+        return {"id": label.id, "status": "no_inversion", "reason": str(exc)}
+    return None
+
+
 def _start(kind: str, ident: str, payload: dict[str, Any], tmpdir: Path,
            kpt_density: float) -> _Job:
     """Fork a child for one job; its result lands in ``<tmpdir>/<kind>-<id>.json``."""
@@ -399,6 +442,8 @@ def _start(kind: str, ident: str, payload: dict[str, Any], tmpdir: Path,
     result.unlink(missing_ok=True)
     if kind == "relax":
         target, args = _relax_one, (ident, payload, kpt_density, str(result))
+    elif kind == "z2":
+        target, args = _z2_one, (ident, payload, str(result))
     else:
         target, args = _label_one, (ident, payload, str(result))
     proc = mp.get_context("fork").Process(target=_child, args=(target, os.getpid(), *args))
@@ -508,13 +553,18 @@ def _pipeline(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Path | 
               label_timeout_s: float = 1800.0, kpt_density: float = RELAX_KPT_DENSITY,
               pack_every: int = 10, label: bool = True,
               progress: bool = True) -> tuple[int, list[dict[str, Any]]]:
-    """The scheduler behind both stages; returns (new labels, all relaxation records)."""
+    """The scheduler behind both stages; returns (new labels, all relaxation records).
+
+    Job kinds, in order of priority: the label of a finished relaxation, the Z2
+    invariant of a new gapped positive with an inversion centre (``<work>/z2.jsonl``),
+    the next relaxation. ``label=False`` relaxes only.
+    """
     from tqdm.auto import tqdm
 
     from prescreen.physics.dft import LabelRecord, LabelSettings
     from prescreen.physics.labeller import RecordStore
 
-    log = work / "relax.jsonl"
+    log, z2_log = work / "relax.jsonl", work / Z2_LOG
     rows = pool.set_index("id")
     settings = LabelSettings()
     store = RecordStore(work / "labels", settings) if label else None
@@ -522,6 +572,17 @@ def _pipeline(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Path | 
     tmpdir.mkdir(parents=True, exist_ok=True)
     new_labels = changed = 0
     label_queue: list[dict[str, Any]] = []
+    z2_queue: list[dict[str, Any]] = []
+    relax_by_id = {r["id"]: r for r in _read_jsonl(log) if r.get("status") == "ok"}
+
+    def consider_z2(done: Any) -> None:
+        """Queue a Z2 job for a new label, or record why it gets none."""
+        verdict = _z2_candidate(relax_by_id[done.id], done)
+        if verdict is None:
+            z2_queue.append(relax_by_id[done.id])
+            bar.total += 1
+        elif verdict["status"] != "skipped":
+            _append_jsonl(z2_log, verdict)
 
     def record(kind: str, ident: str, rec: dict[str, Any]) -> str:
         """Write one finished job to its checkpoint; returns a short outcome."""
@@ -530,14 +591,19 @@ def _pipeline(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Path | 
         if kind == "relax":
             _append_jsonl(log, rec)
             if label and rec.get("status") == "ok":
+                relax_by_id[ident] = rec
                 label_queue.append(rec)
                 bar.total += 1
             return f"relax {rec.get('status')}"
+        if kind == "z2":
+            _append_jsonl(z2_log, rec)
+            return f"Z2 {rec.get('z2')}" if rec.get("status") == "ok" else "Z2 failed"
         if "settings" not in rec:  # the child left no record: timeout or crash
             rec = LabelRecord.failed(ident, str(rows.loc[ident, "reduced_formula"]), settings,
                                      rec["reason"], rec["wall_s"]).as_dict()
         done = LabelRecord.from_dict(rec)
         store.append(done)
+        consider_z2(done)
         new_labels += 1
         if out is not None and new_labels % max(1, pack_every) == 0:
             pack_stage(out, work, seed)
@@ -548,15 +614,17 @@ def _pipeline(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Path | 
     # results that children wrote before the last run stopped
     relaxed = {r["id"] for r in _read_jsonl(log)}
     labelled = store.status() if store is not None else {}
+    with_z2 = {r["id"] for r in _read_jsonl(z2_log)}
     for path in sorted(tmpdir.glob("*.json")):
         kind, _, ident = path.stem.partition("-")
         try:
             rec = json.loads(path.read_text(encoding="utf-8"))
         except (OSError, json.JSONDecodeError):
             rec = None
-        if rec is not None and kind == "relax" and ident not in relaxed:
-            record(kind, ident, rec)
-        elif rec is not None and kind == "label" and store is not None and ident not in labelled:
+        if rec is not None and (
+                (kind == "relax" and ident not in relaxed)
+                or (kind == "label" and store is not None and ident not in labelled)
+                or (kind == "z2" and ident not in with_z2)):
             record(kind, ident, rec)
         path.unlink()
     for stale in tmpdir.glob("*.tmp"):
@@ -565,18 +633,27 @@ def _pipeline(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Path | 
     labelled = store.status() if store is not None else {}
     label_queue[:] = [r for r in relax if label and r.get("status") == "ok"
                       and r["id"] not in labelled]
-    done = {r["id"] for r in relax}
-    relax_queue = [i for i in ids if i not in done]
-    bar.total = len(label_queue) + len(relax_queue)
+    if label:  # labels from before the Z2 jobs existed, or from an interrupted run
+        with_z2 = {r["id"] for r in _read_jsonl(z2_log)} | {r["id"] for r in z2_queue}
+        for done in _label_records(work):
+            if done.id not in with_z2 and done.id in relax_by_id:
+                consider_z2(done)
+    done_ids = {r["id"] for r in relax}
+    relax_queue = [i for i in ids if i not in done_ids]
+    bar.total = len(label_queue) + len(z2_queue) + len(relax_queue)
     running: list[_Job] = []
     try:
-        while label_queue or relax_queue or running:
-            while len(running) < max(1, workers) and (label_queue or relax_queue):
+        while label_queue or z2_queue or relax_queue or running:
+            while len(running) < max(1, workers) and (label_queue or z2_queue or relax_queue):
                 if label_queue:
                     rec = label_queue.pop(0)
                     payload = {k: rec[k] for k in ("lattice", "species", "frac_coords")}
                     payload["formula"] = str(rows.loc[rec["id"], "reduced_formula"])
                     running.append(_start("label", rec["id"], payload, tmpdir, kpt_density))
+                elif z2_queue:
+                    rec = z2_queue.pop(0)
+                    payload = {k: rec[k] for k in ("lattice", "species", "frac_coords")}
+                    running.append(_start("z2", rec["id"], payload, tmpdir, kpt_density))
                 else:
                     ident = relax_queue.pop(0)
                     running.append(_start("relax", ident, _relax_payload(rows, ident), tmpdir,
@@ -621,10 +698,24 @@ def _label_records(work: Path) -> list[Any]:
 
 
 # --- pack ---------------------------------------------------------------------------
+def _z2_columns(z2: dict[str, dict[str, Any]], ident: str) -> dict[str, Any]:
+    """``z2_parity`` (0, 1 or None) and ``z2_status`` of one labelled structure."""
+    rec = z2.get(ident)
+    if rec is None:
+        return {"z2_parity": None, "z2_status": "not computed (not a gapped positive)"}
+    if rec.get("status") == "ok":
+        return {"z2_parity": int(rec["z2"]), "z2_status": "computed"}
+    if rec.get("status") == "no_inversion":
+        return {"z2_parity": None, "z2_status": "no inversion centre"}
+    return {"z2_parity": None, "z2_status": f"failed: {rec.get('reason', '')}"}
+
+
 def _labelled_table(pool: "pd.DataFrame", relax: Sequence[dict[str, Any]],
-                    records: Sequence[Any]) -> "pd.DataFrame":
+                    records: Sequence[Any],
+                    z2: dict[str, dict[str, Any]] | None = None) -> "pd.DataFrame":
     import pandas as pd
 
+    z2 = z2 or {}
     meta = pool.set_index("id")
     # the newest successful relaxation of each id (a later failed retry does not count)
     relax_by_id = {r["id"]: r for r in relax if r.get("status") == "ok"}
@@ -652,13 +743,15 @@ def _labelled_table(pool: "pd.DataFrame", relax: Sequence[dict[str, Any]],
             "kpts": np.asarray(rec.kpts, dtype=np.float32).ravel().tolist(),
             "settings": json.dumps(rec.settings, sort_keys=True, default=str),
             "versions": json.dumps(rec.versions, sort_keys=True),
+            **_z2_columns(z2, rec.id),
         })
     cols = ["id", "prototype", "family", "reduced_formula", "elements", "n_atoms", "spillage",
             "high_spillage", "k_max", "gap_nosoc_eV", "gap_soc_eV", "is_metal", "magmom_muB",
             "kmesh", "wall_s", "core_hours", "relax_wall_s", "residual_fmax_eV_per_A", "a_A",
             "b_A", "gamma_deg", "lattice", "species", "frac_coords", "gamma_k", "kpts",
-            "settings", "versions"]
+            "settings", "versions", "z2_parity", "z2_status"]
     df = pd.DataFrame(rows, columns=cols)
+    df["z2_parity"] = df["z2_parity"].astype("Int8")
     return df.sort_values("id").reset_index(drop=True)
 
 
@@ -703,6 +796,13 @@ def datasheet(pool: "pd.DataFrame", labelled: "pd.DataFrame", relax: "pd.DataFra
     n_keys = pool.groupby(["prototype", "reduced_formula"]).ngroups
     n_lab = len(labelled)
     n_pos = int(labelled["high_spillage"].sum()) if n_lab else 0
+    positive = labelled[labelled["high_spillage"]] if n_lab else labelled
+    n_pos_gapped = int((~positive["is_metal"]).sum()) if n_lab else 0
+    computed = positive[positive["z2_status"] == "computed"] if n_lab else positive
+    z2_text = (f"computed for {len(computed)}, of which {int((computed['z2_parity'] == 1).sum())} "
+               f"have Z2 = 1; {int((positive['z2_status'] == 'no inversion centre').sum())} "
+               "gapped positives have no inversion centre (they need Wilson loops)"
+               if n_lab else "none yet")
     status = relax["status"].value_counts().to_dict() if len(relax) else {}
     core_h = float(labelled["core_hours"].sum()) if n_lab else 0.0
     relax_h = float(relax["wall_s"].fillna(0).sum()) / 3600.0 if len(relax) else 0.0
@@ -745,7 +845,7 @@ numbers by hand (the integrity test checks the file's hash).*
 |---|---|
 | `{POOL_PARQUET}` | the unlabelled pool, one row per candidate: `id`, `prototype`, `family`, `reduced_formula`, `formula`, `elements` (space-separated), `n_elements`, `n_atoms`, `decoration` (JSON, site role -> element), `a_A`, `b_A`, `gamma_deg`, `lattice` (9 floats, row vectors, angstrom), `species`, `frac_coords` (3 per atom) |
 | `{POOL_XYZ}` | the same starting geometries as compressed extended XYZ (`id`, `prototype` per frame; positions printed to 8 decimals, the Parquet file keeps full double precision) |
-| `{LABELLED_PARQUET}` | relaxed and labelled monolayers: pool columns, `spillage` (max over k of gamma(k), electrons), `high_spillage` (spillage >= {POSITIVE_THRESHOLD}), `k_max`, `gap_nosoc_eV`, `gap_soc_eV`, `is_metal`, `magmom_muB`, `kmesh`, `wall_s`, `core_hours`, `relax_wall_s`, `residual_fmax_eV_per_A`, relaxed `lattice`/`species`/`frac_coords`, `gamma_k` and `kpts` (the whole gamma(k) on the mesh), `settings`, `versions` |
+| `{LABELLED_PARQUET}` | relaxed and labelled monolayers: pool columns, `spillage` (max over k of gamma(k), electrons), `high_spillage` (spillage >= {POSITIVE_THRESHOLD}), `k_max`, `gap_nosoc_eV`, `gap_soc_eV`, `is_metal`, `magmom_muB`, `kmesh`, `wall_s`, `core_hours`, `relax_wall_s`, `residual_fmax_eV_per_A`, relaxed `lattice`/`species`/`frac_coords`, `gamma_k` and `kpts` (the whole gamma(k) on the mesh), `settings`, `versions`, `z2_parity` (0 or 1 from parity eigenvalues at the four TRIMs, empty where not computed) and `z2_status` |
 | `{LABELLED_XYZ}` | relaxed labelled structures as compressed extended XYZ (`id`, `spillage` per frame) |
 | `{RELAX_PARQUET}` | every relaxation attempted, with `status` (ok, not_converged, fell_apart, failed), `reason`, residual force and the labelling outcome |
 | `{MANIFEST}` | SHA-256 and size of every file above and of this datasheet |
@@ -760,7 +860,9 @@ numbers by hand (the integrity test checks the file's hash).*
 - Relaxations attempted: {len(relax)} ({status_text}); largest residual force among the
   kept ones: {resid} eV/A.
 - Labelled: **{n_lab}**; positives at spillage >= {POSITIVE_THRESHOLD}: {n_pos}
-  (positive rate {_rate(n_pos, n_lab)}).
+  (positive rate {_rate(n_pos, n_lab)}); {n_pos_gapped} of the positives have a band gap
+  with spin-orbit coupling, the others are metals.
+- Z2 from parities (gapped positives with an inversion centre): {z2_text}.
 - Compute: {core_h:.2f} core-hours of labelling and {relax_h:.2f} core-hours of
   relaxation (wall time of single-core jobs, on a shared machine); median per
   structure: {_median(relax["wall_s"])} s to relax, {_median(labelled["wall_s"])} s to label.
@@ -845,7 +947,8 @@ def pack_stage(out: Path, work: Path, seed: int) -> dict[str, Any]:
     pool = pd.read_parquet(out / POOL_PARQUET)
     relax = _read_jsonl(work / "relax.jsonl")
     records = _label_records(work)
-    labelled = _labelled_table(pool, relax, records)
+    z2 = {r["id"]: r for r in _read_jsonl(work / Z2_LOG)}
+    labelled = _labelled_table(pool, relax, records, z2)
     relax_df = _relax_table(relax, records)
     _write_parquet(labelled, out / LABELLED_PARQUET)
     _write_parquet(relax_df, out / RELAX_PARQUET)

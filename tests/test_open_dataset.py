@@ -48,7 +48,7 @@ LABELLED_COLUMNS = [
     "high_spillage", "k_max", "gap_nosoc_eV", "gap_soc_eV", "is_metal", "magmom_muB",
     "kmesh", "wall_s", "core_hours", "relax_wall_s", "residual_fmax_eV_per_A", "a_A",
     "b_A", "gamma_deg", "lattice", "species", "frac_coords", "gamma_k", "kpts",
-    "settings", "versions",
+    "settings", "versions", "z2_parity", "z2_status",
 ]
 RELAX_STATUSES = {"ok", "not_converged", "fell_apart", "failed"}
 
@@ -163,6 +163,11 @@ def test_labelled_schema_counts_and_ranges(labelled, pool, manifest):
     for row in labelled.to_dict("records"):
         ok, why = check_intact_monolayer(structure_from_row(row))
         assert ok, (row["id"], why)
+    # Z2 from parities: 0 or 1 where computed, and only for gapped positives
+    computed = labelled["z2_status"] == "computed"
+    assert labelled.loc[computed, "z2_parity"].isin([0, 1]).all()
+    assert labelled.loc[~computed, "z2_parity"].isna().all()
+    assert (labelled.loc[computed, "high_spillage"] & ~labelled.loc[computed, "is_metal"]).all()
 
 
 def test_relaxation_log_is_consistent(relaxation, labelled):
@@ -405,3 +410,54 @@ def test_the_pipeline_stops_its_children_and_collects_what_they_left(tmp_path, m
     assert [r["id"] for r in relax].count(ids[0]) == 1 and relax[0]["wall_s"] == 9.0
     assert {r.id for r in load_records(work / "labels")} == set(ids)
     assert not list((work / "relax_tmp").iterdir())
+
+
+def _fake_gapped_positive(structure, settings, *, id=None):
+    """Stand-in for label_structure: every structure a gapped positive (spillage 0.8)."""
+    from prescreen.physics.dft import LabelRecord
+
+    return LabelRecord(id=id, formula=structure.composition.reduced_formula, spillage=0.8,
+                       k_max=np.zeros(3), gap_nosoc_eV=0.3, gap_soc_eV=0.1, is_metal=False,
+                       magmom=0.0, settings=settings.as_dict(), versions={}, wall_s=1.0,
+                       core_hours=1 / 3600, gamma=np.zeros(4), kpts=np.zeros((4, 3)))
+
+
+def _fake_parities(structure, settings, *, id=None):
+    from prescreen.physics.parity import ParityZ2
+
+    return ParityZ2(id=id, formula="X", z2=1, delta=(-1, 1, 1, 1), n_minus=(2, 0, 0, 0),
+                    parity_error=1e-15, direct_gap_soc_eV=0.1, kmesh=(6, 6, 1),
+                    inversion_centre=(0.0, 0.0, 0.5), settings={}, versions={})
+
+
+def test_gapped_positives_get_a_parity_invariant_when_centrosymmetric(tmp_path, monkeypatch):
+    # 1T (D3d) layers have an inversion centre, 2H (D3h) layers none (International
+    # Tables for Crystallography, Vol. A; from memory)
+    import prescreen.physics.dft as dft
+    import prescreen.physics.parity as parity
+    from prescreen.prototypes import generate_pool, pool_table
+
+    driver = _driver()
+    monkeypatch.setattr(dft, "relax_monolayer", lambda s, *a, **k: (s, 0.01, True))
+    monkeypatch.setattr(dft, "label_structure", _fake_gapped_positive)
+    monkeypatch.setattr(parity, "z2_from_parities", _fake_parities)
+    monkeypatch.setattr(driver, "pack_stage", lambda out, work, seed: None)
+    table = pool_table(generate_pool(prototypes=["MX2-1T", "MX2-2H"], match_structures=False,
+                                     progress=False))
+    one_t = table.loc[table["prototype"] == "MX2-1T", "id"].iloc[0]
+    two_h = table.loc[table["prototype"] == "MX2-2H", "id"].iloc[0]
+    work = tmp_path / "work"
+    driver.pipeline_stage(table, [one_t, two_h], work, tmp_path / "out", 1, workers=2,
+                          progress=False)
+    z2 = {r["id"]: r for r in driver._read_jsonl(work / driver.Z2_LOG)}
+    assert z2[one_t]["status"] == "ok" and z2[one_t]["z2"] == 1
+    assert z2[two_h]["status"] == "no_inversion"
+    records = driver._label_records(work)
+    packed = driver._labelled_table(table, driver._read_jsonl(work / "relax.jsonl"), records, z2)
+    by_id = packed.set_index("id")
+    assert by_id.loc[one_t, "z2_parity"] == 1 and by_id.loc[one_t, "z2_status"] == "computed"
+    assert by_id.loc[two_h, "z2_status"] == "no inversion centre"
+    # a rerun computes nothing again
+    assert driver.pipeline_stage(table, [one_t, two_h], work, tmp_path / "out", 1,
+                                 progress=False) == 0
+    assert len(driver._read_jsonl(work / driver.Z2_LOG)) == 2
