@@ -132,6 +132,9 @@ LABELLED_XYZ = "labelled.extxyz.gz"
 RELAX_PARQUET = "relaxation.parquet"
 #: Checkpoint of the Z2 invariants (in the work folder), one JSON record per line.
 Z2_LOG = "z2.jsonl"
+#: A Z2 job may take this many times the labelling timeout: it runs without symmetry
+#: reduction on an even mesh, several times a label's cost (chosen here).
+Z2_TIMEOUT_FACTOR = 3
 MANIFEST = "MANIFEST.json"
 DATASHEET = "README.md"
 
@@ -218,15 +221,23 @@ def _read_jsonl(path: Path) -> list[dict[str, Any]]:
 
 
 def _append_jsonl(path: Path, record: dict[str, Any]) -> None:
-    """Append one record (fsync'ed); a torn last line left by a kill is cut off first."""
+    """Append one record (fsync'ed); a torn last line left by a kill is cut off first
+    (a last line that is whole JSON without its newline is completed instead, as
+    :func:`_read_jsonl` counts it)."""
     if path.exists() and path.stat().st_size:
         with open(path, "rb") as fh:
             fh.seek(-1, os.SEEK_END)
-            torn = fh.read(1) != b"\n"
-        if torn:
+            unterminated = fh.read(1) != b"\n"
+        if unterminated:
             data = path.read_bytes()
-            with open(path, "r+b") as fh:
-                fh.truncate(data.rfind(b"\n") + 1)
+            tail = data[data.rfind(b"\n") + 1:]
+            try:  # a whole record that lost only its newline: keep it
+                json.loads(tail)
+                with open(path, "ab") as fh:
+                    fh.write(b"\n")
+            except ValueError:  # torn by a kill: cut it off
+                with open(path, "r+b") as fh:
+                    fh.truncate(len(data) - len(tail))
     with open(path, "a", encoding="utf-8") as fh:
         fh.write(json.dumps(record, sort_keys=True) + "\n")
         fh.flush()
@@ -391,6 +402,10 @@ def _child(target: Any, parent: int, *args: Any) -> None:
         pass
     if os.getppid() != parent:  # the parent died before the line above
         os._exit(1)
+    # Ctrl-C and `kill` reach the parent, which stops the children itself; a child must not
+    # run the parent's SIGTERM handler (it would unwind into the parent's loop)
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    signal.signal(signal.SIGTERM, signal.SIG_DFL)
     target(*args)
 
 
@@ -429,7 +444,11 @@ def _z2_candidate(relax_rec: dict[str, Any], label: Any) -> dict[str, Any] | Non
             and label.gap_soc_eV >= METAL_GAP_EV):
         return {"id": label.id, "status": "skipped"}
     try:
-        inversion_map(prepare_monolayer(structure_from_row(relax_rec)))
+        atoms = prepare_monolayer(structure_from_row(relax_rec))
+    except InputError as exc:
+        return {"id": label.id, "status": "failed", "reason": f"InputError: {exc}"}
+    try:
+        inversion_map(atoms)
     except InputError as exc:
         return {"id": label.id, "status": "no_inversion", "reason": str(exc)}
     return None
@@ -488,7 +507,9 @@ def _finished(job: _Job, timeout_s: float) -> dict[str, Any] | None:
     """The job's result once its process has ended (killed after ``timeout_s``), else None.
 
     A child that left no result (timeout, crash, out of memory) gives
-    ``{"status": "failed", "reason": ...}``.
+    ``{"status": "failed", "reason": ...}``; one stopped by SIGINT, SIGTERM or SIGHUP gives
+    ``{"status": "interrupted"}``, which is not recorded. The result file stays until the
+    caller has recorded it.
     """
     elapsed = time.perf_counter() - job.started
     if job.process.is_alive() and elapsed < timeout_s:
@@ -496,10 +517,10 @@ def _finished(job: _Job, timeout_s: float) -> dict[str, Any] | None:
     if job.process.is_alive():
         job.process.kill()
     job.process.join()
-    if job.result.exists():
-        rec = json.loads(job.result.read_text(encoding="utf-8"))
-        job.result.unlink()
-        return rec
+    if job.result.exists():  # deleted by the caller once recorded
+        return json.loads(job.result.read_text(encoding="utf-8"))
+    if job.process.exitcode in (-signal.SIGINT, -signal.SIGTERM, -signal.SIGHUP):
+        return {"id": job.ident, "status": "interrupted"}  # not a result: run it again later
     # the labeller's own wording, so that both kinds of failure read alike
     why = (f"Timeout: no result within {timeout_s:g} s" if elapsed >= timeout_s
            else f"WorkerDied: worker process ended (exit code {job.process.exitcode}), "
@@ -621,12 +642,14 @@ def _pipeline(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Path | 
             rec = json.loads(path.read_text(encoding="utf-8"))
         except (OSError, json.JSONDecodeError):
             rec = None
+        if kind in ("label", "z2") and store is None:
+            continue  # a relax-only run leaves them for a run that labels
         if rec is not None and (
                 (kind == "relax" and ident not in relaxed)
-                or (kind == "label" and store is not None and ident not in labelled)
+                or (kind == "label" and ident not in labelled)
                 or (kind == "z2" and ident not in with_z2)):
             record(kind, ident, rec)
-        path.unlink()
+        path.unlink()  # recorded now, or already in its checkpoint, or unreadable
     for stale in tmpdir.glob("*.tmp"):
         stale.unlink()
     relax = _read_jsonl(log)
@@ -660,13 +683,18 @@ def _pipeline(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Path | 
                                           kpt_density))
             time.sleep(0.2)
             for job in list(running):
-                limit = relax_timeout_s if job.kind == "relax" else label_timeout_s
+                limit = {"relax": relax_timeout_s, "label": label_timeout_s,
+                         "z2": Z2_TIMEOUT_FACTOR * label_timeout_s}[job.kind]
                 rec = _finished(job, limit)
                 if rec is None:
                     continue
                 running.remove(job)
                 bar.update(1)
+                if rec.get("status") == "interrupted":
+                    bar.set_postfix_str(f"{job.ident}: interrupted, left for the next run")
+                    continue
                 bar.set_postfix_str(f"{job.ident}: {record(job.kind, job.ident, rec)}")
+                job.result.unlink(missing_ok=True)  # recorded: the checkpoint holds it now
     finally:
         _stop(running)
         bar.close()
@@ -1024,7 +1052,8 @@ def run(args: argparse.Namespace) -> int:
         label_stage(_read_jsonl(args.work / "relax.jsonl"), args.work, workers=args.workers,
                     timeout_s=args.timeout, progress=progress)
     elif args.stage == "pack":
-        pack_stage(args.out, args.work, args.seed)
+        with _work_lock(args.work):  # not while a build writes the same files
+            pack_stage(args.out, args.work, args.seed)
     else:
         pipeline_stage(pool, order, args.work, args.out, args.seed, workers=args.workers,
                        relax_timeout_s=args.relax_timeout, label_timeout_s=args.timeout,

@@ -427,7 +427,8 @@ def _fake_parities(structure, settings, *, id=None):
 
     return ParityZ2(id=id, formula="X", z2=1, delta=(-1, 1, 1, 1), n_minus=(2, 0, 0, 0),
                     parity_error=1e-15, direct_gap_soc_eV=0.1, kmesh=(6, 6, 1),
-                    inversion_centre=(0.0, 0.0, 0.5), settings={}, versions={})
+                    inversion_centre=(0.0, 0.0, 0.5), symmetrised_by_A=0.0, settings={},
+                    versions={})
 
 
 def test_gapped_positives_get_a_parity_invariant_when_centrosymmetric(tmp_path, monkeypatch):
@@ -461,3 +462,12 @@ def test_gapped_positives_get_a_parity_invariant_when_centrosymmetric(tmp_path, 
     assert driver.pipeline_stage(table, [one_t, two_h], work, tmp_path / "out", 1,
                                  progress=False) == 0
     assert len(driver._read_jsonl(work / driver.Z2_LOG)) == 2
+
+
+def test_a_whole_last_record_without_its_newline_is_kept(tmp_path):
+    driver = _driver()
+    log = tmp_path / "relax.jsonl"
+    log.write_text('{"id": "a"}\n{"id": "b"}')  # killed between the record and its newline
+    assert [r["id"] for r in driver._read_jsonl(log)] == ["a", "b"]
+    driver._append_jsonl(log, {"id": "c"})
+    assert [r["id"] for r in driver._read_jsonl(log)] == ["a", "b", "c"]

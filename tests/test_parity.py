@@ -40,10 +40,12 @@ MESH = LabelSettings(kpts=(6, 6, 1))  # even and a multiple of 3: every TRIM and
 
 def test_octahedral_layer_maps_onto_itself_under_inversion():
     atoms = prepare_monolayer(mx2("MoS2", "1T", a=3.18, thickness=3.0, vacuum=8.0))
-    t, partner, shift = inversion_map(atoms)
-    x = atoms.get_scaled_positions(wrap=False)
+    inv = inversion_map(atoms)
+    t, partner, shift = inv.t, inv.partner, inv.shift
+    x = inv.atoms.get_scaled_positions()  # wrapped, as GPAW reads them
     numbers = atoms.get_atomic_numbers()
-    assert np.allclose(-x + t, x[partner] + shift, atol=1e-6)  # the definition
+    assert np.allclose(-x + t, x[partner] + shift, atol=1e-12)  # the definition, exact
+    assert inv.max_move_A < 1e-6  # ASE's 1T layer is centrosymmetric already
     assert (numbers[partner] == numbers).all()
     assert sorted(partner) == list(range(len(atoms)))  # a permutation
     mo = int(np.flatnonzero(numbers == 42)[0])
@@ -59,8 +61,8 @@ def test_trigonal_prismatic_layer_has_no_inversion_centre():
 
 
 def test_inversion_on_the_basis_squares_to_one_at_every_trim():
-    atoms = prepare_monolayer(honeycomb_monolayer("Sn2", 4.67, 0.85))
-    _, partner, shift = inversion_map(atoms)
+    inv = inversion_map(prepare_monolayer(honeycomb_monolayer("Sn2", 4.67, 0.85)))
+    partner, shift = inv.partner, inv.shift
     layout = [(a, j, ell) for a in range(2) for j, ell in enumerate((0, 1, 2))
               for _ in range(2 * ell + 1)]
     for trim in TRIMS:
@@ -69,9 +71,33 @@ def test_inversion_on_the_basis_squares_to_one_at_every_trim():
         assert np.allclose(D.conj().T @ D, np.eye(len(layout)))  # unitary
 
 
-@pytest.mark.parametrize(("mesh", "even"), [((3, 3, 1), (4, 4, 1)), ((6, 9, 1), (6, 10, 1))])
-def test_meshes_are_rounded_up_to_even(mesh, even):
+@pytest.mark.parametrize(("mesh", "even"), [
+    ((9, 9, 1), (12, 12, 1)),  # a hexagonal mesh keeps K (a multiple of 3)
+    ((15, 15, 1), (18, 18, 1)),
+    ((5, 7, 1), (6, 8, 1)),
+    ((6, 10, 1), (6, 10, 1)),
+])
+def test_meshes_are_rounded_up_to_even_keeping_multiples_of_three(mesh, even):
     assert even_mesh(mesh) == even
+
+
+def test_a_slightly_broken_inversion_is_found_and_made_exact_in_gpaws_frame():
+    # 1T layer rotated into an oblique frame, an S atom 3 mA off its symmetric place and
+    # the metal on a cell corner, where wrapping sends 1 - 1e-16 to 0 or leaves it
+    from ase.build import mx2
+
+    atoms = prepare_monolayer(mx2("HfS2", "1T", a=3.63, thickness=2.9, vacuum=8.0))
+    x = atoms.get_scaled_positions(wrap=False)
+    x[0, :2] = [1.0 - 1e-16, -1e-17]
+    atoms.set_scaled_positions(x)
+    atoms.positions[1] += [0.003, 0.0, 0.0]
+    inv = inversion_map(atoms)
+    assert 0.001 < inv.max_move_A < 0.003
+    w = inv.atoms.get_scaled_positions()
+    assert np.allclose(-w + inv.t, w[inv.partner] + inv.shift, atol=1e-12)
+    atoms.positions[1] += [0.05, 0.0, 0.0]  # 0.05 A off: not centrosymmetric any more
+    with pytest.raises(InputError, match="no inversion centre"):
+        inversion_map(atoms)
 
 
 def test_magnetic_settings_are_refused():

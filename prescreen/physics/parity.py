@@ -11,9 +11,11 @@ xi_2m = +-1 is the parity eigenvalue of the m-th occupied Kramers pair. This mod
 computes it at the labeller's level of theory (:mod:`prescreen.physics.dft`: GPAW LCAO,
 PBE, dzp, spin-orbit coupling added non-self-consistently):
 
-1. spglib finds the inversion ``r -> -r + t``; each atom ``a`` maps onto an atom
-   ``P(a)`` of the same species, ``t - tau_a = tau_P(a) + L_a`` with a lattice vector
-   ``L_a``.
+1. spglib finds the inversion ``r -> -r + t`` (within :data:`SYMPREC_A`); each atom
+   ``a`` maps onto an atom ``P(a)`` of the same species, ``t - tau_a = tau_P(a) + L_a``
+   with a lattice vector ``L_a``. The atoms are moved to make the inversion exact and
+   wrapped into the cell as GPAW reads them, and the ``L_a`` are taken in that frame
+   (checked against GPAW's positions after the calculation).
 2. A ground state without symmetry reduction on an even Gamma-centred mesh, which
    contains the four TRIMs (0, 0), (1/2, 0), (0, 1/2), (1/2, 1/2).
 3. In GPAW's Bloch sums ``Phi_Mk(r) = sum_R exp(i k.R) phi_M(r - tau_a - R)`` an atomic
@@ -59,7 +61,8 @@ if TYPE_CHECKING:  # pragma: no cover - typing only
     from ase import Atoms
     from pymatgen.core import Structure
 
-__all__ = ["PARITY_TOL", "TRIMS", "ParityZ2", "inversion_map", "even_mesh", "z2_from_parities"]
+__all__ = ["PARITY_TOL", "SYMPREC_A", "TRIMS", "Inversion", "ParityZ2", "inversion_map",
+           "even_mesh", "z2_from_parities"]
 
 #: Largest distance of a computed parity eigenvalue from +-1 accepted (dimensionless).
 #: Exact symmetry gives 0; the LCAO basis is mapped onto itself, so deviations come
@@ -70,9 +73,26 @@ PARITY_TOL: float = 1e-3
 TRIMS: tuple[tuple[float, float, float], ...] = (
     (0.0, 0.0, 0.0), (0.5, 0.0, 0.0), (0.0, 0.5, 0.0), (0.5, 0.5, 0.0))
 
-#: Symmetry tolerance (Angstrom) for finding the inversion centre with spglib; common
-#: practice for relaxed structures.
-SYMPREC_A: float = 1e-3
+#: Symmetry tolerance (Angstrom) for finding the inversion centre with spglib. Relaxed
+#: structures break a symmetry they started with by far less; the inversion is then made
+#: exact (:func:`inversion_map`), so this only decides what counts as centrosymmetric.
+#: Common practice for relaxed structures.
+SYMPREC_A: float = 1e-2
+
+
+def even_mesh(kmesh: tuple[int, int, int]) -> tuple[int, int, int]:
+    """In-plane sizes rounded up to even numbers, so that the mesh holds every TRIM.
+
+    A size divisible by 3 stays divisible by 3 (9 becomes 12, not 10), so a hexagonal
+    mesh keeps its K points: the smallest direct gap of a Dirac layer is there.
+    """
+    def up(n: int) -> int:
+        if n % 2 == 0:
+            return n
+        return n + 3 if n % 3 == 0 else n + 1
+
+    n1, n2, n3 = (int(n) for n in kmesh)
+    return (up(n1), up(n2), n3)
 
 
 @dataclass(frozen=True)
@@ -98,7 +118,10 @@ class ParityZ2:
     kmesh
         The mesh of the calculation (even in-plane).
     inversion_centre
-        ``t / 2`` in fractional coordinates: the point the inversion fixes.
+        ``t / 2`` in fractional coordinates: the point the inversion fixes. The
+        individual ``delta`` depend on which centre is chosen; the product does not.
+    symmetrised_by_A
+        Largest displacement (Angstrom) applied to make the inversion exact.
     settings, versions, wall_s
         Level of theory, code versions, wall time (s).
     """
@@ -112,66 +135,107 @@ class ParityZ2:
     direct_gap_soc_eV: float
     kmesh: tuple[int, int, int]
     inversion_centre: tuple[float, float, float]
+    symmetrised_by_A: float
     settings: dict[str, Any] = field(repr=False)
     versions: dict[str, str] = field(repr=False)
     wall_s: float = 0.0
 
 
-def inversion_map(atoms: "Atoms", symprec: float = SYMPREC_A) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """The inversion of a structure: translation, atom permutation and lattice shifts.
+@dataclass(frozen=True)
+class Inversion:
+    """An inversion centre of a structure, made exact.
 
-    Returns
-    -------
+    Attributes
+    ----------
+    atoms : ase.Atoms
+        The structure with each atom moved onto the mean of itself and its partner's
+        image (so the inversion is exact) and wrapped into the cell, as GPAW will read
+        it (``get_scaled_positions()``).
     t : ndarray, shape (3,)
         Fractional translation of the inversion ``x -> -x + t``.
     partner : ndarray of int, shape (n_atoms,)
         ``partner[a]`` is the atom that ``a`` is mapped onto (same species).
     shift : ndarray of int, shape (n_atoms, 3)
-        Lattice vectors ``L_a`` (fractional) with ``-x_a + t = x_partner[a] + L_a``.
+        Lattice vectors ``L_a`` (fractional) with ``-x_a + t = x_partner[a] + L_a`` for the
+        wrapped positions ``x`` of ``atoms``.
+    max_move_A : float
+        Largest displacement (Angstrom) the symmetrisation applied.
+    """
+
+    atoms: Any
+    t: np.ndarray
+    partner: np.ndarray
+    shift: np.ndarray
+    max_move_A: float
+
+
+def _partners(x: np.ndarray, numbers: np.ndarray, t: np.ndarray,
+              cell: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Partner, lattice shift and distance (Angstrom) of each atom's inverted image."""
+    partner = np.empty(len(x), dtype=int)
+    shift = np.empty((len(x), 3), dtype=int)
+    dist = np.empty(len(x))
+    for a in range(len(x)):
+        diff = (-x[a] + t)[None, :] - x
+        nearest = np.rint(diff)
+        d = np.linalg.norm((diff - nearest) @ cell, axis=1)
+        d[numbers != numbers[a]] = np.inf
+        b = int(np.argmin(d))
+        partner[a], shift[a], dist[a] = b, nearest[b].astype(int), d[b]
+    return partner, shift, dist
+
+
+def inversion_map(atoms: "Atoms", symprec: float = SYMPREC_A) -> Inversion:
+    """Find the inversion of a structure and make it exact.
+
+    spglib looks for an operation with rotation ``-1`` within ``symprec`` Angstrom; each
+    atom and its partner are then moved symmetrically (onto the mean of the atom and the
+    partner's image), and the positions wrapped into the cell the way GPAW reads them,
+    so that the lattice shifts ``L_a`` are those of GPAW's Bloch sums.
 
     Raises
     ------
     InputError
-        If the structure has no inversion centre (within ``symprec`` Angstrom).
+        If the structure has no inversion centre within ``symprec``.
     """
     import spglib
 
-    cell = (np.asarray(atoms.cell), atoms.get_scaled_positions(wrap=False),
-            atoms.get_atomic_numbers())
-    data = spglib.get_symmetry_dataset(cell, symprec=symprec)
+    cell = np.asarray(atoms.cell)
+    numbers = atoms.get_atomic_numbers()
+    x = atoms.get_scaled_positions(wrap=False)
+    data = spglib.get_symmetry_dataset((cell, x, numbers), symprec=symprec)
     found = None if data is None else next(
         (t for r, t in zip(data.rotations, data.translations)
          if np.array_equal(r, -np.eye(3, dtype=int))), None)
     if found is None:
         raise InputError("the structure has no inversion centre", value=_formula(atoms),
-                         expected="a centrosymmetric layer for the parity method (use "
-                         "Wilson loops otherwise)")
+                         expected=f"a centrosymmetric layer within {symprec:g} A for the "
+                         "parity method (use Wilson loops otherwise)")
     t = np.asarray(found, dtype=float)
-    x = atoms.get_scaled_positions(wrap=False)
-    numbers = atoms.get_atomic_numbers()
-    partner = np.empty(len(atoms), dtype=int)
-    shift = np.empty((len(atoms), 3), dtype=int)
-    tol = symprec / max(float(np.min(atoms.cell.lengths()[:2])), 1.0) * 10
-    for a in range(len(atoms)):
-        image = -x[a] + t
-        diff = image[None, :] - x
-        nearest = np.rint(diff)
-        err = np.abs(diff - nearest).max(axis=1)
-        err[numbers != numbers[a]] = np.inf
-        b = int(np.argmin(err))
-        if err[b] > tol:
-            raise InputError("inversion found by spglib does not map the atoms onto each "
-                             "other", value=f"{_formula(atoms)} atom {a}",
-                             expected=f"a partner within {tol:.1e} (fractional)")
-        partner[a] = b
-        shift[a] = nearest[b].astype(int)
-    return t, partner, shift
+    partner, shift, dist = _partners(x, numbers, t, cell)
+    if sorted(partner) != list(range(len(atoms))) or dist.max() > 2 * symprec:
+        raise InputError("the inversion spglib found does not map the atoms onto each other",
+                         value=f"{_formula(atoms)}: largest mismatch {dist.max():.2e} A",
+                         expected=f"a one-to-one map within {2 * symprec:g} A")
+    # x_a <- mean of x_a and the image of its partner, -x_b + t - L_b (L_b = L_a)
+    sym = 0.5 * (x + (-x[partner] + t - shift[partner]))
+    moved = float(np.linalg.norm((sym - x) @ cell, axis=1).max())
+    out = atoms.copy()
+    out.set_scaled_positions(sym)
+    out.wrap()
+    out.set_scaled_positions(out.get_scaled_positions())  # exactly what GPAW will read
+    w = out.get_scaled_positions()
+    partner2, shift2, dist2 = _partners(w, numbers, t, cell)
+    if not np.array_equal(partner2, partner) or dist2.max() > 1e-8:
+        raise InputError("symmetrising the inversion failed", value=f"{_formula(atoms)}: "
+                         f"residual {dist2.max():.2e} A", expected="an exact inversion")
+    return Inversion(atoms=out, t=t, partner=partner2, shift=shift2, max_move_A=moved)
 
 
-def even_mesh(kmesh: tuple[int, int, int]) -> tuple[int, int, int]:
-    """The in-plane sizes rounded up to even numbers (so the mesh holds every TRIM)."""
-    n1, n2, n3 = (int(n) for n in kmesh)
-    return (n1 + n1 % 2, n2 + n2 % 2, n3)
+def _centre(t: np.ndarray) -> tuple[float, float, float]:
+    """The point ``t / 2`` the inversion fixes, in [0, 1) without -0 or 1 - 1e-16."""
+    c = np.round(np.mod(np.asarray(t, dtype=float) / 2, 1.0), 12) % 1.0
+    return tuple(float(v) + 0.0 for v in c)
 
 
 def _basis_layout(setups: Any) -> list[tuple[int, int, int]]:
@@ -230,10 +294,10 @@ def z2_from_parities(structure: "Structure | Atoms", settings: LabelSettings = L
         raise InputError("the parity method needs time-reversal symmetry", value="spinpol=True",
                          expected="a non-magnetic calculation (spinpol=False)")
     t0 = time.perf_counter()
-    atoms = prepare_monolayer(structure, settings.vacuum_A)
+    inversion = inversion_map(prepare_monolayer(structure, settings.vacuum_A))
+    atoms, partner, shift = inversion.atoms, inversion.partner, inversion.shift
     formula = _formula(atoms)
     name = id or formula
-    t, partner, shift = inversion_map(atoms)
     kmesh = even_mesh(choose_kpts(atoms, settings))
     try:
         from gpaw.spinorbit import soc_eigenstates
@@ -254,9 +318,13 @@ def z2_from_parities(structure: "Structure | Atoms", settings: LabelSettings = L
             wfs_by_k = {int(w.k): (w.C_nM.data.copy(), w.S_MM.data.copy())
                         for w in calc.dft.ibzwfs}
             layout = _basis_layout(calc.dft.setups)
+            relpos = np.asarray(calc.dft.relpos_ac, dtype=float)
         except Exception as exc:  # GPAW raises many types; keep the cause
             raise LabellingError(f"{name}: GPAW calculation failed: "
                                  f"{type(exc).__name__}: {exc}") from exc
+    if not np.allclose(relpos, atoms.get_scaled_positions(), atol=1e-10):
+        raise LabellingError(f"{name}: GPAW placed the atoms elsewhere than the inversion map "
+                             "assumed; no invariant is given")
     if len(wfs_by_k) != len(kpts):
         raise LabellingError(f"{name}: expected the whole mesh without symmetry reduction, "
                              f"got {len(wfs_by_k)} of {len(kpts)} k points")
@@ -267,7 +335,10 @@ def z2_from_parities(structure: "Structure | Atoms", settings: LabelSettings = L
                              "states, and so the invariant, are not defined")
     deltas, minus, worst = [], [], 0.0
     for trim in TRIMS:
-        k = int(np.argmin(np.abs(((kpts - np.asarray(trim)) + 0.5) % 1.0 - 0.5).sum(axis=1)))
+        offset = np.abs(((kpts - np.asarray(trim)) + 0.5) % 1.0 - 0.5).sum(axis=1)
+        k = int(np.argmin(offset))
+        if offset[k] > 1e-8:
+            raise LabellingError(f"{name}: the mesh {kmesh} does not contain the TRIM {trim}")
         C, S = wfs_by_k[k]
         D = _inversion_in_basis(layout, partner, shift, np.asarray(trim))
         P = C.conj() @ S @ D @ C.T  # inversion in the states without SOC
@@ -288,5 +359,6 @@ def z2_from_parities(structure: "Structure | Atoms", settings: LabelSettings = L
     sdict.update(kmesh=list(kmesh), mode="lcao", nbands="nao", symmetry="off")
     return ParityZ2(id=id, formula=formula, z2=z2, delta=tuple(deltas), n_minus=tuple(minus),
                     parity_error=worst, direct_gap_soc_eV=gap, kmesh=kmesh,
-                    inversion_centre=tuple(float(v) for v in (t / 2) % 1.0), settings=sdict,
+                    inversion_centre=_centre(inversion.t),
+                    symmetrised_by_A=inversion.max_move_A, settings=sdict,
                     versions=code_versions(), wall_s=time.perf_counter() - t0)
