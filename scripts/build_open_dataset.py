@@ -63,6 +63,7 @@ if str(ROOT) not in sys.path:  # run as a plain script from a checkout
 
 from prescreen.errors import InputError  # noqa: E402
 from prescreen.physics.dft import MAX_SCAN_EXTENSIONS  # noqa: E402
+from prescreen.physics.parity import SYMPREC_A  # noqa: E402
 from prescreen.prototypes import (  # noqa: E402
     COVALENT_RADII_SOURCE,
     DEFAULT_SEED,
@@ -898,7 +899,7 @@ numbers by hand (the integrity test checks the file's hash).*
 ## How it was made
 
 ```
-python scripts/build_open_dataset.py --seed {seed} --workers 1
+python scripts/build_open_dataset.py --seed {seed} --workers 2    # or: make dataset
 ```
 
 1. **Pool** (`prescreen/prototypes.py`): {len(PROTOTYPES)} monolayer prototypes used in the
@@ -930,6 +931,11 @@ python scripts/build_open_dataset.py --seed {seed} --workers 1
    contain K), Fermi-Dirac smearing, spin-orbit coupling added non-self-consistently,
    spillage of Liu and Vanderbilt, Phys. Rev. B 90, 125133 (2014), with occupations
    from the Fermi level at each k. Spin-paired (non-magnetic) ground states.
+5. **Z2** (`prescreen.physics.parity.z2_from_parities`), for positives with a band gap
+   with spin-orbit coupling and an inversion centre (within {SYMPREC_A} A, then made
+   exact): the same level of theory without symmetry reduction on an even mesh, and
+   the Fu-Kane product of parity eigenvalues of the occupied Kramers pairs at the four
+   time-reversal-invariant momenta (Phys. Rev. B 76, 045302 (2007)).
 
 Versions: {ver}.
 
