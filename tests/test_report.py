@@ -310,7 +310,7 @@ def test_labelled_hit_fraction_follows_the_models_rule():
 
 
 def test_invariants_written_by_z2_are_shown_with_the_spillage(built, collected, tmp_path):
-    from prescreen.report.build import INVARIANTS_FILE
+    from prescreen.invariants import INVARIANTS_FILE
 
     camp = built["campaign"]
     labelled = camp.labels().index[0]

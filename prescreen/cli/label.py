@@ -14,6 +14,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="parallel single-core calculations (default 1)")
     parser.add_argument("--timeout", type=float, default=1800.0,
                         help="wall-time limit per structure in seconds (default 1800)")
+    parser.add_argument("--z2", action="store_true",
+                        help="then compute the Z2 invariant (parities at the TRIMs) of every "
+                        "new hit with a band gap with SOC; results in <campaign>/z2.csv")
     parser.add_argument("--no-progress", action="store_true", help="hide progress bars")
 
 
@@ -22,11 +25,23 @@ def run(args: argparse.Namespace) -> int:
     from prescreen.campaign import Campaign
 
     with Campaign.open(args.campaign) as campaign:
+        wanted = args.ids or campaign.pending_ids()
         out = label_pending(campaign, ids=args.ids or None, workers=args.workers,
                             timeout_s=args.timeout, progress=not args.no_progress)
-    print(f"labelled {out.n_ok} of {out.n_jobs} ({out.core_hours:.3f} core-hours this run); "
-          f"ingested {out.n_ingested} new results")
-    for cid, reason in out.failures:
-        print(f"  failed: {cid}: {reason}")
-    print(f"raw records in {out.out_dir}")
+        print(f"labelled {out.n_ok} of {out.n_jobs} ({out.core_hours:.3f} core-hours this "
+              f"run); ingested {out.n_ingested} new results")
+        for cid, reason in out.failures:
+            print(f"  failed: {cid}: {reason}")
+        print(f"raw records in {out.out_dir}")
+        if args.z2:
+            from prescreen.cli.z2 import print_outcomes
+            from prescreen.invariants import INVARIANTS_FILE, compute_invariants, gapped_hits
+
+            hits = gapped_hits(campaign, wanted)
+            if hits:
+                print(f"Z2 of {len(hits)} hit(s) with a band gap with SOC:")
+                print_outcomes(compute_invariants(campaign, hits, progress=not args.no_progress),
+                               campaign.path / INVARIANTS_FILE)
+            else:
+                print("no new hit with a band gap with SOC: no invariant to compute")
     return 0

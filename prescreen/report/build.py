@@ -22,6 +22,7 @@ import numpy as np
 
 from prescreen.errors import CampaignError, InputError
 from prescreen.hazards import SAFETY_NOTE
+from prescreen.invariants import INVARIANTS_FILE
 
 if TYPE_CHECKING:  # pragma: no cover
     import pandas as pd
@@ -39,7 +40,6 @@ __all__ = [
     "ProposalRow",
     "Provenance",
     "InvariantRow",
-    "INVARIANTS_FILE",
     "ReportData",
     "collect",
     "out_of_fold",
@@ -49,8 +49,6 @@ __all__ = [
     "write_pdf",
 ]
 
-#: File in a campaign folder where ``prescreen z2`` writes the invariants it computed.
-INVARIANTS_FILE = "z2.csv"
 
 #: Shortlist sizes of the enrichment table (those larger than the data are left out).
 ENRICHMENT_K: tuple[int, ...] = (5, 10, 20, 50, 100)
@@ -464,30 +462,20 @@ def _labelled_hit_fraction(labels: pd.DataFrame, threshold: float,
 
 def _invariants(campaign: Campaign, labels: pd.DataFrame) -> tuple[InvariantRow, ...]:
     """The rows of ``<campaign>/z2.csv`` (none when absent), with each one's spillage."""
-    import pandas as pd
+    from prescreen.invariants import read_invariants
 
     path = campaign.path / INVARIANTS_FILE
-    if not path.is_file():
-        return ()
-    try:
-        table = pd.read_csv(path, dtype=str, keep_default_na=False)
-    except (OSError, ValueError, pd.errors.ParserError) as exc:
-        raise InputError(f"cannot read the invariants file: {exc}", path=path,
-                         expected="the CSV written by `prescreen z2`") from exc
-
-    def number(text: str) -> float | None:
-        return float(text) if text.strip() else None
-
     rows = []
-    for i, r in enumerate(table.to_dict("records"), start=2):
+    for i, r in enumerate(read_invariants(path).values(), start=2):
         try:
             rows.append(InvariantRow(
-                id=r["id"], formula=r["formula"], z2=None if not r["z2"] else int(float(r["z2"])),
-                delta=r["delta"], direct_gap_soc_eV=number(r["direct_gap_soc_eV"]),
+                id=r["id"], formula=r["formula"], z2=int(r["z2"]) if r["z2"] else None,
+                delta=r["delta"],
+                direct_gap_soc_eV=float(r["direct_gap_soc_eV"]) if r["direct_gap_soc_eV"] else None,
                 status=r["status"], reason=r["reason"],
                 spillage=(float(labels.loc[r["id"], "spillage"]) if r["id"] in labels.index
                           else None)))
-        except (KeyError, ValueError) as exc:
+        except ValueError as exc:
             raise InputError(f"bad invariants row: {exc}", path=path, line=i, value=str(r)[:120],
                              expected="the columns written by `prescreen z2`") from exc
     return tuple(rows)

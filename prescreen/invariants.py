@@ -1,0 +1,192 @@
+"""Z2 invariants of a campaign's candidates, kept in ``<campaign>/z2.csv``.
+
+:func:`compute_invariants` runs :func:`prescreen.physics.parity.z2_from_parities` (the
+Fu–Kane parity criterion at the built-in labeller's level of theory) for chosen
+candidates and records each outcome, a refusal with its reason included, in one CSV
+that the allocation report reads. The file is rewritten after every candidate through a
+temporary file, so an interruption loses at most the calculation in progress; a refusal
+never replaces an earlier computed invariant of the same candidate.
+"""
+
+from __future__ import annotations
+
+import csv
+import importlib.util
+import os
+from collections.abc import Iterable
+from dataclasses import dataclass
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+from prescreen.errors import InputError, LabellingError
+
+if TYPE_CHECKING:  # pragma: no cover
+    from prescreen.campaign import Campaign
+
+__all__ = ["INVARIANTS_FILE", "COLUMNS", "InvariantOutcome", "read_invariants",
+           "gapped_hits", "compute_invariants"]
+
+#: File in a campaign folder that holds the invariants.
+INVARIANTS_FILE = "z2.csv"
+
+#: Columns of the file, in order.
+COLUMNS: tuple[str, ...] = ("id", "formula", "z2", "delta", "direct_gap_soc_eV", "kmesh",
+                            "inversion_centre", "parity_error", "wall_s", "status", "reason")
+
+
+@dataclass(frozen=True)
+class InvariantOutcome:
+    """What one candidate's calculation gave.
+
+    Attributes
+    ----------
+    id
+        Candidate identifier.
+    row
+        The row as written (strings, :data:`COLUMNS`).
+    kept_earlier
+        True when the calculation was refused but an earlier computed invariant of the
+        candidate stays in the file.
+    """
+
+    id: str
+    row: dict[str, str]
+    kept_earlier: bool = False
+
+    def describe(self) -> str:
+        """One line for a terminal."""
+        r = self.row
+        if self.kept_earlier:
+            return f"{self.id}: no invariant this time ({r['reason']}); the earlier result is kept"
+        if r["status"] == "ok":
+            return (f"{self.id}: Z2 = {r['z2']} (parities {r['delta']}, direct gap "
+                    f"{r['direct_gap_soc_eV']} eV)")
+        return f"{self.id}: no invariant: {r['reason']}"
+
+
+def read_invariants(path: str | Path) -> dict[str, dict[str, str]]:
+    """Rows of an invariants file by ID (empty when the file does not exist).
+
+    Raises
+    ------
+    InputError
+        If the file has no ``id`` column or cannot be read as CSV.
+    """
+    path = Path(path)
+    if not path.is_file():
+        return {}
+    rows: dict[str, dict[str, str]] = {}
+    try:
+        with open(path, newline="", encoding="utf-8") as fh:
+            reader = csv.DictReader(fh)
+            if reader.fieldnames is None or "id" not in reader.fieldnames:
+                raise InputError("not a Z2 results file", path=path, line=1,
+                                 value=",".join(reader.fieldnames or []),
+                                 expected="the columns " + ",".join(COLUMNS))
+            for row in reader:
+                rows[row["id"]] = {c: row.get(c) or "" for c in COLUMNS}
+    except (OSError, UnicodeDecodeError, csv.Error) as exc:
+        raise InputError(f"cannot read the invariants file: {exc}", path=path,
+                         expected="the CSV written by `prescreen z2`") from exc
+    return rows
+
+
+def _write(path: Path, rows: dict[str, dict[str, str]]) -> None:
+    """Write all rows through a temporary file (a kill leaves the old file or the new)."""
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_name(path.name + ".tmp")
+    with open(tmp, "w", newline="", encoding="utf-8") as fh:
+        writer = csv.DictWriter(fh, fieldnames=list(COLUMNS), lineterminator="\n")
+        writer.writeheader()
+        writer.writerows(rows.values())
+    os.replace(tmp, path)
+
+
+def gapped_hits(campaign: "Campaign", ids: Iterable[str] | None = None) -> list[str]:
+    """Results at or above the campaign's threshold with a band gap with SOC.
+
+    ``ids`` restricts the search (default: every result). The gap must be recorded
+    (``gap_soc_eV``, which the built-in labeller fills) and at least
+    :data:`prescreen.physics.dft.METAL_GAP_EV`; a metal has no invariant of this kind.
+    """
+    import pandas as pd
+
+    from prescreen.physics.dft import METAL_GAP_EV
+
+    labels = campaign.labels()
+    if ids is not None:
+        labels = labels.loc[labels.index.intersection(list(ids))]
+    gap = pd.to_numeric(labels["gap_soc_eV"], errors="coerce")
+    keep = (labels["spillage"] >= campaign.threshold) & (gap >= METAL_GAP_EV)
+    return list(labels.index[keep])
+
+
+def compute_invariants(campaign: "Campaign", ids: Iterable[str], *, out: str | Path | None = None,
+                       settings: Any = None, progress: bool = True) -> list[InvariantOutcome]:
+    """Compute the Z2 invariant of each candidate and record it in the invariants file.
+
+    Parameters
+    ----------
+    campaign
+        An open campaign.
+    ids
+        Candidate IDs (each computed once, in the order given).
+    out
+        The file to update (default ``<campaign>/z2.csv``); rows of other IDs are kept.
+    settings
+        :class:`prescreen.physics.dft.LabelSettings` (default settings when None).
+    progress
+        Show a progress bar.
+
+    Raises
+    ------
+    InputError
+        GPAW is not importable, or an ID is not a candidate of the campaign. A candidate
+        the method cannot handle (no structure, no inversion centre, no gap with SOC) is
+        recorded as refused with the reason, not raised.
+    """
+    from tqdm.auto import tqdm
+
+    from prescreen.physics.dft import LabelSettings
+    from prescreen.physics.parity import z2_from_parities
+
+    if importlib.util.find_spec("gpaw") is None:
+        raise InputError("GPAW is not importable", value="gpaw",
+                         expected="the DFT extra: `make dft-env` or "
+                         "`bash scripts/install_gpaw.sh .venv`")
+    ids = list(dict.fromkeys(ids))
+    known = set(campaign.candidate_ids())
+    for cid in ids:
+        if cid not in known:
+            raise InputError("unknown candidate ID", path=campaign.path, value=cid,
+                             expected=f"an ID of campaign {campaign.name!r}")
+    path = Path(out) if out is not None else campaign.path / INVARIANTS_FILE
+    table = read_invariants(path)
+    settings = settings or LabelSettings()
+    outcomes = []
+    for cid in tqdm(ids, desc="parities", unit="structure", disable=not progress):
+        structure = campaign.structure(cid)
+        row = dict.fromkeys(COLUMNS, "") | {"id": cid}
+        try:
+            if structure is None:
+                raise InputError("no structure (a formula-only candidate)", value=cid,
+                                 expected="a candidate read from a structure file")
+            r = z2_from_parities(structure, settings, id=cid)
+        except (InputError, LabellingError) as exc:
+            row |= {"formula": "" if structure is None else structure.composition.reduced_formula,
+                    "status": "refused", "reason": str(exc)}
+            if table.get(cid, {}).get("status") == "ok":
+                outcomes.append(InvariantOutcome(cid, row, kept_earlier=True))
+                continue
+        else:
+            row |= {"formula": r.formula, "z2": str(r.z2),
+                    "delta": " ".join(f"{d:+d}" for d in r.delta),
+                    "direct_gap_soc_eV": f"{r.direct_gap_soc_eV:.4f}",
+                    "kmesh": "x".join(map(str, r.kmesh)),
+                    "inversion_centre": " ".join(f"{v:.6f}" for v in r.inversion_centre),
+                    "parity_error": f"{r.parity_error:.2e}", "wall_s": f"{r.wall_s:.1f}",
+                    "status": "ok"}
+        table[cid] = row
+        _write(path, table)  # after every candidate: a kill loses at most the one running
+        outcomes.append(InvariantOutcome(cid, row))
+    return outcomes

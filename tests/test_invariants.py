@@ -1,0 +1,61 @@
+"""Campaign-level Z2 bookkeeping (prescreen.invariants), without DFT.
+
+Reference facts: the 2H (trigonal-prismatic, point group -6m2) MX2 layer has no
+inversion centre (International Tables for Crystallography, Vol. A; from memory), so
+the parity method must refuse it before any calculation. Spillage and gap values below
+are made-up inputs that exercise the selection rule, not physical references.
+"""
+
+from __future__ import annotations
+
+from dataclasses import replace
+
+import pytest
+from ase.build import mx2
+from pymatgen.io.ase import AseAtomsAdaptor
+
+from prescreen.campaign import Campaign
+from prescreen.candidate import Candidate
+from prescreen.errors import InputError
+from prescreen.invariants import INVARIANTS_FILE, compute_invariants, gapped_hits, read_invariants
+from prescreen.io.results import ResultRow
+
+
+@pytest.fixture
+def campaign(tmp_path):
+    camp = Campaign.create(tmp_path / "c", name="inv")
+    two_h = AseAtomsAdaptor.get_structure(mx2("MoS2", "2H", a=3.18, thickness=3.13, vacuum=8.0))
+    camp.add_candidates([Candidate(f"c{i}", "MoS2", f"gen:{i}", two_h.copy()) for i in range(4)]
+                        + [Candidate("f-only", "Bi2Se3", "wish.csv:2")])
+    base = ResultRow(id="c0", spillage=0.9, source="r.csv:2")
+    camp.ingest_results(([replace(base, id="c0", gap_soc_eV=0.3),     # gapped hit
+                          replace(base, id="c1", gap_soc_eV=0.0),     # metallic hit
+                          replace(base, id="c2", spillage=0.1, gap_soc_eV=1.0),  # no hit
+                          replace(base, id="c3")], []))               # hit, gap unknown
+    yield camp
+    camp.close()
+
+
+def test_only_hits_with_a_recorded_gap_are_selected(campaign):
+    assert gapped_hits(campaign) == ["c0"]
+    assert gapped_hits(campaign, ["c1", "c2"]) == []
+
+
+def test_refusals_are_recorded_with_the_reason_and_unknown_ids_raise(campaign):
+    pytest.importorskip("gpaw")
+    outcomes = compute_invariants(campaign, ["c0", "f-only", "c0"], progress=False)
+    assert [o.id for o in outcomes] == ["c0", "f-only"]  # each once
+    rows = read_invariants(campaign.path / INVARIANTS_FILE)
+    assert rows["c0"]["status"] == "refused" and "no inversion centre" in rows["c0"]["reason"]
+    assert "no structure" in rows["f-only"]["reason"]
+    assert "no invariant" in outcomes[0].describe()
+    with pytest.raises(InputError, match="unknown candidate ID"):
+        compute_invariants(campaign, ["nope"], progress=False)
+
+
+def test_a_file_without_an_id_column_is_refused(tmp_path):
+    path = tmp_path / INVARIANTS_FILE
+    path.write_text("name,z2\nx,1\n")
+    with pytest.raises(InputError, match="not a Z2 results file"):
+        read_invariants(path)
+    assert read_invariants(tmp_path / "missing.csv") == {}
