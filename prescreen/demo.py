@@ -70,6 +70,7 @@ def run_demo(out: Path, inputs: Path = EXAMPLES, *, progress: bool = True) -> di
     from prescreen.acquire import rounds
     from prescreen.campaign import Campaign
     from prescreen.cli._render import print_rejections, print_table
+    from prescreen.invariants import INVARIANTS_FILE, read_invariants
     from prescreen.io.results import read_results
     from prescreen.io.structures import iter_candidates
 
@@ -86,7 +87,8 @@ def run_demo(out: Path, inputs: Path = EXAMPLES, *, progress: bool = True) -> di
         search = out / "inputs" / "colleague_search.extxyz"
         n_search = write_search_dump(search)
         _step(f"reading candidates from {inputs} and {search} ({n_search} structures)")
-        sources = [p for p in sorted(inputs.iterdir()) if p.name != "results.csv"] + [search]
+        sources = [p for p in sorted(inputs.iterdir())
+                   if p.name not in ("results.csv", INVARIANTS_FILE)] + [search]
         report = campaign.add_candidates(iter_candidates(sources), progress=progress)
         print(f"read {report.added} candidates; layer check: {report.layer_counts}; "
               f"duplicates: {report.duplicates}")
@@ -98,6 +100,11 @@ def run_demo(out: Path, inputs: Path = EXAMPLES, *, progress: bool = True) -> di
             ing = campaign.ingest_results(read_results(results))
             print(f"ingested {ing.added} results")
             print_rejections(ing.rejections, stream=sys.stdout)
+        checks = inputs / INVARIANTS_FILE
+        if checks.is_file():
+            _step(f"keeping the group's Z2 checks of its hits ({checks})")
+            shutil.copyfile(checks, campaign_dir / INVARIANTS_FILE)
+            print(f"{len(read_invariants(checks))} candidates checked with `prescreen z2`")
 
         _step("training on data_open/ plus the group's results (grouped validation)")
         trained = rounds.train(campaign, progress=progress)

@@ -17,7 +17,9 @@ calculations, made with prescreen's own labeller at the input geometries::
         fg-flat-001 fg-flat-002 fg-tmd-001 fg-tmd-003 fg-db-001
 
 and copied (spillage, core-hours, band gap with SOC) from ``/tmp/fg/labels/records.jsonl``;
-this script leaves that file alone.
+this script leaves that file alone. ``examples/ferngrove/z2.csv`` holds the group's Z2
+checks of its gapped hits, also real, written by ``prescreen z2 /tmp/fg`` (no IDs: every
+gapped hit) and ``prescreen z2 /tmp/fg fg-tmd-001`` (refused: no inversion centre).
 """
 
 from __future__ import annotations

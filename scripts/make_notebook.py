@@ -27,7 +27,7 @@ CELLS = [
            "repeating an earlier one; bad entries are kept as rejections with file, line and "
            "reason."),
     ("code", "inputs = Path('examples/ferngrove')\n"
-             "sources = [p for p in sorted(inputs.iterdir()) if p.name != 'results.csv']\n"
+             "sources = [p for p in sorted(inputs.iterdir()) if p.name not in ('results.csv', 'z2.csv')]\n"
              "campaign = Campaign.create(work / 'campaign', name='ferngrove-notebook')\n"
              "report = campaign.add_candidates(iter_candidates(sources))\n"
              "report.added, report.layer_counts, report.duplicates, report.rejections"),
