@@ -20,6 +20,7 @@ os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 
 VARIANTS = {
     "dataset settings": {},
+    "pre-relax on k density 1.25": {"pre_relax_kpt_density": 1.25},
     "h 0.25 A, density tol 1e-3": {"grid_spacing_A": 0.25, "scf_density_tol": 1e-3},
 }
 
@@ -31,6 +32,7 @@ def main() -> None:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("--prototype", default="MX2-1T")
     p.add_argument("--decoration", default="M=Ti,X=S")
+    p.add_argument("--only", nargs="*", default=None, help="run only these variants")
     args = p.parse_args()
     deco = dict(item.split("=") for item in args.decoration.split(","))
     structure = build_structure(args.prototype, deco)
@@ -38,6 +40,8 @@ def main() -> None:
     print(f"{args.prototype} {deco}: {len(structure)} atoms; load average "
           f"{os.getloadavg()[0]:.1f} on {os.cpu_count()} CPUs")
     for label, extra in VARIANTS.items():
+        if args.only and label not in args.only:
+            continue
         t0 = time.perf_counter()
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")

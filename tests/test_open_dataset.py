@@ -231,7 +231,7 @@ def test_stratified_order_small_cells_first_and_prototypes_take_turns(pool):
     assert driver.stratified_order(pool, seed=1) == order  # same seed, same order
 
 
-def _fake_relax(structure, settings, *, fmax, steps, scales):
+def _fake_relax(structure, settings, *, fmax, steps, scales, pre_relax_kpt_density=None):
     """Stand-in for relax_monolayer: behaviour chosen by the first element."""
     import time as _time
 

@@ -32,7 +32,7 @@ from __future__ import annotations
 import math
 import tempfile
 import time
-from dataclasses import asdict, dataclass, field, fields
+from dataclasses import asdict, dataclass, field, fields, replace
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
@@ -667,6 +667,7 @@ def relax_monolayer(structure: "Structure | Atoms",
                     scf_density_tol: float | None = None,
                     refine_step: float = REFINE_STEP,
                     max_extensions: int = MAX_SCAN_EXTENSIONS,
+                    pre_relax_kpt_density: float | None = None,
                     ) -> tuple["Structure | Atoms", float, bool]:
     """Relax a monolayer at the labeller's level of theory (LCAO, PBE).
 
@@ -704,6 +705,10 @@ def relax_monolayer(structure: "Structure | Atoms",
     max_extensions
         Scale points added past an edge of ``scales`` when the lowest energy lies there
         (:func:`_bracketed_scan`); 0 keeps the scan as given.
+    pre_relax_kpt_density
+        k-point density of the loose pre-relaxation only (``settings.kpt_density`` when
+        None). A coarser mesh makes the pre-relaxation cheaper; the scan and the final
+        relaxation keep ``settings``. Compare lattice constants before using it.
 
     Returns
     -------
@@ -725,14 +730,18 @@ def relax_monolayer(structure: "Structure | Atoms",
     if scf_density_tol is not None:
         extra["convergence"] = {"density": float(scf_density_tol)}
 
-    def attach(a: "Atoms", folder: Path, tag: str) -> None:
+    pre_kmesh = kmesh if pre_relax_kpt_density is None else choose_kpts(
+        atoms, replace(settings, kpt_density=float(pre_relax_kpt_density)))
+
+    def attach(a: "Atoms", folder: Path, tag: str, mesh: tuple[int, int, int] = kmesh) -> None:
         if settings.spinpol:
             a.set_initial_magnetic_moments([settings.initial_magmom_muB] * len(a))
-        a.calc = _gpaw_calculator(settings, kmesh, folder / f"relax-{tag}.txt",
+        a.calc = _gpaw_calculator(settings, mesh, folder / f"relax-{tag}.txt",
                                   settings.spinpol, **extra)
 
-    def relax_positions(a: "Atoms", folder: Path, tag: str, f_tol: float, n_steps: int) -> bool:
-        attach(a, folder, tag)
+    def relax_positions(a: "Atoms", folder: Path, tag: str, f_tol: float, n_steps: int,
+                        mesh: tuple[int, int, int] = kmesh) -> bool:
+        attach(a, folder, tag, mesh)
         return bool(BFGS(a, logfile=str(folder / f"bfgs-{tag}.log")).run(fmax=f_tol,
                                                                           steps=n_steps))
 
@@ -753,7 +762,7 @@ def relax_monolayer(structure: "Structure | Atoms",
             # A rough pre-relaxation at the input cell: the lattice is still off there, so
             # converging tightly would waste steps that the final relaxation repeats.
             relax_positions(atoms, folder, "start", max(fmax, PRE_RELAX_FMAX_EV_PER_A),
-                            min(steps, PRE_RELAX_STEPS))
+                            min(steps, PRE_RELAX_STEPS), pre_kmesh)
             counter = iter(range(10**6))
             scanned, energies = _bracketed_scan(
                 scales, lambda f: scan(atoms, folder, f, f"scale{next(counter)}-"),
