@@ -59,3 +59,24 @@ def test_a_file_without_an_id_column_is_refused(tmp_path):
     with pytest.raises(InputError, match="not a Z2 results file"):
         read_invariants(path)
     assert read_invariants(tmp_path / "missing.csv") == {}
+
+
+def test_label_with_z2_checks_the_new_gapped_hits(campaign, monkeypatch, capsys):
+    # the labelling itself is replaced (its DFT is tested elsewhere); what is checked is
+    # that --z2 picks the gapped hits among the labelled IDs and records the outcome
+    pytest.importorskip("gpaw")
+    from prescreen.acquire import rounds
+    from prescreen.cli.main import main
+
+    def fake_label_pending(camp, *, ids=None, **kwargs):
+        return rounds.LabelOutcome(n_jobs=len(ids), n_ok=len(ids), n_failed=0, n_ingested=0,
+                                   failures=(), core_hours=0.0, out_dir=camp.path / "labels")
+
+    monkeypatch.setattr(rounds, "label_pending", fake_label_pending)
+    path = campaign.path
+    campaign.close()
+    assert main(["label", str(path), "c0", "c1", "c2", "--z2", "--no-progress"]) == 0
+    out = capsys.readouterr().out
+    assert "Z2 of 1 hit(s) with a band gap with SOC" in out  # c0 only: c1 is a metal
+    assert "c0: no invariant: the structure has no inversion centre" in out
+    assert list(read_invariants(path / INVARIANTS_FILE)) == ["c0"]
