@@ -21,6 +21,7 @@ the cost predicted by :class:`prescreen.acquire.cost.CostModel`, fitted out-of-f
 from __future__ import annotations
 
 import argparse
+import math
 import sys
 import time
 from functools import partial
@@ -270,6 +271,12 @@ def main(argv: list[str] | None = None) -> int:
 
     print(f"\n  random selection, expected: {random_runs_to_fraction(N, P, 0.5):.1f} evaluations to 50 %, "
           f"{random_runs_to_fraction(N, P, 0.8):.1f} to 80 % of the {P} positives (N = {N})")
+    # the oracle computes the positives first: no strategy can beat it, so the largest
+    # acceleration any strategy can show is about 1 / base rate
+    oracle_50 = math.ceil(0.5 * P)
+    print(f"  oracle: {oracle_50} evaluations to 50 %: the largest possible acceleration is "
+          f"{random_runs_to_fraction(N, P, 0.5) / oracle_50:.2f}x "
+          f"(goal {GOAL_ACCELERATION_50:g}x)")
     shown = table.rename(columns={f"enrichment_at_{P}": f"EF@{P}"}).set_index("strategy")
     with pd.option_context("display.width", 250, "display.max_columns", 30,
                            "display.float_format", lambda v: f"{v:.2f}"):
