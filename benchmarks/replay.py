@@ -85,14 +85,23 @@ class ForestEnsemble:
         return m.mean(axis=0), m.std(axis=0)
 
 
-def labelled_counts(path: Path) -> tuple[int, int]:
+def hits(table, min_gap_eV: float | None) -> np.ndarray:
+    """Positive labels: spillage at the threshold, and a band gap with SOC if asked."""
+    from prescreen import SPILLAGE_THRESHOLD
+
+    y = table["spillage"].to_numpy(dtype=float) >= SPILLAGE_THRESHOLD
+    if min_gap_eV is not None:
+        y &= table["gap_soc_eV"].to_numpy(dtype=float) >= min_gap_eV
+    return y.astype(int)
+
+
+def labelled_counts(path: Path, min_gap_eV: float | None = None) -> tuple[int, int]:
     """(rows with a spillage and a core-hour value, positives among them)."""
     import pandas as pd
 
-    from prescreen import SPILLAGE_THRESHOLD
-
-    table = pd.read_parquet(path, columns=["spillage", "core_hours"]).dropna()
-    return len(table), int((table["spillage"] >= SPILLAGE_THRESHOLD).sum())
+    table = pd.read_parquet(path, columns=["spillage", "core_hours", "gap_soc_eV"])
+    table = table.dropna(subset=["spillage", "core_hours"])
+    return len(table), int(hits(table, min_gap_eV).sum())
 
 
 def find_labelled(data: Path) -> Path | None:
@@ -143,7 +152,7 @@ def out_of_fold_cost(descriptors, core_hours, seed: int) -> tuple[np.ndarray, st
                   f"out-of-fold log-log r = {r:.2f})")
 
 
-def load_open_data(path: Path, seed: int):
+def load_open_data(path: Path, seed: int, min_gap_eV: float | None = None):
     """X (ours), X (magpie), y, recorded cost, predicted cost, formulas, notes."""
     import pandas as pd
 
@@ -166,11 +175,13 @@ def load_open_data(path: Path, seed: int):
     ours = featurise(list(formulas), structures, progress=False)
     ours = ours.drop(columns=[c for c in ("error",) if c in ours.columns])
     magpie = magpie_features(list(formulas))
-    y = (table["spillage"].to_numpy(dtype=float) >= SPILLAGE_THRESHOLD).astype(int)
+    y = hits(table, min_gap_eV)
     cost = table["core_hours"].to_numpy(dtype=float)
     pred, cost_note = out_of_fold_cost(cost_descriptors(table, structures), cost, seed)
+    rule = f"spillage >= {SPILLAGE_THRESHOLD}" + (
+        "" if min_gap_eV is None else f" and band gap with SOC >= {min_gap_eV:g} eV")
     notes = [f"data: {path}: {len(y)} labelled rows, {y.sum()} positives "
-             f"(spillage >= {SPILLAGE_THRESHOLD}), base rate {y.mean():.3f}",
+             f"({rule}), base rate {y.mean():.3f}",
              f"features: ours {ours.shape[1]} (prescreen.featurise, with structures); "
              f"baseline {magpie.shape[1]} matminer magpie",
              f"cost: campaign pays recorded core_hours (total {cost.sum():.1f}); "
@@ -206,6 +217,8 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--batch-runs", type=float, default=20.0,
                         help="budget per round, in multiples of the median predicted cost")
     parser.add_argument("--until", type=float, default=0.8, help="stop a campaign at this fraction of positives")
+    parser.add_argument("--min-gap", type=float, default=None, metavar="EV",
+                        help="a hit also needs a band gap with SOC of at least EV (insulators)")
     parser.add_argument("--n-models", type=int, default=5, help="ensemble members of SpillageClassifier")
     parser.add_argument("--only", nargs="*", default=None, help="run only these strategy names")
     parser.add_argument("--demo", action="store_true", help="generated data, only to exercise the script")
@@ -226,13 +239,13 @@ def main(argv: list[str] | None = None) -> int:
                   "the labelled dataset does not exist yet. No figures to report.")
             print("(python benchmarks/replay.py PLOT --demo exercises the script on generated data.)")
             return 2
-        counts = labelled_counts(path)
+        counts = labelled_counts(path, args.min_gap)
         if counts[0] < MIN_LABELLED or counts[1] < MIN_POSITIVES:
             print(f"NOT RUN: {path} holds only {counts[0]} labelled rows with {counts[1]} positives; "
                   f"a replay needs at least {MIN_LABELLED} rows and {MIN_POSITIVES} positives "
                   f"(--n-initial {args.n_initial} random evaluations come first). No figures to report.")
             return 2
-        X_ours, X_base, y, cost, pred, formulas, notes = load_open_data(path, seed0)
+        X_ours, X_base, y, cost, pred, formulas, notes = load_open_data(path, seed0, args.min_gap)
     budget = float(args.batch_runs * np.median(pred))
     seeds = list(range(args.seeds))
     print("prescreen replay benchmark")
