@@ -1,9 +1,12 @@
 """Z2 invariants of a campaign's candidates, kept in ``<campaign>/z2.csv``.
 
-:func:`compute_invariants` runs :func:`prescreen.physics.parity.z2_from_parities` (the
-Fu–Kane parity criterion at the built-in labeller's level of theory) for chosen
-candidates and records each outcome, a refusal with its reason included, in one CSV
-that the allocation report reads. The file is rewritten after every candidate through a
+:func:`compute_invariants` computes the Z2 invariant of chosen candidates at the built-in
+labeller's level of theory and records each outcome, a refusal with its reason included,
+in one CSV that the allocation report reads. The method (column ``method``) is the
+Fu–Kane parity criterion (:func:`prescreen.physics.parity.z2_from_parities`) for a layer
+with an inversion centre, and the flow of Wannier charge centres from Wilson loops
+(:func:`prescreen.physics.wilson.z2_from_wilson_loops`) for one without; either can be
+asked for. The file is rewritten after every candidate through a
 temporary file, so an interruption loses at most the calculation in progress; a refusal
 never replaces an earlier computed invariant of the same candidate.
 """
@@ -23,7 +26,7 @@ from prescreen.errors import InputError, LabellingError
 if TYPE_CHECKING:  # pragma: no cover
     from prescreen.campaign import Campaign
 
-__all__ = ["INVARIANTS_FILE", "COLUMNS", "InvariantOutcome", "read_invariants",
+__all__ = ["INVARIANTS_FILE", "COLUMNS", "METHODS", "choose_method", "InvariantOutcome", "read_invariants",
            "gapped_hits", "compute_invariants"]
 
 #: File in a campaign folder that holds the invariants.
@@ -31,7 +34,12 @@ INVARIANTS_FILE = "z2.csv"
 
 #: Columns of the file, in order.
 COLUMNS: tuple[str, ...] = ("id", "formula", "z2", "delta", "direct_gap_soc_eV", "kmesh",
-                            "inversion_centre", "parity_error", "wall_s", "status", "reason")
+                            "inversion_centre", "parity_error", "wall_s", "status", "reason",
+                            "method", "wilson_loops", "min_link")
+
+#: Methods :func:`compute_invariants` knows; ``auto`` takes parities when the layer has
+#: an inversion centre (one ground state, an exact criterion) and Wilson loops otherwise.
+METHODS: tuple[str, ...] = ("auto", "parity", "wilson")
 
 
 @dataclass(frozen=True)
@@ -59,8 +67,9 @@ class InvariantOutcome:
         if self.kept_earlier:
             return f"{self.id}: no invariant this time ({r['reason']}); the earlier result is kept"
         if r["status"] == "ok":
-            return (f"{self.id}: Z2 = {r['z2']} (parities {r['delta']}, direct gap "
-                    f"{r['direct_gap_soc_eV']} eV)")
+            how = (f"parities {r['delta']}" if r["method"] != "wilson"
+                   else f"Wilson loops on {r['wilson_loops']} lines")
+            return f"{self.id}: Z2 = {r['z2']} ({how}, direct gap {r['direct_gap_soc_eV']} eV)"
         return f"{self.id}: no invariant: {r['reason']}"
 
 
@@ -121,8 +130,32 @@ def gapped_hits(campaign: "Campaign", ids: Iterable[str] | None = None) -> list[
     return list(labels.index[keep])
 
 
+def choose_method(structure: Any, method: str = "auto", settings: Any = None) -> str:
+    """``parity`` or ``wilson`` for a structure (``auto``: parity if it has an inversion centre).
+
+    Raises
+    ------
+    InputError
+        An unknown method.
+    """
+    if method not in METHODS:
+        raise InputError("unknown Z2 method", value=method, expected=" or ".join(METHODS))
+    if method != "auto":
+        return method
+    from prescreen.physics.dft import LabelSettings, prepare_monolayer
+    from prescreen.physics.parity import inversion_map
+
+    settings = settings or LabelSettings()
+    try:
+        inversion_map(prepare_monolayer(structure, settings.vacuum_A))
+    except InputError:
+        return "wilson"
+    return "parity"
+
+
 def compute_invariants(campaign: "Campaign", ids: Iterable[str], *, out: str | Path | None = None,
-                       settings: Any = None, progress: bool = True) -> list[InvariantOutcome]:
+                       settings: Any = None, method: str = "auto",
+                       progress: bool = True) -> list[InvariantOutcome]:
     """Compute the Z2 invariant of each candidate and record it in the invariants file.
 
     Parameters
@@ -135,21 +168,27 @@ def compute_invariants(campaign: "Campaign", ids: Iterable[str], *, out: str | P
         The file to update (default ``<campaign>/z2.csv``); rows of other IDs are kept.
     settings
         :class:`prescreen.physics.dft.LabelSettings` (default settings when None).
+    method
+        One of :data:`METHODS`.
     progress
         Show a progress bar.
 
     Raises
     ------
     InputError
-        GPAW is not importable, or an ID is not a candidate of the campaign. A candidate
-        the method cannot handle (no structure, no inversion centre, no gap with SOC) is
-        recorded as refused with the reason, not raised.
+        GPAW is not importable, an ID is not a candidate of the campaign, or the method
+        is unknown. A candidate the method cannot handle (no structure, no inversion
+        centre for ``parity``, no gap with SOC) is recorded as refused with the reason,
+        not raised.
     """
     from tqdm.auto import tqdm
 
     from prescreen.physics.dft import LabelSettings
     from prescreen.physics.parity import z2_from_parities
+    from prescreen.physics.wilson import z2_from_wilson_loops
 
+    if method not in METHODS:
+        raise InputError("unknown Z2 method", value=method, expected=" or ".join(METHODS))
     if importlib.util.find_spec("gpaw") is None:
         raise InputError("GPAW is not importable", value="gpaw",
                          expected="the DFT extra: `make dft-env` or "
@@ -164,14 +203,19 @@ def compute_invariants(campaign: "Campaign", ids: Iterable[str], *, out: str | P
     table = read_invariants(path)
     settings = settings or LabelSettings()
     outcomes = []
-    for cid in tqdm(ids, desc="parities", unit="structure", disable=not progress):
+    for cid in tqdm(ids, desc="Z2 invariants", unit="structure", disable=not progress):
         structure = campaign.structure(cid)
         row = dict.fromkeys(COLUMNS, "") | {"id": cid}
         try:
             if structure is None:
                 raise InputError("no structure (a formula-only candidate)", value=cid,
                                  expected="a candidate read from a structure file")
-            r = z2_from_parities(structure, settings, id=cid)
+            how = choose_method(structure, method, settings)
+            row["method"] = how
+            if how == "parity":
+                r = z2_from_parities(structure, settings, id=cid)
+            else:
+                w = z2_from_wilson_loops(structure, settings, id=cid)
         except (InputError, LabellingError) as exc:
             row |= {"formula": "" if structure is None else structure.composition.reduced_formula,
                     "status": "refused", "reason": str(exc)}
@@ -179,13 +223,20 @@ def compute_invariants(campaign: "Campaign", ids: Iterable[str], *, out: str | P
                 outcomes.append(InvariantOutcome(cid, row, kept_earlier=True))
                 continue
         else:
-            row |= {"formula": r.formula, "z2": str(r.z2),
-                    "delta": " ".join(f"{d:+d}" for d in r.delta),
-                    "direct_gap_soc_eV": f"{r.direct_gap_soc_eV:.4f}",
-                    "kmesh": "x".join(map(str, r.kmesh)),
-                    "inversion_centre": " ".join(f"{v:.6f}" for v in r.inversion_centre),
-                    "parity_error": f"{r.parity_error:.2e}", "wall_s": f"{r.wall_s:.1f}",
-                    "status": "ok"}
+            if how == "parity":
+                row |= {"formula": r.formula, "z2": str(r.z2),
+                        "delta": " ".join(f"{d:+d}" for d in r.delta),
+                        "direct_gap_soc_eV": f"{r.direct_gap_soc_eV:.4f}",
+                        "kmesh": "x".join(map(str, r.kmesh)),
+                        "inversion_centre": " ".join(f"{v:.6f}" for v in r.inversion_centre),
+                        "parity_error": f"{r.parity_error:.2e}", "wall_s": f"{r.wall_s:.1f}",
+                        "status": "ok"}
+            else:
+                row |= {"formula": w.formula, "z2": str(w.z2),
+                        "direct_gap_soc_eV": f"{w.direct_gap_soc_eV:.4f}",
+                        "kmesh": "x".join(map(str, w.kmesh)), "wall_s": f"{w.wall_s:.1f}",
+                        "wilson_loops": f"{len(w.k2)}x{w.nk1}", "min_link": f"{w.min_link:.3f}",
+                        "status": "ok"}
         table[cid] = row
         _write(path, table)  # after every candidate: a kill loses at most the one running
         outcomes.append(InvariantOutcome(cid, row))

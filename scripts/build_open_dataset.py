@@ -419,19 +419,34 @@ def _child(target: Any, parent: int, *args: Any) -> None:
 
 
 def _z2_one(ident: str, payload: dict[str, Any], result_path: str) -> None:
-    """Child process: the Z2 invariant of one labelled structure from its parities."""
+    """Child process: the Z2 invariant of one labelled structure.
+
+    From parities when the layer has an inversion centre, else from Wilson loops
+    (:func:`prescreen.invariants.choose_method`).
+    """
+    from prescreen.invariants import choose_method
     from prescreen.physics.dft import LabelSettings
     from prescreen.physics.parity import z2_from_parities
+    from prescreen.physics.wilson import z2_from_wilson_loops
 
     os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
     t0 = time.perf_counter()
+    rec: dict[str, Any] = {"id": ident}
     try:
-        r = z2_from_parities(structure_from_row(payload), LabelSettings(), id=ident)
-        rec = {"id": ident, "status": "ok", "z2": r.z2, "delta": list(r.delta),
-               "n_minus": list(r.n_minus), "parity_error": r.parity_error,
-               "direct_gap_soc_eV": r.direct_gap_soc_eV, "kmesh": list(r.kmesh)}
+        structure = structure_from_row(payload)
+        rec["method"] = choose_method(structure)
+        if rec["method"] == "parity":
+            r = z2_from_parities(structure, LabelSettings(), id=ident)
+            rec |= {"status": "ok", "z2": r.z2, "delta": list(r.delta),
+                    "n_minus": list(r.n_minus), "parity_error": r.parity_error,
+                    "direct_gap_soc_eV": r.direct_gap_soc_eV, "kmesh": list(r.kmesh)}
+        else:
+            w = z2_from_wilson_loops(structure, LabelSettings(), id=ident)
+            rec |= {"status": "ok", "z2": w.z2, "wilson_loops": len(w.k2), "nk1": w.nk1,
+                    "min_link": w.min_link, "direct_gap_soc_eV": w.direct_gap_soc_eV,
+                    "kmesh": list(w.kmesh)}
     except Exception as exc:  # recorded, not raised: one failure must not stop the run
-        rec = {"id": ident, "status": "failed", "reason": f"{type(exc).__name__}: {exc}"}
+        rec |= {"status": "failed", "reason": f"{type(exc).__name__}: {exc}"}
     rec["wall_s"] = round(time.perf_counter() - t0, 2)
     tmp = result_path + ".tmp"
     with open(tmp, "w", encoding="utf-8") as fh:
@@ -439,27 +454,31 @@ def _z2_one(ident: str, payload: dict[str, Any], result_path: str) -> None:
     os.replace(tmp, result_path)
 
 
-def _z2_candidate(relax_rec: dict[str, Any], label: Any) -> dict[str, Any] | None:
-    """Whether a label earns a parity invariant; a record when it cannot have one.
+#: Z2 records that say only why no invariant was computed then; a later run computes it
+#: (runs before Wilson loops existed skipped layers without an inversion centre).
+Z2_RETRY_STATUSES = frozenset({"no_inversion"})
 
-    Returns None when the structure is a gapped positive with an inversion centre (a Z2
-    job is due), ``{"status": "no_inversion", ...}`` for a gapped positive without one,
-    and ``{"status": "skipped"}`` for everything else (not positive, or no gap).
+
+def _z2_done(z2_log: Path) -> set[str]:
+    """IDs whose Z2 job needs no rerun."""
+    return {r["id"] for r in _read_jsonl(z2_log) if r.get("status") not in Z2_RETRY_STATUSES}
+
+
+def _z2_candidate(relax_rec: dict[str, Any], label: Any) -> dict[str, Any] | None:
+    """Whether a label earns a Z2 job; a record when it cannot have one.
+
+    Returns None when the structure is a positive with a band gap with SOC (a Z2 job is
+    due), and ``{"status": "skipped"}`` for everything else (not positive, or no gap).
     """
     from prescreen.physics.dft import METAL_GAP_EV, prepare_monolayer
-    from prescreen.physics.parity import inversion_map
 
     if not (label.ok and label.spillage >= POSITIVE_THRESHOLD
             and label.gap_soc_eV >= METAL_GAP_EV):
         return {"id": label.id, "status": "skipped"}
     try:
-        atoms = prepare_monolayer(structure_from_row(relax_rec))
+        prepare_monolayer(structure_from_row(relax_rec))
     except InputError as exc:
         return {"id": label.id, "status": "failed", "reason": f"InputError: {exc}"}
-    try:
-        inversion_map(atoms)
-    except InputError as exc:
-        return {"id": label.id, "status": "no_inversion", "reason": str(exc)}
     return None
 
 
@@ -644,7 +663,7 @@ def _pipeline(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Path | 
     # results that children wrote before the last run stopped
     relaxed = {r["id"] for r in _read_jsonl(log)}
     labelled = store.status() if store is not None else {}
-    with_z2 = {r["id"] for r in _read_jsonl(z2_log)}
+    with_z2 = _z2_done(z2_log)
     for path in sorted(tmpdir.glob("*.json")):
         kind, _, ident = path.stem.partition("-")
         try:
@@ -666,7 +685,7 @@ def _pipeline(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Path | 
     label_queue[:] = [r for r in relax if label and r.get("status") == "ok"
                       and r["id"] not in labelled]
     if label:  # labels from before the Z2 jobs existed, or from an interrupted run
-        with_z2 = {r["id"] for r in _read_jsonl(z2_log)} | {r["id"] for r in z2_queue}
+        with_z2 = _z2_done(z2_log) | {r["id"] for r in z2_queue}
         for done in _label_records(work):
             if done.id not in with_z2 and done.id in relax_by_id:
                 consider_z2(done)
@@ -736,15 +755,19 @@ def _label_records(work: Path) -> list[Any]:
 
 # --- pack ---------------------------------------------------------------------------
 def _z2_columns(z2: dict[str, dict[str, Any]], ident: str) -> dict[str, Any]:
-    """``z2_parity`` (0, 1 or None) and ``z2_status`` of one labelled structure."""
+    """``z2`` (0, 1 or None), ``z2_method`` and ``z2_status`` of one labelled structure."""
     rec = z2.get(ident)
     if rec is None:
-        return {"z2_parity": None, "z2_status": "not computed (not a gapped positive)"}
+        return {"z2": None, "z2_method": "", "z2_status": "not computed (not a gapped positive)"}
     if rec.get("status") == "ok":
-        return {"z2_parity": int(rec["z2"]), "z2_status": "computed"}
+        # records from before the method was recorded all came from parities
+        return {"z2": int(rec["z2"]), "z2_method": rec.get("method", "parity"),
+                "z2_status": "computed"}
     if rec.get("status") == "no_inversion":
-        return {"z2_parity": None, "z2_status": "no inversion centre"}
-    return {"z2_parity": None, "z2_status": f"failed: {rec.get('reason', '')}"}
+        return {"z2": None, "z2_method": "", "z2_status": "pending (no inversion centre: "
+                "Wilson loops at the next run)"}
+    return {"z2": None, "z2_method": rec.get("method", ""),
+            "z2_status": f"failed: {rec.get('reason', '')}"}
 
 
 def _labelled_table(pool: "pd.DataFrame", relax: Sequence[dict[str, Any]],
@@ -786,9 +809,9 @@ def _labelled_table(pool: "pd.DataFrame", relax: Sequence[dict[str, Any]],
             "high_spillage", "k_max", "gap_nosoc_eV", "gap_soc_eV", "is_metal", "magmom_muB",
             "kmesh", "wall_s", "core_hours", "relax_wall_s", "residual_fmax_eV_per_A", "a_A",
             "b_A", "gamma_deg", "lattice", "species", "frac_coords", "gamma_k", "kpts",
-            "settings", "versions", "z2_parity", "z2_status"]
+            "settings", "versions", "z2", "z2_method", "z2_status"]
     df = pd.DataFrame(rows, columns=cols)
-    df["z2_parity"] = df["z2_parity"].astype("Int8")
+    df["z2"] = df["z2"].astype("Int8")
     return df.sort_values("id").reset_index(drop=True)
 
 
@@ -838,9 +861,12 @@ def datasheet(pool: "pd.DataFrame", labelled: "pd.DataFrame", relax: "pd.DataFra
     positive = labelled[labelled["high_spillage"]] if n_lab else labelled
     n_pos_gapped = int((~positive["is_metal"]).sum()) if n_lab else 0
     computed = positive[positive["z2_status"] == "computed"] if n_lab else positive
-    z2_text = (f"computed for {len(computed)}, of which {int((computed['z2_parity'] == 1).sum())} "
-               f"have Z2 = 1; {int((positive['z2_status'] == 'no inversion centre').sum())} "
-               "gapped positives have no inversion centre (they need Wilson loops)"
+    by_method = computed["z2_method"].value_counts().to_dict() if n_lab else {}
+    pending = int(positive["z2_status"].str.startswith("pending").sum()) if n_lab else 0
+    z2_text = (f"computed for {len(computed)} ({by_method.get('parity', 0)} from parities, "
+               f"{by_method.get('wilson', 0)} from Wilson loops), of which "
+               f"{int((computed['z2'] == 1).sum())} have Z2 = 1"
+               + (f"; {pending} wait for Wilson loops at the next run" if pending else "")
                if n_lab else "none yet")
     status = relax["status"].value_counts().to_dict() if len(relax) else {}
     core_h = float(labelled["core_hours"].sum()) if n_lab else 0.0
@@ -884,7 +910,7 @@ numbers by hand (the integrity test checks the file's hash).*
 |---|---|
 | `{POOL_PARQUET}` | the unlabelled pool, one row per candidate: `id`, `prototype`, `family`, `reduced_formula`, `formula`, `elements` (space-separated), `n_elements`, `n_atoms`, `decoration` (JSON, site role -> element), `a_A`, `b_A`, `gamma_deg`, `lattice` (9 floats, row vectors, angstrom), `species`, `frac_coords` (3 per atom) |
 | `{POOL_XYZ}` | the same starting geometries as compressed extended XYZ (`id`, `prototype` per frame; positions printed to 8 decimals, the Parquet file keeps full double precision) |
-| `{LABELLED_PARQUET}` | relaxed and labelled monolayers: pool columns, `spillage` (max over k of gamma(k), electrons), `high_spillage` (spillage >= {POSITIVE_THRESHOLD}), `k_max`, `gap_nosoc_eV`, `gap_soc_eV`, `is_metal`, `magmom_muB`, `kmesh`, `wall_s`, `core_hours`, `relax_wall_s`, `residual_fmax_eV_per_A`, relaxed `lattice`/`species`/`frac_coords`, `gamma_k` and `kpts` (the whole gamma(k) on the mesh), `settings`, `versions`, `z2_parity` (0 or 1 from parity eigenvalues at the four TRIMs, empty where not computed) and `z2_status` |
+| `{LABELLED_PARQUET}` | relaxed and labelled monolayers: pool columns, `spillage` (max over k of gamma(k), electrons), `high_spillage` (spillage >= {POSITIVE_THRESHOLD}), `k_max`, `gap_nosoc_eV`, `gap_soc_eV`, `is_metal`, `magmom_muB`, `kmesh`, `wall_s`, `core_hours`, `relax_wall_s`, `residual_fmax_eV_per_A`, relaxed `lattice`/`species`/`frac_coords`, `gamma_k` and `kpts` (the whole gamma(k) on the mesh), `settings`, `versions`, `z2` (0 or 1, empty where not computed), `z2_method` (`parity` or `wilson`) and `z2_status` |
 | `{LABELLED_XYZ}` | relaxed labelled structures as compressed extended XYZ (`id`, `spillage` per frame) |
 | `{RELAX_PARQUET}` | every relaxation attempted, with `status` (ok, not_converged, fell_apart, failed), `reason`, residual force and the labelling outcome |
 | `{MANIFEST}` | SHA-256 and size of every file above and of this datasheet |
@@ -901,7 +927,7 @@ numbers by hand (the integrity test checks the file's hash).*
 - Labelled: **{n_lab}**; positives at spillage >= {POSITIVE_THRESHOLD}: {n_pos}
   (positive rate {_rate(n_pos, n_lab)}); {n_pos_gapped} of the positives have a band gap
   with spin-orbit coupling, the others are metals.
-- Z2 from parities (gapped positives with an inversion centre): {z2_text}.
+- Z2 of the positives with a band gap with SOC: {z2_text}.
 - Compute: {core_h:.2f} core-hours of labelling and {relax_h:.2f} core-hours of
   relaxation (wall time of single-core jobs, on a shared machine); median per
   structure: {_median(relax["wall_s"])} s to relax, {_median(labelled["wall_s"])} s to label.
@@ -942,11 +968,15 @@ python scripts/build_open_dataset.py --seed {seed} --workers 2    # or: make dat
    contain K), Fermi-Dirac smearing, spin-orbit coupling added non-self-consistently,
    spillage of Liu and Vanderbilt, Phys. Rev. B 90, 125133 (2014), with occupations
    from the Fermi level at each k. Spin-paired (non-magnetic) ground states.
-5. **Z2** (`prescreen.physics.parity.z2_from_parities`), for positives with a band gap
-   with spin-orbit coupling and an inversion centre (within {SYMPREC_A} A, then made
-   exact): the same level of theory without symmetry reduction on an even mesh, and
-   the Fu-Kane product of parity eigenvalues of the occupied Kramers pairs at the four
-   time-reversal-invariant momenta (Phys. Rev. B 76, 045302 (2007)).
+5. **Z2**, for positives with a band gap with spin-orbit coupling, at the same level of
+   theory. With an inversion centre (within {SYMPREC_A} A, then made exact):
+   `prescreen.physics.parity.z2_from_parities`, without symmetry reduction on an even
+   mesh, the Fu-Kane product of parity eigenvalues of the occupied Kramers pairs at the
+   four time-reversal-invariant momenta (Phys. Rev. B 76, 045302 (2007)). Without one:
+   `prescreen.physics.wilson.z2_from_wilson_loops`, the winding of hybrid Wannier charge
+   centres from Wilson loops of the SOC states over half the Brillouin zone
+   (Soluyanov and Vanderbilt, Phys. Rev. B 83, 235401 (2011)), with point-orbital
+   overlaps in the LCAO basis.
 
 Versions: {ver}.
 

@@ -113,7 +113,8 @@ def test_z2_refuses_a_layer_without_inversion_and_keeps_earlier_rows(tmp_path, c
     out.write_text("id,formula,z2,delta,direct_gap_soc_eV,kmesh,parity_error,wall_s,status,"
                    "reason\nearlier,Bi,1,-1 +1 +1 +1,0.59,6x6x1,1e-15,20,ok,\n")
     capsys.readouterr()
-    assert main(["z2", str(camp), "mos2-2h", "mos2-2h", "--no-progress"]) == 0
+    assert main(["z2", str(camp), "mos2-2h", "mos2-2h", "--method", "parity",
+                 "--no-progress"]) == 0
     printed = capsys.readouterr().out
     assert "mos2-2h: no invariant: the structure has no inversion centre" in printed
     import pandas as pd
@@ -124,7 +125,7 @@ def test_z2_refuses_a_layer_without_inversion_and_keeps_earlier_rows(tmp_path, c
     assert list(table.index).count("mos2-2h") == 1  # an ID given twice is computed once
     # a refusal does not overwrite an earlier result for the same ID
     out.write_text(out.read_text().replace("mos2-2h,MoS2,,,,,,,,refused", "mos2-2h,MoS2,0,+1 +1 +1 +1,0.5,6x6x1,,1e-15,9,ok"))
-    assert main(["z2", str(camp), "mos2-2h", "--no-progress"]) == 0
+    assert main(["z2", str(camp), "mos2-2h", "--method", "parity", "--no-progress"]) == 0
     assert "the earlier result is kept" in capsys.readouterr().out
     assert pd.read_csv(out, dtype=str).set_index("id").loc["mos2-2h", "status"] == "ok"
     out.write_text("name,z2\nx,1\n")

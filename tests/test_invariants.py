@@ -2,7 +2,8 @@
 
 Reference facts: the 2H (trigonal-prismatic, point group -6m2) MX2 layer has no
 inversion centre (International Tables for Crystallography, Vol. A; from memory), so
-the parity method must refuse it before any calculation. Spillage and gap values below
+the parity method must refuse it before any calculation, and ``auto`` must send it to
+Wilson loops. Spillage and gap values below
 are made-up inputs that exercise the selection rule, not physical references.
 """
 
@@ -43,14 +44,50 @@ def test_only_hits_with_a_recorded_gap_are_selected(campaign):
 
 def test_refusals_are_recorded_with_the_reason_and_unknown_ids_raise(campaign):
     pytest.importorskip("gpaw")
-    outcomes = compute_invariants(campaign, ["c0", "f-only", "c0"], progress=False)
+    outcomes = compute_invariants(campaign, ["c0", "f-only", "c0"], method="parity",
+                                  progress=False)
     assert [o.id for o in outcomes] == ["c0", "f-only"]  # each once
     rows = read_invariants(campaign.path / INVARIANTS_FILE)
     assert rows["c0"]["status"] == "refused" and "no inversion centre" in rows["c0"]["reason"]
+    assert rows["c0"]["method"] == "parity"
     assert "no structure" in rows["f-only"]["reason"]
     assert "no invariant" in outcomes[0].describe()
     with pytest.raises(InputError, match="unknown candidate ID"):
         compute_invariants(campaign, ["nope"], progress=False)
+    with pytest.raises(InputError, match="unknown Z2 method"):
+        compute_invariants(campaign, ["c0"], method="guess", progress=False)
+
+
+def test_auto_sends_a_layer_without_inversion_to_wilson_loops(campaign, monkeypatch):
+    # the Wilson-loop DFT is tested in tests/test_wilson.py; here its stand-in records
+    # what it was asked, and the row must say which method gave the answer
+    pytest.importorskip("gpaw")
+    from prescreen.physics import wilson
+
+    asked = []
+
+    def stand_in(structure, settings, *, id=None, **kwargs):
+        asked.append(id)
+        return wilson.WilsonZ2(id=id, formula="MoS2", z2=0, k2=(0.0, 0.25, 0.5),
+                               wcc=((0.1, 0.2),) * 3, gap_centres=(0.6,) * 3,
+                               direct_gap_soc_eV=1.6, min_link=0.9, n_occupied=2, nk1=24,
+                               kmesh=(6, 6, 1))
+
+    monkeypatch.setattr(wilson, "z2_from_wilson_loops", stand_in)
+    (outcome,) = compute_invariants(campaign, ["c0"], progress=False)
+    assert asked == ["c0"]
+    row = read_invariants(campaign.path / INVARIANTS_FILE)["c0"]
+    assert (row["method"], row["z2"], row["wilson_loops"], row["status"]) == (
+        "wilson", "0", "3x24", "ok")
+    assert row["delta"] == "" and "Wilson loops on 3x24 lines" in outcome.describe()
+
+
+def test_files_from_before_the_method_column_still_read(tmp_path):
+    path = tmp_path / INVARIANTS_FILE
+    path.write_text("id,formula,z2,delta,direct_gap_soc_eV,kmesh,inversion_centre,"
+                    "parity_error,wall_s,status,reason\nx,Bi2,1,-1 +1 +1 +1,0.5,6x6x1,,,,ok,\n")
+    row = read_invariants(path)["x"]
+    assert row["method"] == "" and row["z2"] == "1"
 
 
 def test_a_file_without_an_id_column_is_refused(tmp_path):
@@ -62,11 +99,19 @@ def test_a_file_without_an_id_column_is_refused(tmp_path):
 
 
 def test_label_with_z2_checks_the_new_gapped_hits(campaign, monkeypatch, capsys):
-    # the labelling itself is replaced (its DFT is tested elsewhere); what is checked is
-    # that --z2 picks the gapped hits among the labelled IDs and records the outcome
+    # the labelling and the Wilson loops are replaced (their DFT is tested elsewhere);
+    # what is checked is that --z2 picks the gapped hits among the labelled IDs and
+    # records the outcome
     pytest.importorskip("gpaw")
     from prescreen.acquire import rounds
     from prescreen.cli.main import main
+    from prescreen.errors import LabellingError
+    from prescreen.physics import wilson
+
+    def refuse(structure, settings, *, id=None, **kwargs):
+        raise LabellingError(f"{id}: no direct gap with spin-orbit coupling (stand-in)")
+
+    monkeypatch.setattr(wilson, "z2_from_wilson_loops", refuse)
 
     def fake_label_pending(camp, *, ids=None, **kwargs):
         return rounds.LabelOutcome(n_jobs=len(ids), n_ok=len(ids), n_failed=0, n_ingested=0,
@@ -78,5 +123,5 @@ def test_label_with_z2_checks_the_new_gapped_hits(campaign, monkeypatch, capsys)
     assert main(["label", str(path), "c0", "c1", "c2", "--z2", "--no-progress"]) == 0
     out = capsys.readouterr().out
     assert "Z2 of 1 hit(s) with a band gap with SOC" in out  # c0 only: c1 is a metal
-    assert "c0: no invariant: the structure has no inversion centre" in out
+    assert "c0: no invariant: c0: no direct gap with spin-orbit coupling (stand-in)" in out
     assert list(read_invariants(path / INVARIANTS_FILE)) == ["c0"]

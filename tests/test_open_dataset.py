@@ -48,7 +48,7 @@ LABELLED_COLUMNS = [
     "high_spillage", "k_max", "gap_nosoc_eV", "gap_soc_eV", "is_metal", "magmom_muB",
     "kmesh", "wall_s", "core_hours", "relax_wall_s", "residual_fmax_eV_per_A", "a_A",
     "b_A", "gamma_deg", "lattice", "species", "frac_coords", "gamma_k", "kpts",
-    "settings", "versions", "z2_parity", "z2_status",
+    "settings", "versions", "z2", "z2_method", "z2_status",
 ]
 RELAX_STATUSES = {"ok", "not_converged", "fell_apart", "failed"}
 
@@ -165,8 +165,9 @@ def test_labelled_schema_counts_and_ranges(labelled, pool, manifest):
         assert ok, (row["id"], why)
     # Z2 from parities: 0 or 1 where computed, and only for gapped positives
     computed = labelled["z2_status"] == "computed"
-    assert labelled.loc[computed, "z2_parity"].isin([0, 1]).all()
-    assert labelled.loc[~computed, "z2_parity"].isna().all()
+    assert labelled.loc[computed, "z2"].isin([0, 1]).all()
+    assert labelled.loc[computed, "z2_method"].isin(["parity", "wilson"]).all()
+    assert labelled.loc[~computed, "z2"].isna().all()
     assert (labelled.loc[computed, "high_spillage"] & ~labelled.loc[computed, "is_metal"]).all()
 
 
@@ -431,37 +432,74 @@ def _fake_parities(structure, settings, *, id=None):
                     versions={})
 
 
-def test_gapped_positives_get_a_parity_invariant_when_centrosymmetric(tmp_path, monkeypatch):
-    # 1T (D3d) layers have an inversion centre, 2H (D3h) layers none (International
-    # Tables for Crystallography, Vol. A; from memory)
+def _fake_wilson(structure, settings, *, id=None):
+    from prescreen.physics.wilson import WilsonZ2
+
+    return WilsonZ2(id=id, formula="X", z2=0, k2=(0.0, 0.5), wcc=((0.1,), (0.1,)),
+                    gap_centres=(0.6, 0.6), direct_gap_soc_eV=0.1, min_link=0.9,
+                    n_occupied=2, nk1=24, kmesh=(6, 6, 1))
+
+
+@pytest.fixture
+def z2_pipeline(monkeypatch):
+    """The driver with DFT stand-ins that make every layer a gapped positive, and a
+    1T and a 2H layer. 1T (D3d) layers have an inversion centre, 2H (D3h) layers none
+    (International Tables for Crystallography, Vol. A; from memory)."""
     import prescreen.physics.dft as dft
     import prescreen.physics.parity as parity
+    import prescreen.physics.wilson as wilson
     from prescreen.prototypes import generate_pool, pool_table
 
     driver = _driver()
     monkeypatch.setattr(dft, "relax_monolayer", lambda s, *a, **k: (s, 0.01, True))
     monkeypatch.setattr(dft, "label_structure", _fake_gapped_positive)
     monkeypatch.setattr(parity, "z2_from_parities", _fake_parities)
+    monkeypatch.setattr(wilson, "z2_from_wilson_loops", _fake_wilson)
     monkeypatch.setattr(driver, "pack_stage", lambda out, work, seed: None)
     table = pool_table(generate_pool(prototypes=["MX2-1T", "MX2-2H"], match_structures=False,
                                      progress=False))
     one_t = table.loc[table["prototype"] == "MX2-1T", "id"].iloc[0]
     two_h = table.loc[table["prototype"] == "MX2-2H", "id"].iloc[0]
+    return driver, table, one_t, two_h
+
+
+def test_gapped_positives_get_an_invariant_by_the_method_their_symmetry_allows(
+        tmp_path, z2_pipeline):
+    driver, table, one_t, two_h = z2_pipeline
     work = tmp_path / "work"
     driver.pipeline_stage(table, [one_t, two_h], work, tmp_path / "out", 1, workers=2,
                           progress=False)
     z2 = {r["id"]: r for r in driver._read_jsonl(work / driver.Z2_LOG)}
-    assert z2[one_t]["status"] == "ok" and z2[one_t]["z2"] == 1
-    assert z2[two_h]["status"] == "no_inversion"
+    assert (z2[one_t]["status"], z2[one_t]["z2"], z2[one_t]["method"]) == ("ok", 1, "parity")
+    assert (z2[two_h]["status"], z2[two_h]["z2"], z2[two_h]["method"]) == ("ok", 0, "wilson")
     records = driver._label_records(work)
     packed = driver._labelled_table(table, driver._read_jsonl(work / "relax.jsonl"), records, z2)
     by_id = packed.set_index("id")
-    assert by_id.loc[one_t, "z2_parity"] == 1 and by_id.loc[one_t, "z2_status"] == "computed"
-    assert by_id.loc[two_h, "z2_status"] == "no inversion centre"
+    assert by_id.loc[one_t, "z2"] == 1 and by_id.loc[one_t, "z2_status"] == "computed"
+    assert by_id.loc[two_h, "z2"] == 0 and by_id.loc[two_h, "z2_method"] == "wilson"
     # a rerun computes nothing again
     assert driver.pipeline_stage(table, [one_t, two_h], work, tmp_path / "out", 1,
                                  progress=False) == 0
     assert len(driver._read_jsonl(work / driver.Z2_LOG)) == 2
+
+
+def test_a_layer_skipped_for_want_of_inversion_gets_wilson_loops_on_resume(tmp_path,
+                                                                          z2_pipeline):
+    # a work folder from before Wilson loops: the 2H layer's Z2 record says only
+    # "no_inversion"; the next run must compute it and keep the 1T layer's result
+    driver, table, one_t, two_h = z2_pipeline
+    work = tmp_path / "work"
+    driver.pipeline_stage(table, [one_t, two_h], work, tmp_path / "out", 1, workers=1,
+                          progress=False)
+    log = work / driver.Z2_LOG
+    old = [r for r in driver._read_jsonl(log) if r["id"] == one_t]
+    log.write_text("".join(json.dumps(r) + "\n" for r in old + [
+        {"id": two_h, "status": "no_inversion", "reason": "the structure has no inversion centre"}]))
+    assert driver.pipeline_stage(table, [one_t, two_h], work, tmp_path / "out", 1,
+                                 progress=False) == 0  # no new label: the 2H Z2 job only
+    z2 = {r["id"]: r for r in driver._read_jsonl(log)}
+    assert z2[two_h]["method"] == "wilson" and z2[two_h]["status"] == "ok"
+    assert z2[one_t] == old[0]
 
 
 def test_a_whole_last_record_without_its_newline_is_kept(tmp_path):

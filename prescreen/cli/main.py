@@ -38,7 +38,7 @@ HELP: dict[str, str] = {
     "rank": "Rank every candidate by its probability of high spillage (CSV and Parquet).",
     "propose": "Propose the next batch to compute under a core-hour budget.",
     "label": "Compute spillage with the built-in DFT labeller (GPAW) and ingest it.",
-    "z2": "Compute the Z2 invariant of centrosymmetric candidates from DFT parities (GPAW).",
+    "z2": "Compute the Z2 invariant of candidates with DFT (GPAW): parities or Wilson loops.",
     "report": "Write the allocation report (one HTML file) for a campaign round.",
 }
 

@@ -1,4 +1,4 @@
-"""Compute the Z2 invariant of centrosymmetric candidates from DFT parities (GPAW)."""
+"""Compute the Z2 invariant of candidates with DFT (GPAW): parities or Wilson loops."""
 
 from __future__ import annotations
 
@@ -16,6 +16,10 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--out", type=Path, default=None,
                         help="CSV to update (default <campaign>/z2.csv; rows of other IDs "
                         "are kept)")
+    parser.add_argument("--method", choices=("auto", "parity", "wilson"), default="auto",
+                        help="parity eigenvalues at the TRIMs (needs an inversion centre) or "
+                        "Wilson loops (any layer); auto takes parities when the layer is "
+                        "centrosymmetric (default: auto)")
     parser.add_argument("--no-progress", action="store_true", help="hide progress bars")
 
 
@@ -43,6 +47,7 @@ def run(args: argparse.Namespace) -> int:
                 print("nothing to compute: no labelled hit with a band gap with SOC lacks "
                       "an invariant (name candidate IDs to compute others)")
                 return 0
-        outcomes = compute_invariants(campaign, ids, out=out, progress=not args.no_progress)
+        outcomes = compute_invariants(campaign, ids, out=out, method=args.method,
+                                      progress=not args.no_progress)
     print_outcomes(outcomes, out)
     return 0

@@ -242,6 +242,8 @@ class InvariantRow:
     formula: str
     z2: int | None
     delta: str
+    #: How Z2 was found, in words ("parities +1 +1 +1 -1", "Wilson loops, 11 x 24 k").
+    method: str
     direct_gap_soc_eV: float | None
     status: str
     reason: str
@@ -460,6 +462,16 @@ def _labelled_hit_fraction(labels: pd.DataFrame, threshold: float,
     return float(hit.mean())
 
 
+def _method_words(row: dict[str, str]) -> str:
+    """How an invariants row was computed, in words (files without ``method`` are parities)."""
+    if row["status"] != "ok":
+        return row["method"]
+    if row["method"] == "wilson":
+        lines, _, nk1 = row["wilson_loops"].partition("x")
+        return f"Wilson loops ({lines} lines of {nk1} k)"
+    return f"parities {row['delta']}"
+
+
 def _invariants(campaign: Campaign, labels: pd.DataFrame) -> tuple[InvariantRow, ...]:
     """The rows of ``<campaign>/z2.csv`` (none when absent), with each one's spillage."""
     from prescreen.invariants import read_invariants
@@ -470,7 +482,7 @@ def _invariants(campaign: Campaign, labels: pd.DataFrame) -> tuple[InvariantRow,
         try:
             rows.append(InvariantRow(
                 id=r["id"], formula=r["formula"], z2=int(r["z2"]) if r["z2"] else None,
-                delta=r["delta"],
+                delta=r["delta"], method=_method_words(r),
                 direct_gap_soc_eV=float(r["direct_gap_soc_eV"]) if r["direct_gap_soc_eV"] else None,
                 status=r["status"], reason=r["reason"],
                 spillage=(float(labels.loc[r["id"], "spillage"]) if r["id"] in labels.index

@@ -1,0 +1,339 @@
+"""The Z2 invariant of a monolayer from DFT Wilson loops, with or without inversion.
+
+The parity criterion (:mod:`prescreen.physics.parity`) needs an inversion centre; 2H,
+Janus and other polar layers have none. For any non-magnetic insulator the Z2 invariant
+is the parity of the number of times the hybrid Wannier charge centres (the eigenphases
+of Wilson loops along k1) wind over half the Brillouin zone in k2 (Yu, Qi, Bernevig, Fang
+and Dai, Phys. Rev. B 84, 075119 (2011); Soluyanov and Vanderbilt, Phys. Rev. B 83,
+235401 (2011)). This module computes them at the labeller's level of theory
+(:mod:`prescreen.physics.dft`: GPAW LCAO, PBE, dzp, spin-orbit coupling added
+non-self-consistently):
+
+1. A self-consistent ground state on the labeller's mesh.
+2. For each line ``k2`` in [0, 1/2], a non-self-consistent run (GPAW's ``fixed_density``,
+   no symmetry) on ``nk1`` points ``k1 = j / nk1``, and the spinor states with SOC of
+   :func:`gpaw.spinorbit.soc_eigenstates` (basis ``2 n + s`` of the states ``n`` without
+   SOC, as in :mod:`prescreen.physics.dft`). In GPAW's Bloch sums
+   ``Phi_Mk(r) = sum_R exp(i k.R) phi_M(r - tau_a - R)`` an occupied spinor state ``m``
+   has coefficients ``W[m, M, s] = sum_n V[m, 2 n + s] C[n, M]``.
+3. The overlap of cell-periodic parts between neighbours ``k`` and ``k + b`` is taken in
+   the point-orbital approximation ``exp(-i b.r) phi_M ~ exp(-i b.tau_a) phi_M``, the usual
+   one for localised bases (its error shrinks with the step ``b``):
+   ``M = W(k)* S(k) diag(exp(-i b.tau)) W(k + b)^T``. The same Bloch sums at ``k + G``
+   equal those at ``k``, so the loop closes with ``W(k1 = 1) = W(k1 = 0)`` and the phase of
+   ``b`` taken across the zone boundary.
+4. The Wilson loop is the product of the unitary parts of the links; minus its
+   eigenphases over 2 pi are the centres (in units of a1), and :func:`prescreen.physics.z2.z2_from_flow` counts the flow,
+   adding lines by bisection where it is unresolved (one more GPAW run per pass).
+
+Checks, each a refusal with the reason rather than a guess: the layer must have a direct
+gap with SOC on every sampled k point, an even electron count, and links whose smallest
+singular value is at least :data:`MIN_LINK` (else the k1 step is too coarse for the
+approximation in step 3). Magnetic settings are refused: the invariant needs
+time-reversal symmetry.
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+
+from prescreen.errors import InputError, LabellingError, PrescreenError
+from prescreen.physics.dft import (
+    METAL_GAP_EV,
+    LabelSettings,
+    _formula,
+    _gpaw_calculator,
+    _one_thread,
+    _run_in,
+    choose_kpts,
+    code_versions,
+    prepare_monolayer,
+)
+
+if TYPE_CHECKING:  # pragma: no cover - typing only
+    from ase import Atoms
+    from pymatgen.core import Structure
+
+__all__ = ["MIN_LINK", "NK1", "N_LINES", "WilsonZ2", "loop_centres", "z2_from_wilson_loops",
+           "plot_flow"]
+
+#: k points per Wilson loop along k1. Chosen here: the point-orbital links of step 3 stay
+#: near unitary (smallest singular value about 0.9) for two- and three-atom layers.
+NK1: int = 24
+#: Initial number of Wilson loops over k2 in [0, 1/2] (refined where needed).
+N_LINES: int = 9
+#: Most loops over k2 before the flow is declared unresolved.
+MAX_LINES: int = 65
+#: Smallest singular value of a link accepted (dimensionless; 1 for an infinitesimal
+#: step). Below it the k1 step is too coarse for the point-orbital overlap. Common
+#: practice for Wilson loops on a discrete mesh, chosen here.
+MIN_LINK: float = 0.5
+
+
+@dataclass(frozen=True)
+class WilsonZ2:
+    """The Z2 invariant of one monolayer from the flow of its Wannier charge centres.
+
+    Attributes
+    ----------
+    z2
+        0 (trivial) or 1 (quantum spin Hall).
+    k2
+        Fractional k2 of the Wilson loops, from 0 to 1/2.
+    wcc
+        Per loop, the sorted centres of the occupied spinor states (units of a1, [0, 1)).
+    gap_centres
+        Per loop, the middle of the largest gap between centres (the tracked line).
+    direct_gap_soc_eV
+        Smallest direct gap with SOC on the sampled k points (eV).
+    min_link
+        Smallest singular value of any link (see :data:`MIN_LINK`).
+    """
+
+    id: str | None
+    formula: str
+    z2: int
+    k2: tuple[float, ...]
+    wcc: tuple[tuple[float, ...], ...]
+    gap_centres: tuple[float, ...]
+    direct_gap_soc_eV: float
+    min_link: float
+    n_occupied: int
+    nk1: int
+    kmesh: tuple[int, int, int]
+    settings: dict[str, Any] = field(default_factory=dict)
+    versions: dict[str, str] = field(default_factory=dict)
+    wall_s: float = 0.0
+
+    def as_dict(self) -> dict[str, Any]:
+        """A JSON-friendly dictionary."""
+        return {"id": self.id, "formula": self.formula, "z2": self.z2, "k2": list(self.k2),
+                "wcc": [list(w) for w in self.wcc], "gap_centres": list(self.gap_centres),
+                "direct_gap_soc_eV": self.direct_gap_soc_eV, "min_link": self.min_link,
+                "n_occupied": self.n_occupied, "nk1": self.nk1, "kmesh": list(self.kmesh),
+                "settings": self.settings, "versions": self.versions, "wall_s": self.wall_s}
+
+
+def _orbital_centres(calc: Any) -> np.ndarray:
+    """Fractional position of the atom of every LCAO basis function, in GPAW's order."""
+    relpos = np.asarray(calc.dft.relpos_ac, dtype=float)
+    owner: list[int] = []
+    for a, setup in enumerate(calc.dft.setups):
+        for spline in setup.basis_functions_J:
+            owner += [a] * (2 * spline.l + 1)
+    return relpos[owner]
+
+
+def loop_centres(C: np.ndarray, S: np.ndarray, tau: np.ndarray, nk1: int) -> tuple[np.ndarray, float]:
+    """Wannier charge centres of one closed loop along k1 from LCAO spinor coefficients.
+
+    Parameters
+    ----------
+    C
+        Shape (nk1, n_occ, nM, 2): coefficients ``W[m, M, s]`` of the occupied spinor
+        states at ``k1 = j / nk1`` (step 2 of the module notes).
+    S
+        Shape (nk1, nM, nM): the basis overlap ``S_MN(k)`` at the same points.
+    tau
+        Shape (nM, 3): fractional position of the atom of each basis function.
+    nk1
+        Number of points on the loop.
+
+    Returns
+    -------
+    wcc : numpy.ndarray
+        Sorted centres in [0, 1) (units of a1).
+    min_link : float
+        Smallest singular value of the links.
+    """
+    n_occ = C.shape[1]
+    # exp(-i b.tau) for the step b = (1/nk1, 0, 0); the closing step crosses the zone
+    # boundary, b = (1/nk1, 0, 0) as well, with the same Bloch sums (see the notes)
+    phase = np.exp(-2j * np.pi * tau[:, 0] / nk1)
+    w = np.eye(n_occ, dtype=complex)
+    worst = 1.0
+    for j in range(nk1):
+        a, b = C[j], C[(j + 1) % nk1]
+        m = sum(a[:, :, s].conj() @ S[j] @ (phase[:, None] * b[:, :, s].T) for s in range(2))
+        left, sv, right = np.linalg.svd(m)
+        worst = min(worst, float(sv.min()))
+        w = w @ (left @ right)
+    # a centre is minus the Berry phase over 2 pi (Marzari and Vanderbilt, PRB 56, 12847
+    # (1997), with M(k, k + b) = <u_k|u_k+b>)
+    centres = -np.angle(np.linalg.eigvals(w)) / (2.0 * np.pi)
+    return np.sort(np.mod(centres, 1.0)), worst
+
+
+def _line_states(calc: Any, k2: np.ndarray, nk1: int, n_occ: int, soc_scale: float,
+                 txt: Path) -> tuple[list[np.ndarray], list[np.ndarray], np.ndarray, float]:
+    """Occupied spinor coefficients and overlaps on the loops ``k2`` (one GPAW run)."""
+    from gpaw.spinorbit import soc_eigenstates
+
+    k1 = np.arange(nk1) / nk1
+    kpts = np.array([[x, y, 0.0] for y in k2 for x in k1])
+    nscf = calc.fixed_density(kpts=kpts, symmetry="off", txt=str(txt))
+    got = np.asarray(nscf.get_bz_k_points(), dtype=float)
+    if got.shape != kpts.shape or not np.allclose(got, kpts, atol=1e-10):
+        raise LabellingError("GPAW did not keep the requested k points in order; no "
+                             "invariant is given")
+    soc = soc_eigenstates(nscf, scale=soc_scale)
+    v_kmn = soc.eigenvectors()  # [k, SOC state m, basis 2 n + s]
+    e_soc = soc.eigenvalues()
+    wfs = {int(w.k): (w.C_nM.data, w.S_MM.data) for w in nscf.dft.ibzwfs}
+    if len(wfs) != len(kpts):
+        raise LabellingError(f"expected {len(kpts)} k points without symmetry reduction, "
+                             f"got {len(wfs)}")
+    coeffs, overlaps = [], []
+    for i in range(len(k2)):
+        c_line, s_line = [], []
+        for j in range(nk1):
+            k = i * nk1 + j
+            c, s = wfs[k]
+            v = v_kmn[k, :n_occ, :]
+            c_line.append(np.stack([v[:, spin::2] @ c for spin in range(2)], axis=-1))
+            s_line.append(s)
+        coeffs.append(np.array(c_line))
+        overlaps.append(np.array(s_line))
+    gap = float(np.min(e_soc[:, n_occ] - e_soc[:, n_occ - 1]))
+    return coeffs, overlaps, _orbital_centres(nscf), gap
+
+
+def z2_from_wilson_loops(structure: "Structure | Atoms", settings: LabelSettings = LabelSettings(),
+                         *, id: str | None = None, workdir: Path | None = None,
+                         nk1: int = NK1, n_lines: int = N_LINES,
+                         max_lines: int = MAX_LINES) -> WilsonZ2:
+    """Compute the Z2 invariant of a non-magnetic insulating monolayer from Wilson loops.
+
+    Parameters
+    ----------
+    structure
+        The monolayer (pymatgen ``Structure`` or ``ase.Atoms``), relaxed or as given.
+    settings
+        Level of theory (:class:`~prescreen.physics.dft.LabelSettings`); ``spinpol`` must
+        be False.
+    id
+        Identifier carried into the result.
+    workdir
+        Folder for GPAW's logs; a temporary folder when None.
+    nk1, n_lines, max_lines
+        Points per loop, initial loops over k2 in [0, 1/2], and the refinement limit.
+
+    Returns
+    -------
+    WilsonZ2
+
+    Raises
+    ------
+    InputError
+        Magnetic settings, or ``nk1`` / ``n_lines`` out of range.
+    LabellingError
+        GPAW failed, the layer has no direct gap with SOC on a sampled k point, the
+        electron count is odd, the links are too far from unitary, or the flow is not
+        resolved within ``max_lines`` loops.
+    """
+    if settings.spinpol:
+        raise InputError("the Z2 invariant needs time-reversal symmetry", value="spinpol=True",
+                         expected="a non-magnetic calculation (spinpol=False)")
+    if nk1 < 4 or n_lines < 2 or max_lines < n_lines:
+        raise InputError("too few Wilson loops or points per loop",
+                         value=f"nk1={nk1}, n_lines={n_lines}, max_lines={max_lines}",
+                         expected="nk1 >= 4, n_lines >= 2, max_lines >= n_lines")
+    t0 = time.perf_counter()
+    atoms = prepare_monolayer(structure, settings.vacuum_A)
+    formula = _formula(atoms)
+    name = id or formula
+    kmesh = choose_kpts(atoms, settings)
+    try:
+        import gpaw.spinorbit  # noqa: F401
+    except ImportError as exc:
+        raise LabellingError(f"{name}: GPAW is not importable; install it with "
+                             "`bash scripts/install_gpaw.sh .venv` (or `make dft-env`)") from exc
+    stats = {"min_link": 1.0, "gap": np.inf, "runs": 0}
+    with _run_in(workdir) as folder, _one_thread():
+        try:
+            calc = _gpaw_calculator(settings, kmesh, folder / "gpaw-wilson.txt", False)
+            atoms.calc = calc
+            atoms.get_potential_energy()
+            n_electrons = float(calc.get_number_of_electrons())
+        except Exception as exc:  # GPAW raises many types; keep the cause
+            raise LabellingError(f"{name}: GPAW calculation failed: "
+                                 f"{type(exc).__name__}: {exc}") from exc
+        n_occ = int(round(n_electrons))
+        if abs(n_occ - n_electrons) > 1e-6 or n_occ % 2:
+            raise LabellingError(f"{name}: {n_electrons:g} valence electrons; a time-reversal-"
+                                 "symmetric insulator needs an even number")
+
+        def centres(k2: np.ndarray) -> tuple[np.ndarray, float]:
+            stats["runs"] += 1
+            try:
+                coeffs, overlaps, tau, gap = _line_states(
+                    calc, np.asarray(k2, dtype=float), nk1, n_occ, settings.soc_scale,
+                    folder / f"gpaw-wilson-nscf{stats['runs']}.txt")
+            except LabellingError:
+                raise
+            except Exception as exc:
+                raise LabellingError(f"{name}: GPAW non-self-consistent run failed: "
+                                     f"{type(exc).__name__}: {exc}") from exc
+            if gap < METAL_GAP_EV:
+                raise LabellingError(
+                    f"{name}: no direct gap with spin-orbit coupling on a Wilson loop "
+                    f"(smallest {gap:.3f} eV < {METAL_GAP_EV} eV): the occupied states, and "
+                    "so the invariant, are not defined")
+            stats["gap"] = min(stats["gap"], gap)
+            wcc = []
+            for c, s in zip(coeffs, overlaps):
+                w, worst = loop_centres(c, s, tau, nk1)
+                stats["min_link"] = min(stats["min_link"], worst)
+                wcc.append(w)
+            if stats["min_link"] < MIN_LINK:
+                raise LabellingError(
+                    f"{name}: Wilson-loop links far from unitary (smallest singular value "
+                    f"{stats['min_link']:.2f} < {MIN_LINK}); use more points per loop "
+                    f"than nk1 = {nk1}")
+            return np.array(wcc), gap
+
+        try:
+            from prescreen.physics.z2 import z2_from_flow
+
+            flow = z2_from_flow(centres, n_lines=n_lines, max_lines=max_lines)
+        except PrescreenError as exc:
+            if isinstance(exc, LabellingError):
+                raise
+            raise LabellingError(f"{name}: {exc}") from exc
+    sdict = settings.as_dict()
+    sdict.update(kmesh=list(kmesh), mode="lcao", nbands="nao", nk1=nk1)
+    return WilsonZ2(id=id, formula=formula, z2=int(flow.z2),
+                    k2=tuple(float(k) for k in flow.k2),
+                    wcc=tuple(tuple(float(x) for x in w) for w in flow.wcc),
+                    gap_centres=tuple(float(g) for g in flow.gap_centres),
+                    direct_gap_soc_eV=float(stats["gap"]), min_link=float(stats["min_link"]),
+                    n_occupied=n_occ, nk1=nk1, kmesh=kmesh, settings=sdict,
+                    versions=code_versions(), wall_s=time.perf_counter() - t0)
+
+
+def plot_flow(result: WilsonZ2, ax: Any = None) -> Any:
+    """Plot the Wannier-centre flow: centres against k2, with the tracked largest gap.
+
+    Returns the matplotlib ``Axes``.
+    """
+    import matplotlib.pyplot as plt
+
+    if ax is None:
+        _, ax = plt.subplots(figsize=(4.5, 3.5))
+    k2 = np.asarray(result.k2)
+    for w_line, k in zip(result.wcc, k2):
+        ax.plot(np.full(len(w_line), k), w_line, "o", ms=2.5, color="0.25", ls="none")
+    ax.plot(k2, result.gap_centres, "-", lw=1.2, color="tab:red",
+            label="largest gap (tracked)")
+    ax.set_xlim(0.0, 0.5)
+    ax.set_ylim(0.0, 1.0)
+    ax.set_xlabel("$k_2$ (units of $b_2$)")
+    ax.set_ylabel("Wannier charge centre (units of $a_1$)")
+    ax.set_title(f"{result.id or result.formula}: Z2 = {result.z2}")
+    ax.legend(loc="upper right", fontsize="small")
+    return ax
