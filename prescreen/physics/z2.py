@@ -138,8 +138,10 @@ def wannier_centres(hamiltonian: Hamiltonian, n_occ: int, k2: np.ndarray,
         # keep only the unitary part of each link (removes the |det| < 1 of a finite step)
         left, _, right = np.linalg.svd(m)
         w = w @ (left @ right)
-    phases = np.angle(np.linalg.eigvals(w)) / (2.0 * np.pi)
-    return np.sort(np.mod(phases, 1.0), axis=1), gap
+    # a centre is minus the Berry phase over 2 pi (Marzari and Vanderbilt, PRB 56, 12847
+    # (1997)); in this periodic gauge it is measured from the orbitals' common origin
+    centres = -np.angle(np.linalg.eigvals(w)) / (2.0 * np.pi)
+    return np.sort(np.mod(centres, 1.0), axis=1), gap
 
 
 def _largest_gap(wcc: np.ndarray) -> tuple[float, float]:
