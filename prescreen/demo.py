@@ -70,7 +70,7 @@ def run_demo(out: Path, inputs: Path = EXAMPLES, *, progress: bool = True) -> di
     from prescreen.acquire import rounds
     from prescreen.campaign import Campaign
     from prescreen.cli._render import print_rejections, print_table
-    from prescreen.invariants import INVARIANTS_FILE, read_invariants
+    from prescreen.invariants import FLOWS_DIR, INVARIANTS_FILE, read_invariants
     from prescreen.io.results import read_results
     from prescreen.io.structures import iter_candidates
 
@@ -88,7 +88,7 @@ def run_demo(out: Path, inputs: Path = EXAMPLES, *, progress: bool = True) -> di
         n_search = write_search_dump(search)
         _step(f"reading candidates from {inputs} and {search} ({n_search} structures)")
         sources = [p for p in sorted(inputs.iterdir())
-                   if p.name not in ("results.csv", INVARIANTS_FILE)] + [search]
+                   if p.name not in ("results.csv", INVARIANTS_FILE, FLOWS_DIR)] + [search]
         report = campaign.add_candidates(iter_candidates(sources), progress=progress)
         print(f"read {report.added} candidates; layer check: {report.layer_counts}; "
               f"duplicates: {report.duplicates}")
@@ -104,6 +104,8 @@ def run_demo(out: Path, inputs: Path = EXAMPLES, *, progress: bool = True) -> di
         if checks.is_file():
             _step(f"keeping the group's Z2 checks of its hits ({checks})")
             shutil.copyfile(checks, campaign_dir / INVARIANTS_FILE)
+            if (inputs / FLOWS_DIR).is_dir():  # the Wilson-loop flows the report plots
+                shutil.copytree(inputs / FLOWS_DIR, campaign_dir / FLOWS_DIR)
             print(f"{len(read_invariants(checks))} candidates checked with `prescreen z2`")
 
         _step("training on data_open/ plus the group's results (grouped validation)")

@@ -2,7 +2,8 @@
 
 :func:`compute_invariants` computes the Z2 invariant of chosen candidates at the built-in
 labeller's level of theory and records each outcome, a refusal with its reason included,
-in one CSV that the allocation report reads. The method (column ``method``) is the
+in one CSV that the allocation report reads (with the flow of Wannier centres of each
+Wilson-loop result in :data:`FLOWS_DIR` beside it, which the report plots). The method (column ``method``) is the
 Fu–Kane parity criterion (:func:`prescreen.physics.parity.z2_from_parities`) for a layer
 with an inversion centre, and the flow of Wannier charge centres from Wilson loops
 (:func:`prescreen.physics.wilson.z2_from_wilson_loops`) for one without; either can be
@@ -26,11 +27,14 @@ from prescreen.errors import InputError, LabellingError
 if TYPE_CHECKING:  # pragma: no cover
     from prescreen.campaign import Campaign
 
-__all__ = ["INVARIANTS_FILE", "COLUMNS", "METHODS", "choose_method", "InvariantOutcome", "read_invariants",
+__all__ = ["INVARIANTS_FILE", "FLOWS_DIR", "read_flow", "COLUMNS", "METHODS", "choose_method", "InvariantOutcome", "read_invariants",
            "gapped_hits", "compute_invariants"]
 
 #: File in a campaign folder that holds the invariants.
 INVARIANTS_FILE = "z2.csv"
+#: Folder beside the invariants file with the Wannier-centre flow of each Wilson-loop
+#: result, ``<id>.json`` (:meth:`prescreen.physics.wilson.WilsonZ2.as_dict`).
+FLOWS_DIR = "z2_flows"
 
 #: Columns of the file, in order.
 COLUMNS: tuple[str, ...] = ("id", "formula", "z2", "delta", "direct_gap_soc_eV", "kmesh",
@@ -98,6 +102,38 @@ def read_invariants(path: str | Path) -> dict[str, dict[str, str]]:
         raise InputError(f"cannot read the invariants file: {exc}", path=path,
                          expected="the CSV written by `prescreen z2`") from exc
     return rows
+
+
+def read_flow(invariants_path: str | Path, cid: str) -> Any:
+    """The Wilson-loop flow stored beside an invariants file for ``cid``, or None.
+
+    Raises
+    ------
+    InputError
+        If the flow file exists but is not a flow written by :func:`compute_invariants`.
+    """
+    import json
+
+    from prescreen.physics.wilson import WilsonZ2
+
+    path = Path(invariants_path).parent / FLOWS_DIR / f"{cid}.json"
+    if not path.is_file():
+        return None
+    try:
+        return WilsonZ2.from_dict(json.loads(path.read_text(encoding="utf-8")))
+    except (OSError, ValueError, KeyError, TypeError) as exc:
+        raise InputError(f"cannot read the Wannier-centre flow: {exc}", path=path,
+                         expected="the JSON written by `prescreen z2`") from exc
+
+
+def _write_flow(invariants_path: Path, cid: str, result: Any) -> None:
+    import json
+
+    folder = invariants_path.parent / FLOWS_DIR
+    folder.mkdir(parents=True, exist_ok=True)
+    tmp = folder / f"{cid}.json.tmp"
+    tmp.write_text(json.dumps(result.as_dict(), indent=1), encoding="utf-8")
+    os.replace(tmp, folder / f"{cid}.json")
 
 
 def _write(path: Path, rows: dict[str, dict[str, str]]) -> None:
@@ -237,6 +273,7 @@ def compute_invariants(campaign: "Campaign", ids: Iterable[str], *, out: str | P
                         "kmesh": "x".join(map(str, w.kmesh)), "wall_s": f"{w.wall_s:.1f}",
                         "wilson_loops": f"{len(w.k2)}x{w.nk1}", "min_link": f"{w.min_link:.3f}",
                         "status": "ok"}
+                _write_flow(path, cid, w)
         table[cid] = row
         _write(path, table)  # after every candidate: a kill loses at most the one running
         outcomes.append(InvariantOutcome(cid, row))

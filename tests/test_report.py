@@ -13,6 +13,7 @@ from __future__ import annotations
 import base64
 import json
 import re
+import shutil
 from html.parser import HTMLParser
 from pathlib import Path
 
@@ -316,15 +317,31 @@ def test_invariants_written_by_z2_are_shown_with_the_spillage(built, collected, 
     labelled = camp.labels().index[0]
     path = camp.path / INVARIANTS_FILE
     path.write_text("id,formula,z2,delta,direct_gap_soc_eV,kmesh,parity_error,wall_s,status,"
-                    f"reason\n{labelled},X,1,-1 +1 +1 +1,0.5908,6x6x1,4e-15,20,ok,\n"
-                    "other,MoS2,,,,,,,refused,the structure has no inversion centre\n")
+                    f"reason,method,wilson_loops\n{labelled},X,1,-1 +1 +1 +1,0.5908,6x6x1,4e-15,"
+                    "20,ok,,parity,\nother,MoS2,,,,,,,refused,the structure has no inversion "
+                    "centre,parity,\nloops,MoS2,0,,1.6,6x6x1,,90,ok,,wilson,3x24\n")
+    # the flow file as `prescreen z2` writes it (the shape of a trivial flow; the plot is
+    # what is checked, not the numbers)
+    from prescreen.invariants import FLOWS_DIR
+    from prescreen.physics.wilson import WilsonZ2
+
+    flow = WilsonZ2(id="loops", formula="MoS2", z2=0, k2=(0.0, 0.25, 0.5),
+                    wcc=((0.1, 0.2),) * 3, gap_centres=(0.6,) * 3, direct_gap_soc_eV=1.6,
+                    min_link=0.7, n_occupied=2, nk1=24, kmesh=(6, 6, 1))
+    (camp.path / FLOWS_DIR).mkdir()
+    (camp.path / FLOWS_DIR / "loops.json").write_text(json.dumps(flow.as_dict()))
     try:
         out = build_report(camp, out_path=tmp_path / "r.html", validation=collected.validation)
     finally:
         path.unlink()
+        shutil.rmtree(camp.path / FLOWS_DIR)
     doc = parse(out.read_text(encoding="utf-8"))
     rows = {a["data-id"]: a for t, a in doc.tags if t == "tr" and "data-z2" in a}
     assert rows[labelled]["data-z2"] == "1" and rows["other"]["data-z2"] == ""
     text = " ".join(doc.text)
     assert f"{camp.labels().loc[labelled, 'spillage']:.3f}" in text
     assert "the structure has no inversion centre" in text
+    assert "Wilson loops (3 lines of 24 k)" in text and "parities -1 +1 +1 +1" in text
+    imgs = {a["id"]: a for t, a in doc.tags if t == "img" and "id" in a}
+    assert imgs["fig-z2-flow-loops"]["src"].startswith("data:image/png;base64,")
+    assert not any(i.startswith("fig-z2-flow-") and i != "fig-z2-flow-loops" for i in imgs)

@@ -157,7 +157,7 @@ def test_the_flow_plot_shows_every_centre_and_the_tracked_gap():
                       direct_gap_soc_eV=flow.min_direct_gap, min_link=1.0, n_occupied=2,
                       nk1=24, kmesh=(1, 1, 1))
     ax = plot_flow(result)
-    points = sum(len(line.get_xdata()) for line in ax.lines[:-1])
+    points = sum(len(line.get_xdata()) for line in ax.lines[:-1])  # dots per loop, then gaps
     assert points == flow.wcc.size
     assert list(ax.lines[-1].get_ydata()) == list(flow.gap_centres)
     assert "Z2 = 1" in ax.get_title() and "Wannier" in ax.get_ylabel()

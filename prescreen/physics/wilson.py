@@ -110,6 +110,19 @@ class WilsonZ2:
     versions: dict[str, str] = field(default_factory=dict)
     wall_s: float = 0.0
 
+    @classmethod
+    def from_dict(cls, d: dict[str, Any]) -> "WilsonZ2":
+        """Inverse of :meth:`as_dict`."""
+        return cls(id=d["id"], formula=d["formula"], z2=int(d["z2"]),
+                   k2=tuple(map(float, d["k2"])),
+                   wcc=tuple(tuple(map(float, w)) for w in d["wcc"]),
+                   gap_centres=tuple(map(float, d["gap_centres"])),
+                   direct_gap_soc_eV=float(d["direct_gap_soc_eV"]),
+                   min_link=float(d["min_link"]), n_occupied=int(d["n_occupied"]),
+                   nk1=int(d["nk1"]), kmesh=tuple(d["kmesh"]),
+                   settings=dict(d.get("settings", {})), versions=dict(d.get("versions", {})),
+                   wall_s=float(d.get("wall_s", 0.0)))
+
     def as_dict(self) -> dict[str, Any]:
         """A JSON-friendly dictionary."""
         return {"id": self.id, "formula": self.formula, "z2": self.z2, "k2": list(self.k2),
@@ -319,21 +332,23 @@ def z2_from_wilson_loops(structure: "Structure | Atoms", settings: LabelSettings
 def plot_flow(result: WilsonZ2, ax: Any = None) -> Any:
     """Plot the Wannier-centre flow: centres against k2, with the tracked largest gap.
 
+    Draws into ``ax`` when given, else into a new figure (not registered with pyplot).
     Returns the matplotlib ``Axes``.
     """
-    import matplotlib.pyplot as plt
-
     if ax is None:
-        _, ax = plt.subplots(figsize=(4.5, 3.5))
+        from matplotlib.figure import Figure
+
+        ax = Figure(figsize=(4.5, 3.5), layout="constrained").subplots()
     k2 = np.asarray(result.k2)
-    for w_line, k in zip(result.wcc, k2):
-        ax.plot(np.full(len(w_line), k), w_line, "o", ms=2.5, color="0.25", ls="none")
-    ax.plot(k2, result.gap_centres, "-", lw=1.2, color="tab:red",
-            label="largest gap (tracked)")
+    for i, (w_line, k) in enumerate(zip(result.wcc, k2)):
+        ax.plot(np.full(len(w_line), k), w_line, "o", ms=2.5, color="0.25", ls="none",
+                label="Wannier charge centres" if i == 0 else None)
+    ax.plot(k2, result.gap_centres, "D", ms=4, color="tab:red", ls="none",
+            label="middle of the largest gap")
     ax.set_xlim(0.0, 0.5)
     ax.set_ylim(0.0, 1.0)
     ax.set_xlabel("$k_2$ (units of $b_2$)")
     ax.set_ylabel("Wannier charge centre (units of $a_1$)")
     ax.set_title(f"{result.id or result.formula}: Z2 = {result.z2}")
-    ax.legend(loc="upper right", fontsize="small")
+    ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), fontsize="small", frameon=False)
     return ax

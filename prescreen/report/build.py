@@ -248,6 +248,8 @@ class InvariantRow:
     status: str
     reason: str
     spillage: float | None
+    #: The Wilson-loop flow (:class:`prescreen.physics.wilson.WilsonZ2`) when stored.
+    flow: Any = None
 
 
 @dataclass(frozen=True)
@@ -474,7 +476,7 @@ def _method_words(row: dict[str, str]) -> str:
 
 def _invariants(campaign: Campaign, labels: pd.DataFrame) -> tuple[InvariantRow, ...]:
     """The rows of ``<campaign>/z2.csv`` (none when absent), with each one's spillage."""
-    from prescreen.invariants import read_invariants
+    from prescreen.invariants import read_flow, read_invariants
 
     path = campaign.path / INVARIANTS_FILE
     rows = []
@@ -486,7 +488,8 @@ def _invariants(campaign: Campaign, labels: pd.DataFrame) -> tuple[InvariantRow,
                 direct_gap_soc_eV=float(r["direct_gap_soc_eV"]) if r["direct_gap_soc_eV"] else None,
                 status=r["status"], reason=r["reason"],
                 spillage=(float(labels.loc[r["id"], "spillage"]) if r["id"] in labels.index
-                          else None)))
+                          else None),
+                flow=read_flow(path, r["id"]) if r["method"] == "wilson" else None))
         except ValueError as exc:
             raise InputError(f"bad invariants row: {exc}", path=path, line=i, value=str(r)[:120],
                              expected="the columns written by `prescreen z2`") from exc

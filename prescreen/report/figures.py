@@ -25,6 +25,7 @@ if TYPE_CHECKING:  # pragma: no cover
 __all__ = [
     "PNG_DPI",
     "to_png_base64",
+    "flow_figure",
     "roc_figure",
     "pr_figure",
     "calibration_figure",
@@ -59,6 +60,16 @@ def _figure(height: float, ncols: int = 1):
 
 def _tidy(ax: Any) -> None:
     ax.spines[["top", "right"]].set_visible(False)
+
+
+def flow_figure(flow: Any) -> Figure:
+    """The Wannier-centre flow of a Wilson-loop Z2 result (centres against k2)."""
+    from prescreen.physics.wilson import plot_flow
+
+    fig, (ax,) = _figure(3.0)
+    plot_flow(flow, ax=ax)
+    _tidy(ax)
+    return fig
 
 
 def roc_figure(y: np.ndarray, p: np.ndarray) -> Figure:

@@ -101,6 +101,14 @@ def figures(data: ReportData) -> dict[str, Any]:
              "predicted probability; points on the diagonal are well calibrated.",
              png(F.calibration_figure(y, p))),
         ]
+    out["flows"] = [
+        (f"fig-z2-flow-{r.id}", f"Wannier-centre flow of {r.id} ({r.formula}): Z2 = {r.z2}",
+         "Hybrid Wannier charge centres of the occupied states with SOC (dots) on each "
+         "Wilson loop along k1, against k2 over half the Brillouin zone; red diamonds mark "
+         "the middle of the largest gap between centres on each loop. Z2 is the parity of "
+         "the number of centres the diamonds jump over from one loop to the next.", png(F.flow_figure(r.flow)))
+        for r in data.invariants if r.flow is not None
+    ]
     out["replay"] = []
     if data.replay is not None:
         from prescreen.acquire.replay import plot_discovery
