@@ -15,7 +15,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--timeout", type=float, default=1800.0,
                         help="wall-time limit per structure in seconds (default 1800)")
     parser.add_argument("--z2", action="store_true",
-                        help="then compute the Z2 invariant (parities at the TRIMs) of every "
+                        help="then compute the Z2 invariant (parities at the TRIMs, or Wilson loops "
+                        "without an inversion centre) of every "
                         "new hit with a band gap with SOC; results in <campaign>/z2.csv")
     parser.add_argument("--no-progress", action="store_true", help="hide progress bars")
 
