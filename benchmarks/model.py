@@ -232,7 +232,8 @@ def part_cv(seed: int, data: Path) -> None:
     rows = []
     try:
         for name, (factory, X) in models.items():
-            res = cross_validate(factory, X, y, formulas, n_splits=5, random_state=seed, label=name)
+            res = cross_validate(factory, X, y, formulas, n_splits=5, random_state=seed, label=name,
+                                 progress=sys.stderr.isatty())
             rows.append((name, res))
     except InputError as exc:  # too few rows, groups or positives for 5 grouped folds yet
         print(f"   NOT RUN: {exc}")
