@@ -605,7 +605,7 @@ def _pipeline(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Path | 
     """The scheduler behind both stages; returns (new labels, all relaxation records).
 
     Job kinds, in order of priority: the label of a finished relaxation, the Z2
-    invariant of a new gapped positive with an inversion centre (``<work>/z2.jsonl``),
+    invariant of a new gapped positive (``<work>/z2.jsonl``; parities or Wilson loops),
     the next relaxation. ``label=False`` relaxes only.
     """
     from tqdm.auto import tqdm

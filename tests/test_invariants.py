@@ -125,3 +125,32 @@ def test_label_with_z2_checks_the_new_gapped_hits(campaign, monkeypatch, capsys)
     assert "Z2 of 1 hit(s) with a band gap with SOC" in out  # c0 only: c1 is a metal
     assert "c0: no invariant: c0: no direct gap with spin-orbit coupling (stand-in)" in out
     assert list(read_invariants(path / INVARIANTS_FILE)) == ["c0"]
+
+
+def test_z2_without_ids_retries_refusals_of_the_parity_method_only(campaign, monkeypatch,
+                                                                   capsys):
+    # a file from before Wilson loops: c0 (2H, no inversion centre) refused by parities;
+    # `prescreen z2` with no IDs must give it Wilson loops once, and not again after that
+    pytest.importorskip("gpaw")
+    from prescreen.cli.main import main
+    from prescreen.errors import LabellingError
+    from prescreen.physics import wilson
+
+    asked = []
+
+    def refuse(structure, settings, *, id=None, **kwargs):
+        asked.append(id)
+        raise LabellingError(f"{id}: no direct gap with spin-orbit coupling (stand-in)")
+
+    monkeypatch.setattr(wilson, "z2_from_wilson_loops", refuse)
+    path = campaign.path
+    (path / INVARIANTS_FILE).write_text(
+        "id,formula,z2,delta,direct_gap_soc_eV,kmesh,inversion_centre,parity_error,wall_s,"
+        "status,reason\nc0,MoS2,,,,,,,,refused,the structure has no inversion centre\n")
+    campaign.close()
+    assert main(["z2", str(path), "--no-progress"]) == 0
+    assert asked == ["c0"]
+    assert read_invariants(path / INVARIANTS_FILE)["c0"]["method"] == "wilson"
+    assert main(["z2", str(path), "--no-progress"]) == 0
+    assert asked == ["c0"]  # a Wilson-loop refusal stands
+    assert "nothing to compute" in capsys.readouterr().out

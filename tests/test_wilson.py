@@ -75,6 +75,23 @@ def test_atomic_limit_centres_sit_on_the_occupied_site():
     assert link > 0.99
 
 
+def test_a_closed_gap_ends_the_refinement_instead_of_looping():
+    # exactly at the Kane-Mele phase boundary lambda_v = 3 sqrt(3) lambda_so the gap
+    # closes at K (Kane and Mele 2005): bisection must stop with an error, not run forever
+    import time
+
+    model = KaneMele(lambda_so=0.06, lambda_v=3 * np.sqrt(3) * 0.06)
+    t0 = time.perf_counter()
+    with pytest.raises(PrescreenError, match="not resolved"):
+        z2_from_flow(km_centres(model), n_lines=9, max_lines=65)
+    assert time.perf_counter() - t0 < 30
+
+
+def test_an_odd_number_of_centres_is_refused():
+    with pytest.raises(InputError, match="Kramers pairs"):
+        z2_from_flow(lambda k2: (np.zeros((len(k2), 3)), 1.0), n_lines=3)
+
+
 def test_an_unresolvable_flow_is_refused():
     def jumpy(k2):  # centres that jump everywhere: no line ever agrees with its neighbour
         rng = np.random.default_rng(int(1e6 * float(np.sum(k2))) % 2**32)
@@ -133,7 +150,7 @@ def test_bismuth_with_a_spectator_molecule_on_one_side_keeps_z2():
     atoms.append(Atom("H", (0.0, 0.0, top + 4.0)))
     atoms.append(Atom("H", (0.0, 0.0, top + 4.74)))
     assert choose_method(atoms) == "wilson"
-    assert z2_from_wilson_loops(atoms, MESH, id="Bi+He").z2 == 1  # gap stays open
+    assert z2_from_wilson_loops(atoms, MESH, id="Bi+H2").z2 == 1  # gap stays open
 
 
 @pytest.mark.dft
@@ -161,3 +178,66 @@ def test_the_flow_plot_shows_every_centre_and_the_tracked_gap():
     assert points == flow.wcc.size
     assert list(ax.lines[-1].get_ydata()) == list(flow.gap_centres)
     assert "Z2 = 1" in ax.get_title() and "Wannier" in ax.get_ylabel()
+
+
+@pytest.mark.dft
+def test_point_orbital_links_follow_gpaws_own_overlaps(tmp_path):
+    # The reference is GPAW itself: its LCAO states put on the real-space grid, with the
+    # PAW corrections, give the exact <u_k|u_k+b>. The point-orbital links must be close
+    # to those, closer than with the opposite phase or the transposed overlap (the two
+    # convention mistakes a sign or an index swap would make), and GPAW's Bloch sums at
+    # k1 = 1 must equal those at k1 = 0 (the loop closure). A small hBN cell with one atom
+    # given outside the unit cell checks the wrapping too.
+    from ase import Atoms
+    from gpaw import GPAW, FermiDirac
+
+    from prescreen.physics.wilson import _orbital_centres, point_orbital_link
+
+    a = 2.51
+    atoms = Atoms("BN", cell=[[a, 0, 0], [-a / 2, a * np.sqrt(3) / 2, 0], [0, 0, 9.0]],
+                  pbc=[True, True, False])
+    atoms.set_scaled_positions([[0.1, 0.2, 0.5], [-0.2333, 0.5333, 0.5]])
+    calc = GPAW(mode="lcao", basis="sz(dzp)", xc="LDA", h=0.22,
+                kpts={"size": (3, 3, 1), "gamma": True}, nbands="nao",
+                occupations=FermiDirac(0.01), txt=str(tmp_path / "scf.txt"))
+    atoms.calc = calc
+    atoms.get_potential_energy()
+    nk1, nocc = 8, 4
+    kpts = np.array([[j / nk1, 0.17, 0.0] for j in range(nk1 + 1)])  # k1 = 0 .. 1
+    nscf = calc.fixed_density(kpts=kpts, symmetry="off", txt=str(tmp_path / "nscf.txt"))
+    dft = nscf.dft
+    tau = _orbital_centres(nscf)
+    wfs = list(dft.ibzwfs)
+    assert np.abs(wfs[-1].S_MM.data - wfs[0].S_MM.data).max() < 1e-10  # closure
+
+    grid = dft.ibzwfs.grid
+    psi, proj = [], []
+    for w in wfs:
+        g = w.to_uniform_grid_wave_functions(grid, w.basis)
+        psi.append(g.psit_nX.data[:nocc].reshape(nocc, -1).copy())
+        proj.append({at: g.P_ani[at][:nocc].copy() for at in g.P_ani.keys()})
+    dv = abs(np.linalg.det(grid.cell_cv)) / np.prod(grid.size_c)
+    r = grid.xyz().reshape(-1, 3)
+    b = np.array([1 / nk1, 0.0, 0.0]) @ (2 * np.pi * np.linalg.inv(grid.cell_cv).T)
+    pos = dft.relpos_ac @ grid.cell_cv
+
+    def exact(i, j):
+        m = (psi[i].conj() * np.exp(-1j * r @ b)[None, :]) @ psi[j].T * dv
+        for at in proj[i]:
+            m += (np.exp(-1j * pos[at] @ b) * proj[i][at].conj() @ dft.setups[at].dO_ii
+                  @ proj[j][at].T)
+        return m
+
+    def coeffs(i):
+        return wfs[i].C_nM.data[:nocc, :, None]
+
+    for i in (0, 3):
+        ref = exact(i, i + 1)
+        Sa, Sb = wfs[i].S_MM.data, wfs[i + 1].S_MM.data
+        ours = point_orbital_link(coeffs(i), coeffs(i + 1), Sa, Sb, tau[:, 0] / nk1)
+        flipped = point_orbital_link(coeffs(i), coeffs(i + 1), Sa, Sb, -tau[:, 0] / nk1)
+        swapped = point_orbital_link(coeffs(i), coeffs(i + 1), Sa.T, Sb.T, tau[:, 0] / nk1)
+        err = np.abs(ours - ref).max()
+        assert err < 0.3  # dropped intra-atomic dipoles, measured about 0.17-0.19
+        assert err < 0.5 * np.abs(flipped - ref).max()
+        assert err < 0.5 * np.abs(swapped - ref).max()

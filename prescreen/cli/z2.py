@@ -12,7 +12,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("campaign", help="campaign folder")
     parser.add_argument("ids", nargs="*",
                         help="candidate IDs (default: every labelled hit with a band gap "
-                        "with SOC that has no invariant yet)")
+                        "with SOC that has no invariant yet, or was refused by the parity "
+                        "method alone)")
     parser.add_argument("--out", type=Path, default=None,
                         help="CSV to update (default <campaign>/z2.csv; rows of other IDs "
                         "are kept)")
@@ -41,7 +42,10 @@ def run(args: argparse.Namespace) -> int:
         out = args.out or campaign.path / INVARIANTS_FILE
         ids = args.ids
         if not ids:
-            done = read_invariants(out)
+            # an earlier refusal by the parity method alone (before Wilson loops) is
+            # retried; a result, or a refusal by Wilson loops, is not
+            done = {i for i, row in read_invariants(out).items()
+                    if row["status"] == "ok" or row["method"] == "wilson"}
             ids = [i for i in gapped_hits(campaign) if i not in done]
             if not ids:
                 print("nothing to compute: no labelled hit with a band gap with SOC lacks "

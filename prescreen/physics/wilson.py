@@ -18,18 +18,24 @@ non-self-consistently):
    has coefficients ``W[m, M, s] = sum_n V[m, 2 n + s] C[n, M]``.
 3. The overlap of cell-periodic parts between neighbours ``k`` and ``k + b`` is taken in
    the point-orbital approximation ``exp(-i b.r) phi_M ~ exp(-i b.tau_a) phi_M``, the usual
-   one for localised bases (its error shrinks with the step ``b``):
-   ``M = W(k)* S(k) diag(exp(-i b.tau)) W(k + b)^T``. The same Bloch sums at ``k + G``
-   equal those at ``k``, so the loop closes with ``W(k1 = 1) = W(k1 = 0)`` and the phase of
-   ``b`` taken across the zone boundary.
+   one for localised bases, split evenly between the two ends so that the link from
+   ``k + b`` back to ``k`` is exactly the adjoint:
+   ``M = W(k)* D [S(k) + S(k + b)] / 2 D W(k + b)^T`` with ``D = diag(exp(-i b.tau / 2))``.
+   The same Bloch sums at ``k + G`` equal those at ``k``, so the loop closes with
+   ``W(k1 = 1) = W(k1 = 0)`` and the phase of ``b`` taken across the zone boundary.
+   The approximation drops intra-atomic dipoles: the centres follow the tight-binding
+   convention (in a test on hBN they sat 0.01-0.05 a1 from the centres of exact grid
+   overlaps) and do not converge to the true hybrid Wannier centres as ``b`` shrinks.
+   That is a continuous, time-reversal-symmetric change of the centres, which leaves
+   the count, and so Z2, unchanged.
 4. The Wilson loop is the product of the unitary parts of the links; minus its
    eigenphases over 2 pi are the centres (in units of a1), and :func:`prescreen.physics.z2.z2_from_flow` counts the flow,
    adding lines by bisection where it is unresolved (one more GPAW run per pass).
 
 Checks, each a refusal with the reason rather than a guess: the layer must have a direct
 gap with SOC on every sampled k point, an even electron count, and links whose smallest
-singular value is at least :data:`MIN_LINK` (else the k1 step is too coarse for the
-approximation in step 3). Magnetic settings are refused: the invariant needs
+singular value is at least :data:`MIN_LINK` (else the loops are recomputed with twice
+the points along k1, up to :data:`MAX_NK1`). Magnetic settings are refused: the invariant needs
 time-reversal symmetry.
 """
 
@@ -59,20 +65,31 @@ if TYPE_CHECKING:  # pragma: no cover - typing only
     from ase import Atoms
     from pymatgen.core import Structure
 
-__all__ = ["MIN_LINK", "NK1", "N_LINES", "WilsonZ2", "loop_centres", "z2_from_wilson_loops",
+__all__ = ["MIN_LINK", "NK1", "MAX_NK1", "N_LINES", "WilsonZ2", "point_orbital_link", "loop_centres", "z2_from_wilson_loops",
            "plot_flow"]
 
-#: k points per Wilson loop along k1. Chosen here: the point-orbital links of step 3 stay
-#: near unitary (smallest singular value about 0.9) for two- and three-atom layers.
+#: k points per Wilson loop along k1 to start with; doubled while any link is further
+#: from unitary than :data:`MIN_LINK`, up to :data:`MAX_NK1`. Chosen here.
 NK1: int = 24
+#: Most k points per loop (the last doubling).
+MAX_NK1: int = 96
 #: Initial number of Wilson loops over k2 in [0, 1/2] (refined where needed).
 N_LINES: int = 9
 #: Most loops over k2 before the flow is declared unresolved.
 MAX_LINES: int = 65
 #: Smallest singular value of a link accepted (dimensionless; 1 for an infinitesimal
-#: step). Below it the k1 step is too coarse for the point-orbital overlap. Common
-#: practice for Wilson loops on a discrete mesh, chosen here.
-MIN_LINK: float = 0.5
+#: step). Below it the occupied subspace turns too much between neighbouring k for the
+#: step (a nearly closed gap, or a coarse loop) and the loop is refined. Chosen here:
+#: exact grid overlaps of a hBN layer give about 0.96 at 16 points per loop.
+MIN_LINK: float = 0.8
+
+
+class _CoarseLoops(Exception):
+    """A link's smallest singular value fell below :data:`MIN_LINK` (refine the loops)."""
+
+    def __init__(self, min_link: float) -> None:
+        super().__init__(f"smallest link singular value {min_link:.3f}")
+        self.min_link = min_link
 
 
 @dataclass(frozen=True)
@@ -142,6 +159,20 @@ def _orbital_centres(calc: Any) -> np.ndarray:
     return relpos[owner]
 
 
+def point_orbital_link(Ca: np.ndarray, Cb: np.ndarray, Sa: np.ndarray, Sb: np.ndarray,
+                       b_tau: np.ndarray) -> np.ndarray:
+    """Overlaps ``<u_m,k|u_n,k+b>`` of cell-periodic parts from LCAO coefficients.
+
+    ``M = Ca* D (Sa + Sb) / 2 D Cb^T`` summed over spin, ``D = diag(exp(-i pi b.tau))``
+    (step 3 of the module notes; ``b.tau`` in cycles, i.e. fractional ``b`` times
+    fractional ``tau``). Arrays ``Ca``, ``Cb`` have shape (n, nM, n_spin) (coefficients
+    of GPAW's Bloch sums, band rows), ``Sa``, ``Sb`` shape (nM, nM), ``b_tau`` shape (nM,).
+    """
+    half = np.exp(-1j * np.pi * np.asarray(b_tau, dtype=float))
+    s_mid = half[:, None] * (0.5 * (Sa + Sb)) * half[None, :]
+    return sum(Ca[:, :, s].conj() @ s_mid @ Cb[:, :, s].T for s in range(Ca.shape[2]))
+
+
 def loop_centres(C: np.ndarray, S: np.ndarray, tau: np.ndarray, nk1: int) -> tuple[np.ndarray, float]:
     """Wannier charge centres of one closed loop along k1 from LCAO spinor coefficients.
 
@@ -165,14 +196,12 @@ def loop_centres(C: np.ndarray, S: np.ndarray, tau: np.ndarray, nk1: int) -> tup
         Smallest singular value of the links.
     """
     n_occ = C.shape[1]
-    # exp(-i b.tau) for the step b = (1/nk1, 0, 0); the closing step crosses the zone
-    # boundary, b = (1/nk1, 0, 0) as well, with the same Bloch sums (see the notes)
-    phase = np.exp(-2j * np.pi * tau[:, 0] / nk1)
     w = np.eye(n_occ, dtype=complex)
     worst = 1.0
     for j in range(nk1):
-        a, b = C[j], C[(j + 1) % nk1]
-        m = sum(a[:, :, s].conj() @ S[j] @ (phase[:, None] * b[:, :, s].T) for s in range(2))
+        # the closing step crosses the zone boundary with the same b and Bloch sums
+        nxt = (j + 1) % nk1
+        m = point_orbital_link(C[j], C[nxt], S[j], S[nxt], tau[:, 0] / nk1)
         left, sv, right = np.linalg.svd(m)
         worst = min(worst, float(sv.min()))
         w = w @ (left @ right)
@@ -192,8 +221,9 @@ def _line_states(calc: Any, k2: np.ndarray, nk1: int, n_occ: int, soc_scale: flo
     nscf = calc.fixed_density(kpts=kpts, symmetry="off", txt=str(txt))
     got = np.asarray(nscf.get_bz_k_points(), dtype=float)
     if got.shape != kpts.shape or not np.allclose(got, kpts, atol=1e-10):
-        raise LabellingError("GPAW did not keep the requested k points in order; no "
-                             "invariant is given")
+        raise LabellingError(f"GPAW returned {got.shape[0]} k points not in the requested "
+                             f"order (expected the {kpts.shape[0]} points of the loops in "
+                             "order); no invariant is given")
     soc = soc_eigenstates(nscf, scale=soc_scale)
     v_kmn = soc.eigenvectors()  # [k, SOC state m, basis 2 n + s]
     e_soc = soc.eigenvalues()
@@ -219,7 +249,7 @@ def _line_states(calc: Any, k2: np.ndarray, nk1: int, n_occ: int, soc_scale: flo
 def z2_from_wilson_loops(structure: "Structure | Atoms", settings: LabelSettings = LabelSettings(),
                          *, id: str | None = None, workdir: Path | None = None,
                          nk1: int = NK1, n_lines: int = N_LINES,
-                         max_lines: int = MAX_LINES) -> WilsonZ2:
+                         max_lines: int = MAX_LINES, max_nk1: int = MAX_NK1) -> WilsonZ2:
     """Compute the Z2 invariant of a non-magnetic insulating monolayer from Wilson loops.
 
     Parameters
@@ -235,6 +265,9 @@ def z2_from_wilson_loops(structure: "Structure | Atoms", settings: LabelSettings
         Folder for GPAW's logs; a temporary folder when None.
     nk1, n_lines, max_lines
         Points per loop, initial loops over k2 in [0, 1/2], and the refinement limit.
+    max_nk1
+        Points per loop are doubled from ``nk1`` while a link's smallest singular value is
+        below :data:`MIN_LINK`, up to this many; the flow is recomputed each time.
 
     Returns
     -------
@@ -250,12 +283,15 @@ def z2_from_wilson_loops(structure: "Structure | Atoms", settings: LabelSettings
         resolved within ``max_lines`` loops.
     """
     if settings.spinpol:
-        raise InputError("the Z2 invariant needs time-reversal symmetry", value="spinpol=True",
+        raise InputError(f"{id or 'structure'}: the Z2 invariant needs time-reversal symmetry",
+                         value="spinpol=True",
                          expected="a non-magnetic calculation (spinpol=False)")
-    if nk1 < 4 or n_lines < 2 or max_lines < n_lines:
+    if nk1 < 4 or n_lines < 2 or max_lines < n_lines or max_nk1 < nk1:
         raise InputError("too few Wilson loops or points per loop",
-                         value=f"nk1={nk1}, n_lines={n_lines}, max_lines={max_lines}",
-                         expected="nk1 >= 4, n_lines >= 2, max_lines >= n_lines")
+                         value=f"nk1={nk1}, n_lines={n_lines}, max_lines={max_lines}, "
+                         f"max_nk1={max_nk1}",
+                         expected="nk1 >= 4, n_lines >= 2, max_lines >= n_lines, "
+                         "max_nk1 >= nk1")
     t0 = time.perf_counter()
     atoms = prepare_monolayer(structure, settings.vacuum_A)
     formula = _formula(atoms)
@@ -281,14 +317,14 @@ def z2_from_wilson_loops(structure: "Structure | Atoms", settings: LabelSettings
             raise LabellingError(f"{name}: {n_electrons:g} valence electrons; a time-reversal-"
                                  "symmetric insulator needs an even number")
 
-        def centres(k2: np.ndarray) -> tuple[np.ndarray, float]:
+        def centres(k2: np.ndarray, size: int) -> tuple[np.ndarray, float]:
             stats["runs"] += 1
             try:
                 coeffs, overlaps, tau, gap = _line_states(
-                    calc, np.asarray(k2, dtype=float), nk1, n_occ, settings.soc_scale,
+                    calc, np.asarray(k2, dtype=float), size, n_occ, settings.soc_scale,
                     folder / f"gpaw-wilson-nscf{stats['runs']}.txt")
-            except LabellingError:
-                raise
+            except LabellingError as exc:
+                raise LabellingError(f"{name}: {exc}") from exc
             except Exception as exc:
                 raise LabellingError(f"{name}: GPAW non-self-consistent run failed: "
                                      f"{type(exc).__name__}: {exc}") from exc
@@ -299,25 +335,39 @@ def z2_from_wilson_loops(structure: "Structure | Atoms", settings: LabelSettings
                     "so the invariant, are not defined")
             stats["gap"] = min(stats["gap"], gap)
             wcc = []
-            for c, s in zip(coeffs, overlaps):
-                w, worst = loop_centres(c, s, tau, nk1)
+            for y, c, s in zip(np.atleast_1d(k2), coeffs, overlaps):
+                try:
+                    w, worst = loop_centres(c, s, tau, size)
+                except np.linalg.LinAlgError as exc:
+                    raise LabellingError(f"{name}: Wilson loop at k2 = {float(y):.4f} failed: "
+                                         f"{exc}") from exc
                 stats["min_link"] = min(stats["min_link"], worst)
                 wcc.append(w)
             if stats["min_link"] < MIN_LINK:
-                raise LabellingError(
-                    f"{name}: Wilson-loop links far from unitary (smallest singular value "
-                    f"{stats['min_link']:.2f} < {MIN_LINK}); use more points per loop "
-                    f"than nk1 = {nk1}")
+                raise _CoarseLoops(stats["min_link"])
             return np.array(wcc), gap
 
-        try:
-            from prescreen.physics.z2 import z2_from_flow
+        from prescreen.physics.z2 import z2_from_flow
 
-            flow = z2_from_flow(centres, n_lines=n_lines, max_lines=max_lines)
-        except PrescreenError as exc:
-            if isinstance(exc, LabellingError):
+        size, flow = nk1, None
+        while flow is None:
+            stats["min_link"] = 1.0
+            try:
+                flow = z2_from_flow(lambda k2: centres(k2, size), n_lines=n_lines,
+                                    max_lines=max_lines)
+            except _CoarseLoops as coarse:
+                if 2 * size > max_nk1:
+                    raise LabellingError(
+                        f"{name}: Wilson-loop links far from unitary with {size} points per "
+                        f"loop (smallest singular value {coarse.min_link:.2f}, expected >= "
+                        f"{MIN_LINK}): the occupied states turn too fast for the step, a sign "
+                        "of a nearly closed gap; no invariant is given") from None
+                size *= 2
+            except LabellingError:
                 raise
-            raise LabellingError(f"{name}: {exc}") from exc
+            except PrescreenError as exc:
+                raise LabellingError(f"{name}: {exc}") from exc
+    nk1 = size
     sdict = settings.as_dict()
     sdict.update(kmesh=list(kmesh), mode="lcao", nbands="nao", nk1=nk1)
     return WilsonZ2(id=id, formula=formula, z2=int(flow.z2),

@@ -43,6 +43,9 @@ GAP_TOL: float = 1e-6
 #: Wannier centre of a neighbouring line may come closer to a gap centre than this
 #: fraction of the gap (dimensionless). Common practice.
 _GAP_FRACTION: float = 0.3
+#: Narrowest spacing of Wilson loops in k2 (fractional) that refinement may reach; an
+#: interval still unresolved below it means a (nearly) closed gap. Chosen here.
+_MIN_LINE_STEP: float = 1e-5
 
 
 @dataclass(frozen=True, eq=False)
@@ -218,11 +221,18 @@ def z2_from_flow(centres: Callable[[np.ndarray], tuple[np.ndarray, float]], *,
 
     Raises
     ------
+    InputError
+        If the lines hold an odd number of centres (the count needs Kramers pairs).
     PrescreenError
-        If the flow cannot be resolved within ``max_lines`` loops.
+        If the flow cannot be resolved within ``max_lines`` loops, or an unresolved
+        interval is narrower than 1e-5 in k2.
     """
-    lines = list(np.linspace(0.0, 0.5, n_lines))
+    lines = [float(k) for k in np.linspace(0.0, 0.5, n_lines)]
     wcc_arr, min_gap = centres(np.array(lines))
+    if wcc_arr.ndim != 2 or wcc_arr.shape[1] % 2:
+        raise InputError("the Wannier-centre flow needs Kramers pairs",
+                         value=f"{wcc_arr.shape[-1]} centres per line",
+                         expected="an even number of centres per line")
     data = {k: (wcc_arr[i],) + _largest_gap(wcc_arr[i]) for i, k in enumerate(lines)}
     while True:
         pending = []
@@ -234,11 +244,13 @@ def z2_from_flow(centres: Callable[[np.ndarray], tuple[np.ndarray, float]], *,
                 pending.append((ka, kb))
         if not pending:
             break
-        if len(lines) + len(pending) > max_lines:
-            ka, kb = pending[0]
+        narrow = [(ka, kb) for ka, kb in pending if kb - ka < _MIN_LINE_STEP]
+        if narrow or len(lines) + len(pending) > max_lines:
+            where = ", ".join(f"[{ka:.6f}, {kb:.6f}]" for ka, kb in (narrow or pending)[:5])
             raise PrescreenError(
-                f"Wannier-centre flow not resolved with {max_lines} lines near "
-                f"k2 = {ka:.4f}; the gap may be nearly closed"
+                f"Wannier-centre flow not resolved with {len(lines)} lines (limit "
+                f"{max_lines}, narrowest step {_MIN_LINE_STEP:g}) between k2 = {where}; "
+                "the gap may be nearly closed"
             )
         mids = np.array([0.5 * (ka + kb) for ka, kb in pending])
         wm, gap = centres(mids)  # one call per refinement pass (one DFT run, say)

@@ -470,7 +470,7 @@ def _method_words(row: dict[str, str]) -> str:
         return row["method"]
     if row["method"] == "wilson":
         lines, _, nk1 = row["wilson_loops"].partition("x")
-        return f"Wilson loops ({lines} lines of {nk1} k)"
+        return f"Wilson loops ({lines} lines of {nk1} k points)"
     return f"parities {row['delta']}"
 
 
