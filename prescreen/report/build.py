@@ -68,8 +68,8 @@ CAUTIONS: tuple[str, ...] = (
     "threshold; it does not establish a band inversion or a topological phase. Confirm "
     "every hit with topological invariants: the Z2 index from Wilson loops (hybrid "
     "Wannier charge centres), or from parity eigenvalues at the time-reversal-invariant "
-    "momenta when the layer has inversion symmetry (`prescreen z2` computes the latter "
-    "with the built-in DFT labeller); a Chern number for magnetic layers.",
+    "momenta when the layer has inversion symmetry (`prescreen z2` computes both with the "
+    "built-in DFT labeller); a Chern number for magnetic layers.",
     "Flags for toxic or radioactive elements defer to local safety rules. " + SAFETY_NOTE,
     "Probabilities are calibrated on the training data. Candidates unlike anything in it "
     "(other elements, other structure types) carry larger errors than the ensemble "
