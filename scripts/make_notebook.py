@@ -27,7 +27,9 @@ CELLS = [
            "repeating an earlier one; bad entries are kept as rejections with file, line and "
            "reason."),
     ("code", "inputs = Path('examples/ferngrove')\n"
-             "sources = [p for p in sorted(inputs.iterdir()) if p.name not in ('results.csv', 'z2.csv')]\n"
+             "# results, Z2 checks and their Wannier-centre flows are not candidates\n"
+             "sources = [p for p in sorted(inputs.iterdir())\n"
+             "           if p.name not in ('results.csv', 'z2.csv', 'z2_flows')]\n"
              "campaign = Campaign.create(work / 'campaign', name='ferngrove-notebook')\n"
              "report = campaign.add_candidates(iter_candidates(sources))\n"
              "report.added, report.layer_counts, report.duplicates, report.rejections"),
@@ -50,6 +52,22 @@ CELLS = [
     ("code", "proposal = rounds.propose(campaign, budget_core_hours=0.05, progress=False)\n"
              "proposal.table[['formula', 'probability', 'cost_core_hours', 'reason']]"),
     ("code", "campaign.status()"),
+    ("md", "## 5. Check the hits with a Z2 invariant\n"
+           "`prescreen.invariants.compute_invariants(campaign, ids)` (or `prescreen z2`) runs "
+           "GPAW: parity eigenvalues for layers with an inversion centre, Wilson loops for the "
+           "others. It takes tens of seconds to minutes per small cell, so here we read the "
+           "group's earlier results instead, and plot the flow of Wannier charge centres "
+           "behind one of them."),
+    ("code", "import pandas as pd\n"
+             "from prescreen.invariants import read_flow, read_invariants\n"
+             "from prescreen.physics.wilson import plot_flow\n"
+             "checks = read_invariants(inputs / 'z2.csv')\n"
+             "pd.DataFrame(checks).T[['formula', 'z2', 'method', 'direct_gap_soc_eV', "
+             "'status']]"),
+    ("code", "%matplotlib inline\n"
+             "flow = read_flow(inputs / 'z2.csv', 'fg-tmd-001')\n"
+             "ax = plot_flow(flow)\n"
+             "ax.figure"),
 ]
 
 
