@@ -847,6 +847,11 @@ def _median(values: "pd.Series") -> str:
     return f"{float(v.median()):.0f}" if len(v) else "n/a"
 
 
+def _count(n: int, one: str, many: str) -> str:
+    """``"1 has"``, ``"3 have"``: a count with the verb that agrees with it."""
+    return f"{int(n)} {one if int(n) == 1 else many}"
+
+
 def _rate(pos: int, n: int) -> str:
     return f"{pos / n:.3f}" if n else "n/a"
 
@@ -865,7 +870,7 @@ def datasheet(pool: "pd.DataFrame", labelled: "pd.DataFrame", relax: "pd.DataFra
     pending = int(positive["z2_status"].str.startswith("pending").sum()) if n_lab else 0
     z2_text = (f"computed for {len(computed)} ({by_method.get('parity', 0)} from parities, "
                f"{by_method.get('wilson', 0)} from Wilson loops), of which "
-               f"{int((computed['z2'] == 1).sum())} have Z2 = 1"
+               f"{_count((computed['z2'] == 1).sum(), 'has', 'have')} Z2 = 1"
                + (f"; {pending} wait for Wilson loops at the next run" if pending else "")
                if n_lab else "none yet")
     status = relax["status"].value_counts().to_dict() if len(relax) else {}
