@@ -71,8 +71,9 @@ class InvariantOutcome:
         if self.kept_earlier:
             return f"{self.id}: no invariant this time ({r['reason']}); the earlier result is kept"
         if r["status"] == "ok":
+            lines, _, nk1 = r["wilson_loops"].partition("x")
             how = (f"parities {r['delta']}" if r["method"] != "wilson"
-                   else f"Wilson loops on {r['wilson_loops']} lines")
+                   else f"Wilson loops, {lines} lines of {nk1} k points")
             return f"{self.id}: Z2 = {r['z2']} ({how}, direct gap {r['direct_gap_soc_eV']} eV)"
         return f"{self.id}: no invariant: {r['reason']}"
 

@@ -79,7 +79,7 @@ def test_auto_sends_a_layer_without_inversion_to_wilson_loops(campaign, monkeypa
     row = read_invariants(campaign.path / INVARIANTS_FILE)["c0"]
     assert (row["method"], row["z2"], row["wilson_loops"], row["status"]) == (
         "wilson", "0", "3x24", "ok")
-    assert row["delta"] == "" and "Wilson loops on 3x24 lines" in outcome.describe()
+    assert row["delta"] == "" and "Wilson loops, 3 lines of 24 k points" in outcome.describe()
 
 
 def test_files_from_before_the_method_column_still_read(tmp_path):
