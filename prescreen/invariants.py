@@ -27,8 +27,9 @@ from prescreen.errors import InputError, LabellingError
 if TYPE_CHECKING:  # pragma: no cover
     from prescreen.campaign import Campaign
 
-__all__ = ["INVARIANTS_FILE", "FLOWS_DIR", "read_flow", "COLUMNS", "METHODS", "choose_method", "InvariantOutcome", "read_invariants",
-           "gapped_hits", "compute_invariants"]
+__all__ = ["INVARIANTS_FILE", "FLOWS_DIR", "COLUMNS", "METHODS", "InvariantOutcome",
+           "choose_method", "compute_invariants", "gapped_hits", "method_words", "read_flow",
+           "read_invariants"]
 
 #: File in a campaign folder that holds the invariants.
 INVARIANTS_FILE = "z2.csv"
@@ -71,11 +72,21 @@ class InvariantOutcome:
         if self.kept_earlier:
             return f"{self.id}: no invariant this time ({r['reason']}); the earlier result is kept"
         if r["status"] == "ok":
-            lines, _, nk1 = r["wilson_loops"].partition("x")
-            how = (f"parities {r['delta']}" if r["method"] != "wilson"
-                   else f"Wilson loops, {lines} lines of {nk1} k points")
+            how = method_words(r)
             return f"{self.id}: Z2 = {r['z2']} ({how}, direct gap {r['direct_gap_soc_eV']} eV)"
         return f"{self.id}: no invariant: {r['reason']}"
+
+
+def method_words(row: dict[str, str]) -> str:
+    """How a computed row was found, in words: ``"parities -1 +1 +1 +1"`` or ``"Wilson
+    loops, 10 lines of 24 k points"`` (rows from before the ``method`` column are
+    parities); the method's name alone for a refusal."""
+    if row.get("status") != "ok":
+        return row.get("method", "")
+    if row.get("method") == "wilson":
+        lines, _, nk1 = row.get("wilson_loops", "").partition("x")
+        return f"Wilson loops, {lines} lines of {nk1} k points"
+    return f"parities {row.get('delta', '')}"
 
 
 def read_invariants(path: str | Path) -> dict[str, dict[str, str]]:

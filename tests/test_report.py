@@ -341,7 +341,7 @@ def test_invariants_written_by_z2_are_shown_with_the_spillage(built, collected, 
     text = " ".join(doc.text)
     assert f"{camp.labels().loc[labelled, 'spillage']:.3f}" in text
     assert "the structure has no inversion centre" in text
-    assert "Wilson loops (3 lines of 24 k points)" in text and "parities -1 +1 +1 +1" in text
+    assert "Wilson loops, 3 lines of 24 k points" in text and "parities -1 +1 +1 +1" in text
     imgs = {a["id"]: a for t, a in doc.tags if t == "img" and "id" in a}
     assert imgs["fig-z2-flow-loops"]["src"].startswith("data:image/png;base64,")
     assert not any(i.startswith("fig-z2-flow-") and i != "fig-z2-flow-loops" for i in imgs)

@@ -464,19 +464,9 @@ def _labelled_hit_fraction(labels: pd.DataFrame, threshold: float,
     return float(hit.mean())
 
 
-def _method_words(row: dict[str, str]) -> str:
-    """How an invariants row was computed, in words (files without ``method`` are parities)."""
-    if row["status"] != "ok":
-        return row["method"]
-    if row["method"] == "wilson":
-        lines, _, nk1 = row["wilson_loops"].partition("x")
-        return f"Wilson loops ({lines} lines of {nk1} k points)"
-    return f"parities {row['delta']}"
-
-
 def _invariants(campaign: Campaign, labels: pd.DataFrame) -> tuple[InvariantRow, ...]:
     """The rows of ``<campaign>/z2.csv`` (none when absent), with each one's spillage."""
-    from prescreen.invariants import read_flow, read_invariants
+    from prescreen.invariants import method_words, read_flow, read_invariants
 
     path = campaign.path / INVARIANTS_FILE
     rows = []
@@ -484,7 +474,7 @@ def _invariants(campaign: Campaign, labels: pd.DataFrame) -> tuple[InvariantRow,
         try:
             rows.append(InvariantRow(
                 id=r["id"], formula=r["formula"], z2=int(r["z2"]) if r["z2"] else None,
-                delta=r["delta"], method=_method_words(r),
+                delta=r["delta"], method=method_words(r),
                 direct_gap_soc_eV=float(r["direct_gap_soc_eV"]) if r["direct_gap_soc_eV"] else None,
                 status=r["status"], reason=r["reason"],
                 spillage=(float(labels.loc[r["id"], "spillage"]) if r["id"] in labels.index
