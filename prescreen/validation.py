@@ -294,7 +294,6 @@ def expected_calibration_error(y_true: ArrayLike, p: ArrayLike, *, n_bins: int =
     y_true = np.asarray(y_true, dtype=np.float64)
     p = np.asarray(p, dtype=np.float64)
     bins = np.minimum((p * n_bins).astype(np.intp), n_bins - 1)
-    count = np.bincount(bins, minlength=n_bins)
     sum_y = np.bincount(bins, weights=y_true, minlength=n_bins)
     sum_p = np.bincount(bins, weights=p, minlength=n_bins)
     return float(np.sum(np.abs(sum_y - sum_p)) / len(p))

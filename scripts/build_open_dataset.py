@@ -50,7 +50,7 @@ import signal
 import sys
 import time
 import traceback
-from collections import Counter, defaultdict
+from collections import Counter
 from contextlib import contextmanager
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Iterable, NamedTuple, Sequence
