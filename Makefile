@@ -57,10 +57,11 @@ benchmarks: venv
 	$(PY) benchmarks/phase_diagram.py $(BENCH_OUT)/phase_diagram.png
 	$(PY) benchmarks/replay.py $(BENCH_OUT)/replay.png || [ $$? -eq 2 ]
 
-# The DFT benchmarks (tens of minutes): labelling and relaxation cost.
+# The DFT benchmarks (tens of minutes): labelling, relaxation and Z2 cost.
 benchmarks-dft: dft-env
 	OPENBLAS_NUM_THREADS=1 $(PY) benchmarks/label.py --workers 2
 	OPENBLAS_NUM_THREADS=1 $(PY) benchmarks/relax.py
+	OPENBLAS_NUM_THREADS=1 $(PY) benchmarks/z2.py
 
 # A universal potential against the DFT relaxation (installs CHGNet and PyTorch: about
 # 1 GB where pip finds a CPU build of torch 2.13.0, several GB for PyPI's default build).
