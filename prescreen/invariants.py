@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import csv
 import importlib.util
+import json
 import os
 from collections.abc import Iterable
 from dataclasses import dataclass
@@ -124,8 +125,6 @@ def read_flow(invariants_path: str | Path, cid: str) -> Any:
     InputError
         If the flow file exists but is not a flow written by :func:`compute_invariants`.
     """
-    import json
-
     from prescreen.physics.wilson import WilsonZ2
 
     path = Path(invariants_path).parent / FLOWS_DIR / f"{cid}.json"
@@ -139,8 +138,6 @@ def read_flow(invariants_path: str | Path, cid: str) -> Any:
 
 
 def _write_flow(invariants_path: Path, cid: str, result: Any) -> None:
-    import json
-
     folder = invariants_path.parent / FLOWS_DIR
     folder.mkdir(parents=True, exist_ok=True)
     tmp = folder / f"{cid}.json.tmp"
