@@ -211,8 +211,12 @@ class Campaign:
                 f"{self.path}: not a campaign folder (no {DB_NAME}); "
                 "create one with `prescreen create`"
             )
-        self._conn = self._connect(db)
-        fmt = self.meta("store_format")
+        try:
+            self._conn = self._connect(db)
+            fmt = self.meta("store_format")
+        except sqlite3.DatabaseError as exc:
+            raise CampaignError(f"{db}: not a readable campaign store ({exc}); restore it "
+                                "from a backup or create a new campaign") from exc
         if fmt is None or int(fmt) != STORE_FORMAT:
             raise CampaignError(
                 f"{db}: store format {fmt!r} is not the supported format {STORE_FORMAT}"
@@ -430,11 +434,15 @@ class Campaign:
 
     @staticmethod
     def _record_rejection(conn, kind: str, rej: Rejection, now: str) -> None:
+        # "IS" rather than the UNIQUE constraint: SQLite treats NULL lines as distinct, so
+        # a whole-file rejection would otherwise be stored again on every run.
+        line = None if rej.line is None else str(rej.line)
         conn.execute(
-            "INSERT OR IGNORE INTO rejections (kind, path, line, value, reason, at) "
-            "VALUES (?,?,?,?,?,?)",
-            (kind, rej.path, None if rej.line is None else str(rej.line), rej.value,
-             rej.reason, now),
+            "INSERT INTO rejections (kind, path, line, value, reason, at) "
+            "SELECT ?,?,?,?,?,? WHERE NOT EXISTS (SELECT 1 FROM rejections WHERE kind=? "
+            "AND path=? AND line IS ? AND value=? AND reason=?)",
+            (kind, rej.path, line, rej.value, rej.reason, now,
+             kind, rej.path, line, rej.value, rej.reason),
         )
 
     def candidate_ids(self) -> list[str]:
@@ -657,7 +665,8 @@ class Campaign:
             tmp = cache.with_suffix(".parquet.tmp")
             cached.to_parquet(tmp)
             tmp.replace(cache)
-        assert cached is not None
+        if cached is None:  # nothing wanted and nothing cached yet
+            return pd.DataFrame(index=pd.Index([], name="id"))
         return cached.loc[wanted]
 
     # ------------------------------------------------------------------ rounds & models

@@ -139,8 +139,8 @@ LABELLED_XYZ = "labelled.extxyz.gz"
 RELAX_PARQUET = "relaxation.parquet"
 #: Checkpoint of the Z2 invariants (in the work folder), one JSON record per line.
 Z2_LOG = "z2.jsonl"
-#: A Z2 job may take this many times the labelling timeout: it runs without symmetry
-#: reduction on an even mesh, several times a label's cost (chosen here).
+#: A Z2 job may take this many times the labelling timeout: Wilson loops at up to 96 k
+#: per loop and parities on an even mesh cost several labels (chosen here).
 Z2_TIMEOUT_FACTOR = 3
 MANIFEST = "MANIFEST.json"
 DATASHEET = "README.md"
@@ -975,8 +975,10 @@ python scripts/build_open_dataset.py --seed {seed} --workers 2    # or: make dat
    from the Fermi level at each k. Spin-paired (non-magnetic) ground states.
 5. **Z2**, for positives with a band gap with spin-orbit coupling, at the same level of
    theory. With an inversion centre (within {SYMPREC_A} A, then made exact):
-   `prescreen.physics.parity.z2_from_parities`, without symmetry reduction on an even
-   mesh, the Fu-Kane product of parity eigenvalues of the occupied Kramers pairs at the
+   `prescreen.physics.parity.z2_from_parities` (a symmetry-reduced ground state on an
+   even mesh, then the states at the four TRIMs without symmetry; Z2 values recorded
+   before 2026-12-02 came from one unreduced run on that mesh: the route changed, not the
+   level of theory), the Fu-Kane product of parity eigenvalues of the occupied Kramers pairs at the
    four time-reversal-invariant momenta (Phys. Rev. B 76, 045302 (2007)). Without one:
    `prescreen.physics.wilson.z2_from_wilson_loops`, the winding of hybrid Wannier charge
    centres from Wilson loops of the SOC states over half the Brillouin zone

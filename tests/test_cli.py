@@ -133,3 +133,26 @@ def test_z2_refuses_a_layer_without_inversion_and_keeps_earlier_rows(tmp_path, c
     assert "not a Z2 results file" in capsys.readouterr().err
     assert main(["z2", str(camp), "nope"]) == 2
     assert "unknown candidate ID" in capsys.readouterr().err
+
+
+def test_sources_that_give_nothing_exit_1_and_rejections_are_not_stored_twice(
+        tmp_path, sources, capsys):
+    camp = tmp_path / "camp"
+    assert main(["create", str(camp), str(tmp_path / "no_such_folder"), "--no-progress"]) == 1
+    assert "no_such_folder" in capsys.readouterr().err
+    (sources / "notes.txt").write_text("not a structure\n")
+    for _ in range(2):  # running `add` again neither fails nor stores the rejection again
+        assert main(["add", str(camp), str(sources), "--no-progress"]) == 0
+    capsys.readouterr()
+    assert main(["status", str(camp), "--json"]) == 0
+    st = json.loads(capsys.readouterr().out)
+    # the missing folder, the unreadable notes and the unknown element Qq2, once each
+    assert st["rejections"] == 3
+
+
+def test_a_file_that_is_not_a_campaign_store_is_a_one_line_error(tmp_path, capsys):
+    (tmp_path / "broken").mkdir()
+    (tmp_path / "broken" / "campaign.sqlite").write_text("garbage")
+    assert main(["status", str(tmp_path / "broken")]) == 2
+    err = capsys.readouterr().err
+    assert err.startswith("error: ") and "not a readable campaign store" in err

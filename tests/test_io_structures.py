@@ -275,6 +275,24 @@ def test_formula_csv_without_id_column_numbers_rows(tmp_path):
     assert [c.id for c in candidates] == ["list-1", "list-2"]
 
 
+def test_formula_csv_ids_from_a_name_column_and_a_missing_named_column_is_refused(tmp_path):
+    path = tmp_path / "named.csv"
+    path.write_text("name,formula\nmy-a,MoS2\nmy-b,WSe2\n")
+    candidates, rejections = _split(iter_candidates(path))
+    assert [c.id for c in candidates] == ["my-a", "my-b"] and rejections == []
+    (rejection,) = list(iter_candidates(path, id_column="nmae"))
+    assert rejection.reason == "no ID column 'nmae' in the header" and rejection.line == 1
+    assert rejection.value == "name, formula"
+
+
+@pytest.mark.parametrize("formula", ["Mo0S2", "MoS0.0"])
+def test_a_zero_amount_in_a_formula_is_refused(tmp_path, formula):
+    path = tmp_path / "zero.csv"
+    path.write_text(f"id,formula\nz1,{formula}\n")
+    (rejection,) = list(iter_candidates(path))
+    assert "is zero" in rejection.reason and rejection.value == formula and rejection.line == 2
+
+
 def test_plain_poscar_files_take_their_folder_name(tmp_path):
     for name in ("MoS2-1H", "hBN-x"):
         (tmp_path / name).mkdir()
@@ -307,3 +325,71 @@ def test_read_poscar_variants_match_pymatgen(variant):
         assert [str(sp) for sp in ours.species] == [str(sp) for sp in ref.species]
         np.testing.assert_allclose(ours.lattice.matrix, ref.lattice.matrix, atol=1e-8)
         np.testing.assert_allclose(ours.frac_coords, ref.frac_coords, atol=1e-8)
+
+
+def test_cif_cut_short_inside_the_atom_sites_is_refused_not_read_as_another_material(tmp_path):
+    # pymatgen's CifParser.check compares the parsed sites with _chemical_formula_sum; a
+    # MoS2 block cut after its Mo row must not land as a one-atom "Mo" layer.
+    lines = (GOOD / "MoS2.cif").read_text().splitlines(keepends=True)
+    last_mo = max(k for k, line in enumerate(lines) if line.split()[:1] == ["Mo"])
+    cut = tmp_path / "cut.cif"
+    cut.write_text("".join(lines[: last_mo + 1]))
+    candidates, (rejection,) = _split(iter_candidates(cut))
+    assert candidates == []
+    assert "disagree with the block's _chemical_formula_sum" in rejection.reason
+    assert "Missing elements S" in rejection.reason and rejection.line == 2
+
+
+def test_files_without_entries_are_reported(tmp_path):
+    (tmp_path / "empty.extxyz").write_text("\n\n")
+    (tmp_path / "list.json").write_text("[]")
+    (tmp_path / "header.csv").write_text("id,formula\n")
+    import ase.db
+
+    ase.db.connect(str(tmp_path / "none.db")).count()  # an ASE database with no rows
+    candidates, rejections = _split(iter_candidates(tmp_path))
+    assert candidates == []
+    reported = {Path(r.path).name: r.reason for r in rejections}
+    assert set(reported) >= {"empty.extxyz", "list.json", "header.csv"}
+    assert all("holds no entries" in reason or "no 'systems' table" in reason
+               for reason in reported.values())
+
+
+def test_overlapping_atoms_are_refused_with_the_pair(tmp_path):
+    from ase import Atoms
+    from ase.io import write
+
+    atoms = Atoms("BN", positions=[[0, 0, 9], [0, 0, 9.1]], cell=[2.5, 2.5, 18], pbc=True)
+    write(tmp_path / "overlap.extxyz", atoms, format="extxyz")
+    candidates, (rejection,) = _split(iter_candidates(tmp_path / "overlap.extxyz"))
+    assert candidates == []
+    assert "atoms 1 (B) and 2 (N) overlap" in rejection.reason
+    assert rejection.value == "0.100 A apart" and rejection.line == 1
+
+
+def test_an_unexpected_entry_shape_is_a_rejection_and_later_files_are_read(tmp_path):
+    entry = Structure(Lattice.hexagonal(2.5, 18), ["B", "N"],
+                      [[1 / 3, 2 / 3, 0.5], [2 / 3, 1 / 3, 0.5]]).as_dict()
+    entry["properties"] = ["not", "a", "dict"]
+    import json
+
+    (tmp_path / "a.json").write_text(json.dumps([entry]))
+    shutil.copy(GOOD / "MoS2.cif", tmp_path / "b.cif")
+    candidates, rejections = _split(iter_candidates(tmp_path))
+    assert [c.id for c in candidates] == ["a-0", "b"]
+    assert rejections == []
+
+
+def test_duplicate_extxyz_frames_are_located_by_line(tmp_path):
+    from ase.io import write
+
+    from ase import Atoms
+
+    frame = Atoms("BN", scaled_positions=[[1 / 3, 2 / 3, 0.5], [2 / 3, 1 / 3, 0.5]],
+                  cell=[[2.5, 0, 0], [-1.25, 2.165, 0], [0, 0, 18]], pbc=True)
+    frame.info["name"] = "xx"
+    write(tmp_path / "dup.extxyz", [frame, frame], format="extxyz")
+    candidates, (rejection,) = _split(iter_candidates(tmp_path / "dup.extxyz"))
+    assert [c.source for c in candidates] == [f"{tmp_path / 'dup.extxyz'}:1"]
+    assert rejection.line == 5  # the second frame starts on line 5 (2 atoms + 2 header lines)
+    assert f"already used by {tmp_path / 'dup.extxyz'}:1" in rejection.reason

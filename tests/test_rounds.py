@@ -136,9 +136,52 @@ def test_same_seed_same_proposal_bit_for_bit(tmp_path):
     pd.testing.assert_frame_equal(run(), run(), check_exact=True)
 
 
+def test_an_empty_campaign_is_a_clear_error_for_rank_and_propose(tmp_path):
+    camp = _new_campaign(tmp_path / "empty")
+    with pytest.raises(CampaignError, match="no candidates yet.*prescreen add"):
+        rounds.rank(camp, progress=False)
+    with pytest.raises(CampaignError, match="no candidates yet"):
+        rounds.propose(camp, budget_core_hours=1.0, progress=False)
+    camp.close()
+
+
 def test_unknown_strategy_names_the_choices():
     with pytest.raises(InputError, match="unknown strategy.*greedy_probability"):
         rounds.strategy_by_name("best_guess")
+    with pytest.raises(InputError, match="schedule of two strategies"):
+        rounds.strategy_by_name("two_phase")
+
+
+def test_random_selection_runs_without_a_diversity_weight_and_refuses_one(trained):
+    camp, _ = trained
+    ranking = rounds.rank(camp, progress=False)
+    budget = _budget(ranking, 0.1)
+    before = camp.status().rounds
+    rnd = rounds.propose(camp, budget_core_hours=budget, strategy="random_selection",
+                         ranking=ranking, progress=False)
+    assert len(rnd.table) and rnd.total_cost <= budget
+    assert json.loads((rnd.folder / "round.json").read_text())["strategy"] == "random_selection"
+    with pytest.raises(InputError, match="takes no diversity weight"):
+        rounds.propose(camp, budget_core_hours=budget, strategy="random_selection",
+                       diversity=0.3, ranking=ranking, progress=False)
+    assert camp.status().rounds == before + 1  # the refusal recorded nothing
+
+
+@pytest.mark.parametrize("bad", [-1.0, float("nan"), 5.0])
+def test_a_diversity_weight_outside_zero_to_one_is_refused(trained, bad):
+    camp, _ = trained
+    with pytest.raises(InputError, match=r"bad diversity.*\[0, 1\]"):
+        rounds.propose(camp, budget_core_hours=1.0, diversity=bad, progress=False)
+
+
+def test_a_budget_below_every_candidate_records_nothing(trained):
+    camp, _ = trained
+    ranking = rounds.rank(camp, progress=False)
+    cheapest = float(ranking["cost_core_hours"].min())
+    before = camp.status().rounds
+    with pytest.raises(InputError, match="below the predicted cost.*cheapest candidate"):
+        rounds.propose(camp, budget_core_hours=cheapest / 10, ranking=ranking, progress=False)
+    assert camp.status().rounds == before
 
 
 def rule_compute(structure, settings, *, id=None):

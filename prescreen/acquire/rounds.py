@@ -17,6 +17,7 @@ writes the campaign store and can be repeated without losing or duplicating work
 from __future__ import annotations
 
 import json
+import math
 import os
 from dataclasses import dataclass
 from pathlib import Path
@@ -524,6 +525,9 @@ def rank(campaign: Campaign, *, progress: bool = True) -> pd.DataFrame:
     """
     from prescreen.acquire.cost import descriptors_for_structure
 
+    if not campaign.candidate_ids():
+        raise CampaignError(f"{campaign.path}: the campaign has no candidates yet; add some "
+                            f"with `prescreen add {campaign.path} <files or folders>`")
     model, version = load_model(campaign)
     feats = _feature_columns(candidate_features(campaign, progress=progress))
     mean, std = model.predict_uncertainty(feats)
@@ -577,10 +581,33 @@ def strategy_by_name(name: str, **options: Any):
 
     from prescreen.acquire import strategies
 
-    if name not in strategies.__all__ or name in ("Proposal", "Strategy", "TwoPhase"):
-        allowed = [n for n in strategies.__all__ if n[0].islower() and n != "two_phase"]
-        raise InputError("unknown strategy", value=name, expected=", ".join(allowed))
+    allowed = [n for n in strategies.__all__ if n[0].islower() and n != "two_phase"]
+    if name not in allowed:
+        why = ("two_phase is a schedule of two strategies over rounds, not one round's "
+               "strategy: pick its explore or exploit strategy for this round"
+               if name == "two_phase" else "unknown strategy")
+        raise InputError(why, value=name, expected=", ".join(allowed))
     return partial(getattr(strategies, name), **options) if options else getattr(strategies, name)
+
+
+#: Diversity weight of :func:`propose` for strategies that take one (chosen here).
+DEFAULT_DIVERSITY = 0.3
+
+
+def _strategy_options(name: str, diversity: float | None) -> dict[str, float]:
+    """``{"diversity": w}`` if strategy ``name`` takes a diversity weight, else ``{}``."""
+    import inspect
+
+    takes = "diversity" in inspect.signature(strategy_by_name(name)).parameters
+    if diversity is None:
+        return {"diversity": DEFAULT_DIVERSITY} if takes else {}
+    if not takes:
+        raise InputError(f"strategy {name} takes no diversity weight", value=diversity,
+                         expected="no diversity option with this strategy")
+    if not 0.0 <= float(diversity) <= 1.0:  # also refuses NaN
+        raise InputError("bad diversity", value=diversity,
+                         expected="a weight in [0, 1], e.g. 0.3 (0 = none)")
+    return {"diversity": float(diversity)}
 
 
 @dataclass(frozen=True)
@@ -603,7 +630,7 @@ def propose(
     *,
     budget_core_hours: float,
     strategy: str = "expected_hits_per_core_hour",
-    diversity: float = 0.3,
+    diversity: float | None = None,
     seed: int = DEFAULT_SEED,
     ranking: pd.DataFrame | None = None,
     progress: bool = True,
@@ -613,15 +640,27 @@ def propose(
     Only candidates with a structure that are monolayers (or ambiguous), not duplicates,
     not labelled and not pending in an earlier round can be picked. The same campaign
     state and seed give the same proposal, bit for bit.
+
+    ``diversity`` (a weight in [0, 1]) goes to strategies that take one; None means
+    :data:`DEFAULT_DIVERSITY` for those and nothing for the others. A value for a
+    strategy without the option (``random_selection``) is refused.
+
+    Raises
+    ------
+    InputError
+        Bad budget, strategy or diversity, or a budget below the cheapest candidate
+        (nothing is recorded then).
     """
     from ase.io import write
     from pymatgen.io.ase import AseAtomsAdaptor
 
     from prescreen.acquire.measures import PoolView
 
-    if not budget_core_hours > 0:
-        raise InputError("budget must be positive", value=budget_core_hours,
-                         expected="core-hours > 0")
+    if not (budget_core_hours > 0 and math.isfinite(budget_core_hours)):
+        raise InputError("bad budget", value=budget_core_hours,
+                         expected="a finite number of core-hours > 0")
+    options = _strategy_options(strategy, diversity)
+    func = strategy_by_name(strategy, **options)
     ranked = rank(campaign, progress=progress) if ranking is None else ranking
     feats = _feature_columns(candidate_features(campaign, progress=progress))
     pending = set(campaign.pending_ids())
@@ -642,9 +681,14 @@ def propose(
         cost_high=pool["cost_high"].to_numpy(float),
         X_labelled=np.nan_to_num(feats.loc[labelled_ids].to_numpy(float)) if len(labelled_ids) else None,
     )
-    options = {"diversity": diversity} if diversity else {}
-    func = strategy_by_name(strategy, **options)
     proposal = func(view, float(budget_core_hours), np.random.default_rng(seed))
+    if not len(proposal.ids):
+        cheapest = pool["cost_core_hours"].idxmin()
+        raise InputError(
+            "the budget is below the predicted cost of every proposable candidate; nothing "
+            "was recorded", value=f"{budget_core_hours:g} core-hours",
+            expected=f"at least {pool.at[cheapest, 'cost_core_hours']:.3g} core-hours (the "
+                     f"cheapest candidate, {cheapest})")
     table = proposal.to_frame().set_index("id")
     after = _stop_rule(pool.drop(index=table.index))
     table["formula"] = pool.loc[table.index, "formula"]
@@ -655,7 +699,7 @@ def propose(
     number = campaign.record_round(
         strategy=proposal.strategy, budget_core_hours=budget_core_hours, seed=seed,
         model_version=version, proposals=rows,
-        settings={"diversity": diversity, "expected_hits": proposal.expected_hits,
+        settings={"diversity": options.get("diversity"), "expected_hits": proposal.expected_hits,
                   "expected_hits_interval": [proposal.expected_hits_low,
                                              proposal.expected_hits_high],
                   "total_cost_core_hours": proposal.total_cost},

@@ -11,7 +11,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("campaign", help="campaign folder")
     parser.add_argument("sources", nargs="+",
                         help="structure files, folders, globs or formula CSVs")
-    parser.add_argument("--id-column", default="id", help="ID column of formula CSVs")
+    parser.add_argument("--id-column", default=None,
+                        help="ID column of formula CSVs (default: 'id', else 'name', else "
+                        "<file stem>-<row>)")
     parser.add_argument("--formula-column", default="formula",
                         help="formula column of formula CSVs")
     parser.add_argument("--no-progress", action="store_true", help="hide progress bars")
@@ -31,7 +33,9 @@ def add_sources(campaign, args: argparse.Namespace) -> int:
     rows.append(("rejected", len(report.rejections)))
     print_table(rows)
     print_rejections(report.rejections, campaign=str(campaign.path))
-    return 0
+    # Exit 1 when sources were given but nothing from them is in the campaign, so that a
+    # script with a mistyped folder stops here rather than at `rank`.
+    return 1 if not (report.added or report.already_present) else 0
 
 
 def run(args: argparse.Namespace) -> int:

@@ -16,7 +16,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--name", help="campaign name (default: the folder name)")
     parser.add_argument("--threshold", type=float, default=SPILLAGE_THRESHOLD,
                         help="spillage counted as a hit (default %(default)s, common practice)")
-    parser.add_argument("--id-column", default="id", help="ID column of formula CSVs")
+    parser.add_argument("--id-column", default=None,
+                        help="ID column of formula CSVs (default: 'id', else 'name', else "
+                        "<file stem>-<row>)")
     parser.add_argument("--formula-column", default="formula",
                         help="formula column of formula CSVs")
     parser.add_argument("--no-progress", action="store_true", help="hide progress bars")
@@ -29,5 +31,5 @@ def run(args: argparse.Namespace) -> int:
     campaign = Campaign.create(args.campaign, name=args.name, threshold=args.threshold)
     print(f"created campaign {campaign.name!r} in {campaign.path}")
     if args.sources:
-        add_sources(campaign, args)
+        return add_sources(campaign, args)
     return 0

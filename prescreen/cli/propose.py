@@ -14,8 +14,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="acquisition strategy (default %(default)s; also "
                         "greedy_probability, upper_confidence_bound, thompson_sampling, "
                         "explore_spread, explore_distance, random_selection)")
-    parser.add_argument("--diversity", type=float, default=0.3,
-                        help="weight of feature-space diversity in [0, 1] (default %(default)s)")
+    parser.add_argument("--diversity", type=float, default=None,
+                        help="weight of feature-space diversity in [0, 1] (default 0.3 for "
+                        "the strategies that take one; random_selection takes none)")
     parser.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
     parser.add_argument("--no-progress", action="store_true", help="hide progress bars")
 
@@ -28,7 +29,7 @@ def run(args: argparse.Namespace) -> int:
         rnd = propose(campaign, budget_core_hours=args.budget, strategy=args.strategy,
                       diversity=args.diversity, seed=args.seed, progress=not args.no_progress)
     low, high = rnd.expected_hits_interval
-    print(f"round {rnd.number}: {len(rnd.table)} candidates, {rnd.total_cost:.2f} of "
+    print(f"round {rnd.number}: {len(rnd.table)} candidates, {rnd.total_cost:.3g} of "
           f"{rnd.budget:g} core-hours ({rnd.strategy})")
     print(f"expected hits {rnd.expected_hits:.2f} (90% interval {low:g}-{high:g})")
     for cid, r in rnd.table.iterrows():

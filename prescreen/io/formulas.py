@@ -9,6 +9,7 @@ physical line number where each record starts (quoted fields may span lines).
 from __future__ import annotations
 
 import csv
+import re
 from collections import deque
 from collections.abc import Iterator
 from pathlib import Path
@@ -202,11 +203,20 @@ def parse_formula(text: str, *, path: str | Path | None = None, line: int | str 
                          expected=expected)
     if len(comp) == 0 or comp.num_atoms <= 0:
         raise InputError("formula has no atoms", path=path, line=line, value=text, expected=expected)
+    # pymatgen drops a zero amount silently ("Mo0S2" becomes S2): refuse it instead.
+    dropped = sorted(set(re.findall(r"[A-Z][a-z]?", text)) - {el.symbol for el in comp})
+    if dropped:
+        raise InputError(f"amount of {', '.join(dropped)} is zero", path=path, line=line,
+                         value=text, expected=expected)
     return comp
 
 
+#: ID columns looked for, in order, when no ID column is named.
+DEFAULT_ID_COLUMNS: tuple[str, ...] = ("id", "name")
+
+
 def iter_formula_csv(
-    path: str | Path, *, id_column: str = "id", formula_column: str = "formula"
+    path: str | Path, *, id_column: str | None = None, formula_column: str = "formula"
 ) -> Iterator[Candidate | Rejection]:
     """Stream composition-only candidates from a CSV of formulas.
 
@@ -216,7 +226,9 @@ def iter_formula_csv(
         CSV file with a header line holding ``formula_column`` and optionally
         ``id_column``; other columns are kept as ``Candidate.meta`` strings.
     id_column, formula_column
-        Header names (matched exactly, else ignoring case).
+        Header names (matched exactly, else ignoring case). Without ``id_column`` the
+        first of :data:`DEFAULT_ID_COLUMNS` present is used; a named ``id_column`` that
+        the header lacks rejects the file.
 
     Yields
     ------
@@ -236,7 +248,15 @@ def iter_formula_csv(
                 continue
             line, fields = item
             if columns is None:
-                id_key = _find_column(fields, id_column)
+                if id_column is None:
+                    id_key = next((k for k in (_find_column(fields, c)
+                                               for c in DEFAULT_ID_COLUMNS) if k), None)
+                else:
+                    id_key = _find_column(fields, id_column)
+                    if id_key is None:
+                        yield Rejection(str(path), 1, ", ".join(fields),
+                                        f"no ID column {id_column!r} in the header")
+                        return
                 formula_key = _find_column(fields, formula_column)
                 if formula_key is None:
                     yield Rejection(str(path), 1, ", ".join(fields),

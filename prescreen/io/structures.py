@@ -66,6 +66,10 @@ FORMAT_BY_SUFFIX: dict[str, str] = {
 #: Smallest accepted cell volume, A^3 (guards against degenerate lattices; common practice).
 MIN_CELL_VOLUME_A3: float = 1e-3
 
+#: Closest accepted distance between two atoms, Angstrom. The shortest bond in nature
+#: (H2) is 0.74 A; anything closer is a broken file (common practice, chosen here).
+MIN_ATOM_DISTANCE_A: float = 0.5
+
 _SQLITE_MAGIC = b"SQLite format 3\x00"
 _GLOB_CHARS = set("*?[")
 
@@ -182,6 +186,15 @@ def _checked(structure: Any, *, path: Path, line: int | str | None) -> Any:
     if not np.all(np.isfinite(structure.frac_coords)):
         raise InputError("atom positions are not finite numbers", path=path, line=line,
                          expected="finite coordinates")
+    if len(structure) > 1:
+        centre, neighbour, _, dist = structure.get_neighbor_list(MIN_ATOM_DISTANCE_A)
+        if len(dist):
+            k = int(np.argmin(dist))
+            i, j = int(centre[k]), int(neighbour[k])
+            raise InputError(
+                f"atoms {i + 1} ({structure[i].specie}) and {j + 1} ({structure[j].specie}) "
+                "overlap", path=path, line=line, value=f"{dist[k]:.3f} A apart",
+                expected=f"atoms at least {MIN_ATOM_DISTANCE_A} A apart (a duplicated site?)")
     return structure
 
 
@@ -237,6 +250,13 @@ def _iter_cif(path: Path) -> Iterator[Candidate | Rejection]:
             if not structures:
                 raise InputError(f"CIF block data_{block} holds no structure", path=path, line=line, value=block,
                                  expected="a CIF block with cell and atom sites")
+            mismatch = parser.check(structures[0])
+            if mismatch and mismatch.startswith(("Missing elements", "Incorrect stoichiometry")):
+                raise InputError(
+                    f"CIF block data_{block}: the atom sites disagree with the block's "
+                    f"_chemical_formula_sum ({' '.join(mismatch.split())}); is the file cut short?",
+                    path=path, line=line, value=structures[0].composition.formula,
+                    expected="atom sites that add up to the stated formula")
             notes = _warning_text(caught)
             ident = f"{path.stem}-{block}" if several else path.stem
             source = f"{path}:{line}" if several else str(path)
@@ -419,7 +439,7 @@ def _extxyz_frame(block: str, path: Path, frame: int, line: int) -> Candidate | 
                              expected="a Lattice=\"...\" with three independent vectors")
         structure = Structure(Lattice(cell), atoms.get_chemical_symbols(), atoms.positions,
                               coords_are_cartesian=True)
-        return _candidate(ident, structure, f"{path}:{frame}", path=path, line=line)
+        return _candidate(ident, structure, f"{path}:{line}", path=path, line=line)
     except InputError as exc:
         return Rejection.from_error(exc)
 
@@ -496,7 +516,8 @@ def _iter_pymatgen_json(path: Path) -> Iterator[Candidate | Rejection]:
                 raise InputError("entry is not a JSON object", path=path, line=where, value=str(entry)[:200],
                                  expected="a pymatgen Structure dict")
             struct_dict = entry.get("structure") if isinstance(entry.get("structure"), dict) else entry
-            props = struct_dict.get("properties") or {}
+            props = struct_dict.get("properties")
+            props = props if isinstance(props, dict) else {}
             raw_id = entry.get("id", entry.get("name", props.get("id", props.get("name"))))
             if raw_id is None:
                 raw_id = f"{path.stem}-{index}" if several else path.stem
@@ -531,7 +552,7 @@ _READERS = {
 def iter_candidates(
     sources: str | Path | Iterable[str | Path],
     *,
-    id_column: str = "id",
+    id_column: str | None = None,
     formula_column: str = "formula",
 ) -> Iterator[Candidate | Rejection]:
     """Stream candidates from structure files, folders, glob patterns and formula CSVs.
@@ -542,7 +563,8 @@ def iter_candidates(
         One source or several: files, folders (read recursively, in sorted order,
         skipping hidden names) or glob patterns (``**`` allowed).
     id_column, formula_column
-        Column names used for formula CSV files.
+        Column names used for formula CSV files (no ``id_column``: ``id``, else
+        ``name``, else row numbers; see :func:`prescreen.io.formulas.iter_formula_csv`).
 
     Yields
     ------
@@ -569,8 +591,10 @@ def iter_candidates(
             entries = iter_formula_csv(path, id_column=id_column, formula_column=formula_column)
         else:
             entries = _READERS[fmt](path)
+        n_entries = 0
         try:
             for entry in entries:
+                n_entries += 1
                 if isinstance(entry, Candidate):
                     first = seen.get(entry.id)
                     if first is not None:
@@ -583,6 +607,16 @@ def iter_candidates(
                     seen[entry.id] = entry.source
                 yield entry
         except InputError as exc:
+            n_entries += 1
             yield Rejection.from_error(exc)
         except OSError as exc:
+            n_entries += 1
             yield Rejection(str(path), None, path.name, f"cannot read file: {exc}")
+        except Exception as exc:  # a reader bug or an input nobody foresaw: keep the other files
+            n_entries += 1
+            yield Rejection(str(path), None, path.name,
+                            f"unexpected error while reading ({type(exc).__name__}: {exc}); "
+                            "entries of this file after the last one read were not read")
+        if not n_entries:
+            yield Rejection(str(path), None, path.name,
+                            f"the file holds no entries (read as {fmt})")

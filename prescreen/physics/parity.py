@@ -16,8 +16,12 @@ PBE, dzp, spin-orbit coupling added non-self-consistently):
    with a lattice vector ``L_a``. The atoms are moved to make the inversion exact and
    wrapped into the cell as GPAW reads them, and the ``L_a`` are taken in that frame
    (checked against GPAW's positions after the calculation).
-2. A ground state without symmetry reduction on an even Gamma-centred mesh, which
-   contains the four TRIMs (0, 0), (1/2, 0), (0, 1/2), (1/2, 1/2).
+2. A ground state with GPAW's symmetry reduction on an even Gamma-centred mesh, which
+   contains the four TRIMs (0, 0), (1/2, 0), (0, 1/2), (1/2, 1/2); the direct gap with
+   SOC is checked over the whole (unfolded) mesh. Then one non-self-consistent run
+   (GPAW's ``fixed_density``, no symmetry) at the four TRIMs gives the states whose
+   parities are counted: symmetry-reduced states may be rotated images of each other,
+   which the inversion matrix below does not allow for.
 3. In GPAW's Bloch sums ``Phi_Mk(r) = sum_R exp(i k.R) phi_M(r - tau_a - R)`` an atomic
    orbital of angular momentum ``l`` has parity ``(-1)^l``, so at a TRIM the inversion
    acts on the LCAO basis as ``D[(P(a), mu), (a, mu)] = (-1)^l exp(2 pi i k.L_a)``. Its
@@ -116,7 +120,8 @@ class ParityZ2:
         states (the invariant belongs to the occupied states; the layer can still be a
         semimetal if bands overlap between different k).
     kmesh
-        The mesh of the calculation (even in-plane).
+        The mesh of the ground state and of the gap check (even in-plane); the parities
+        come from a separate run at the four TRIMs.
     inversion_centre
         ``t / 2`` in fractional coordinates: the point the inversion fixes. The
         individual ``delta`` depend on which centre is chosen; the product does not.
@@ -304,31 +309,36 @@ def z2_from_parities(structure: "Structure | Atoms", settings: LabelSettings = L
     except ImportError as exc:
         raise LabellingError(f"{name}: GPAW is not importable; install it with "
                              "`bash scripts/install_gpaw.sh .venv` (or `make dft-env`)") from exc
+    trims = np.array(TRIMS, dtype=float)
     with _run_in(workdir) as folder, _one_thread():
         try:
-            calc = _gpaw_calculator(settings, kmesh, folder / "gpaw-parity.txt", False,
-                                    symmetry="off")
+            calc = _gpaw_calculator(settings, kmesh, folder / "gpaw-parity.txt", False)
             atoms.calc = calc
             atoms.get_potential_energy()
-            soc = soc_eigenstates(calc, scale=settings.soc_scale)
-            v_kmn = soc.eigenvectors()  # [k, SOC state m, basis 2 j + s]
-            e_soc = soc.eigenvalues()
-            kpts = np.asarray(calc.get_bz_k_points(), dtype=float)
             n_occ = int(round(calc.get_number_of_electrons()))
+            # The gap over the whole mesh, SOC states unfolded from the reduced zone.
+            e_mesh = soc_eigenstates(calc, scale=settings.soc_scale).eigenvalues()
+            nscf = calc.fixed_density(kpts=trims, symmetry="off",
+                                      txt=str(folder / "gpaw-parity-trims.txt"))
+            soc = soc_eigenstates(nscf, scale=settings.soc_scale)
+            v_kmn = soc.eigenvectors()  # [k, SOC state m, basis 2 j + s]
+            e_trim = soc.eigenvalues()
+            kpts = np.asarray(nscf.get_bz_k_points(), dtype=float)
             wfs_by_k = {int(w.k): (w.C_nM.data.copy(), w.S_MM.data.copy())
-                        for w in calc.dft.ibzwfs}
-            layout = _basis_layout(calc.dft.setups)
-            relpos = np.asarray(calc.dft.relpos_ac, dtype=float)
+                        for w in nscf.dft.ibzwfs}
+            layout = _basis_layout(nscf.dft.setups)
+            relpos = np.asarray(nscf.dft.relpos_ac, dtype=float)
         except Exception as exc:  # GPAW raises many types; keep the cause
             raise LabellingError(f"{name}: GPAW calculation failed: "
                                  f"{type(exc).__name__}: {exc}") from exc
     if not np.allclose(relpos, atoms.get_scaled_positions(), atol=1e-10):
         raise LabellingError(f"{name}: GPAW placed the atoms elsewhere than the inversion map "
                              "assumed; no invariant is given")
-    if len(wfs_by_k) != len(kpts):
-        raise LabellingError(f"{name}: expected the whole mesh without symmetry reduction, "
-                             f"got {len(wfs_by_k)} of {len(kpts)} k points")
-    gap = float(np.min(e_soc[:, n_occ] - e_soc[:, n_occ - 1]))
+    if kpts.shape != trims.shape or len(wfs_by_k) != len(trims):
+        raise LabellingError(f"{name}: expected the four TRIMs without symmetry reduction, "
+                             f"got {len(wfs_by_k)} states at {kpts.shape[0]} k points")
+    gap = float(min(np.min(e_mesh[:, n_occ] - e_mesh[:, n_occ - 1]),
+                    np.min(e_trim[:, n_occ] - e_trim[:, n_occ - 1])))
     if gap < METAL_GAP_EV:
         raise LabellingError(f"{name}: no direct gap with spin-orbit coupling at some k "
                              f"(smallest {gap:.3f} eV < {METAL_GAP_EV} eV): the occupied "
@@ -338,7 +348,8 @@ def z2_from_parities(structure: "Structure | Atoms", settings: LabelSettings = L
         offset = np.abs(((kpts - np.asarray(trim)) + 0.5) % 1.0 - 0.5).sum(axis=1)
         k = int(np.argmin(offset))
         if offset[k] > 1e-8:
-            raise LabellingError(f"{name}: the mesh {kmesh} does not contain the TRIM {trim}")
+            raise LabellingError(f"{name}: GPAW did not return the TRIM {trim} (got k points "
+                                 f"{kpts.tolist()})")
         C, S = wfs_by_k[k]
         D = _inversion_in_basis(layout, partner, shift, np.asarray(trim))
         P = C.conj() @ S @ D @ C.T  # inversion in the states without SOC
@@ -356,7 +367,8 @@ def z2_from_parities(structure: "Structure | Atoms", settings: LabelSettings = L
         minus.append(n_minus)
     z2 = 0 if int(np.prod(deltas)) == 1 else 1
     sdict = settings.as_dict()
-    sdict.update(kmesh=list(kmesh), mode="lcao", nbands="nao", symmetry="off")
+    sdict.update(kmesh=list(kmesh), mode="lcao", nbands="nao",
+                 symmetry="ground state reduced; TRIM states unreduced")
     return ParityZ2(id=id, formula=formula, z2=z2, delta=tuple(deltas), n_minus=tuple(minus),
                     parity_error=worst, direct_gap_soc_eV=gap, kmesh=kmesh,
                     inversion_centre=_centre(inversion.t),
