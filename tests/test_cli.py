@@ -156,3 +156,20 @@ def test_a_file_that_is_not_a_campaign_store_is_a_one_line_error(tmp_path, capsy
     assert main(["status", str(tmp_path / "broken")]) == 2
     err = capsys.readouterr().err
     assert err.startswith("error: ") and "not a readable campaign store" in err
+
+
+def test_ingest_repeats_option_and_a_file_without_rows(tmp_path, sources, capsys):
+    camp = tmp_path / "camp"
+    assert main(["create", str(camp), str(sources), "--no-progress"]) == 0
+    twice = tmp_path / "twice.csv"
+    twice.write_text("id,spillage\nmos2,0.1\nmos2,0.2\n")
+    assert main(["ingest", str(camp), str(twice)]) == 1  # both rows refused: nothing landed
+    assert "--repeats first or --repeats last" in capsys.readouterr().err
+    assert main(["ingest", str(camp), str(twice), "--repeats", "last"]) == 0
+    capsys.readouterr()
+    assert main(["status", str(camp), "--json"]) == 0
+    assert json.loads(capsys.readouterr().out)["labelled"] == 1
+    empty = tmp_path / "empty.csv"
+    empty.write_text("id,spillage\n")
+    assert main(["ingest", str(camp), str(empty)]) == 1
+    assert "holds no result rows" in capsys.readouterr().err

@@ -147,8 +147,33 @@ def test_json_top_level_must_be_list(tmp_path):
 
 def test_gap_column_is_read_and_checked(tmp_path):
     path = tmp_path / "gaps.csv"
-    path.write_text("id,spillage,gap_soc_eV\nA,0.7,0.0\nB,0.6,0.12\nC,0.1,-1\nD,0.2,\n")
+    path.write_text("id,spillage,gap_soc_eV\nA,0.7,0.0\nB,0.6,0.12\nC,0.1,-1\nD,0.2,\n"
+                    "E,0.3,150\n")
     rows, rejections = read_results(path)
     assert [(r.id, r.gap_soc_eV) for r in rows] == [("A", 0.0), ("B", 0.12), ("D", None)]
-    (bad,) = rejections
+    bad, in_mev = rejections
     assert bad.line == 4 and bad.value == "-1" and "gap_soc_eV is negative" in bad.reason
+    # 150 "eV" is no solid's gap (LiF's, among the widest, is about 14 eV; from memory)
+    assert in_mev.line == 6 and in_mev.value == "150" and "meV" in in_mev.reason
+
+
+@pytest.mark.parametrize(("content", "message", "value"), [
+    ("id,spill\n", "no 'spillage' column", "id,spill"),  # refused even without rows
+    ("id\tspillage\nMoS2\t0.1\n", "no 'id' column; the header is one field", "id\tspillage"),
+    ("id;spillage\nMoS2;0,1\n", "separated by commas", "id;spillage"),
+])
+def test_a_header_without_the_needed_columns_is_shown_as_read(tmp_path, content, message, value):
+    path = tmp_path / "r.csv"
+    path.write_text(content)
+    with pytest.raises(InputError, match=message) as info:
+        read_results(path)
+    assert info.value.value == value and info.value.line == 1
+
+
+def test_pandas_index_column_is_not_a_rejection(tmp_path):
+    import pandas as pd
+
+    path = tmp_path / "r.csv"
+    pd.DataFrame({"id": ["MoS2", "WTe2"], "spillage": [0.1, 0.9]}).to_csv(path)
+    rows, rejections = read_results(path)
+    assert [r.id for r in rows] == ["MoS2", "WTe2"] and rejections == []

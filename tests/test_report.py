@@ -167,10 +167,11 @@ def collected(built):
     return collect(built["campaign"], use_open=False)
 
 
-def test_random_baseline_is_pool_rate_times_picks(collected):
+def test_random_baseline_spends_the_same_core_hours(collected):
     data = collected
     r = data.round
-    assert r.random_expected_hits == pytest.approx(r.pool_base_rate * r.n_picks)
+    assert r.random_expected_hits == pytest.approx(r.random_hits_per_core_hour
+                                                   * r.total_cost_core_hours)
     # every pick is in the pool, the pool holds no labelled candidate
     assert r.pool_size >= r.n_picks
     assert r.pool_size <= data.status.candidates - data.status.labelled
@@ -345,3 +346,20 @@ def test_invariants_written_by_z2_are_shown_with_the_spillage(built, collected, 
     imgs = {a["id"]: a for t, a in doc.tags if t == "img" and "id" in a}
     assert imgs["fig-z2-flow-loops"]["src"].startswith("data:image/png;base64,")
     assert not any(i.startswith("fig-z2-flow-") and i != "fig-z2-flow-loops" for i in imgs)
+
+
+def test_a_hit_is_what_the_rounds_model_was_trained_on(built, tmp_path):
+    # A campaign whose threshold changed after training: the probabilities are still
+    # P(spillage >= the model's threshold), so the report must say so and validate that.
+    import sqlite3
+
+    shutil.copytree(built["campaign"].path, tmp_path / "copy")
+    with sqlite3.connect(tmp_path / "copy" / "campaign.sqlite") as conn:
+        conn.execute("UPDATE meta SET value='0.3' WHERE key='threshold'")
+    with Campaign.open(tmp_path / "copy") as camp:
+        data = collect(camp, use_open=False)
+        labels = camp.labels()
+    assert data.positive_rule == "spillage >= 0.5"
+    assert any("threshold is 0.3" in note for note in data.notes)
+    assert data.labelled_base_rate == pytest.approx(float((labels["spillage"] >= 0.5).mean()))
+    assert data.validation.y.sum() == int((labels["spillage"] >= 0.5).sum())

@@ -96,6 +96,14 @@ def test_rank_scores_every_candidate_once(trained):
     assert np.isnan(table.loc["f-only", "cost_core_hours"])
     assert "no structure" in table.loc["f-only", "flags"]
     assert table.attrs["positive_rule"] == f"spillage >= {camp.threshold:g}"  # no gap required
+    # Labelled rows say so, with their value; the model's own grouped CV comes along.
+    labels = camp.labels()["spillage"]
+    for cid, value in labels.items():
+        assert f"labelled: spillage {value:.3g}" in table.loc[cid, "flags"]
+    assert not table.drop(index=labels.index)["flags"].str.contains("labelled").any()
+    record = camp.model_record(table["model"].iloc[0])
+    assert table.attrs["cv_roc_auc"] == record["metrics"]["roc_auc"]
+    assert table.attrs["cv_rows"] == pytest.approx(len(labels))
 
 
 def test_propose_respects_budget_exclusions_and_seed(trained, tmp_path):
@@ -315,6 +323,8 @@ def test_requiring_a_gap_without_gaps_names_the_rows(trained):
     with pytest.raises(InputError, match=rf"{missing} labelled rows have no gap_soc_eV") as err:
         rounds.training_table(camp, use_open=False, min_gap_eV=0.02, progress=False)
     assert "rule.csv:" in str(err.value)  # names the results file and line
+    gapless = camp.labels().index[camp.labels()["gap_soc_eV"].isna()]
+    assert all(f"({cid})" in str(err.value) for cid in gapless)  # every one, not the first few
 
 
 def test_a_gap_requirement_turns_gapless_high_spillage_negative(tmp_path, capsys):

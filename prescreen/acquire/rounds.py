@@ -246,9 +246,10 @@ def training_table(
         missing = ~np.isfinite(gap)
         if missing.any():
             rows = [w for w, m in zip(where, missing) if m]
+            shown = "; ".join(rows[:50]) + (f"; and {len(rows) - 50} more" if len(rows) > 50 else "")
             raise InputError(
                 f"{len(rows)} labelled rows have no gap_soc_eV, needed to require a "
-                f"gap of {min_gap_eV:g} eV", value="; ".join(rows[:5]) + (" ..." if len(rows) > 5 else ""),
+                f"gap of {min_gap_eV:g} eV: {shown}", value=len(rows),
                 expected="a gap_soc_eV for every result (ingest the results again with that "
                 "column: the gap completes the stored result), or no gap requirement")
         y &= gap >= min_gap_eV
@@ -559,11 +560,38 @@ def rank(campaign: Campaign, *, progress: bool = True) -> pd.DataFrame:
     out.insert(0, "rank", np.arange(1, len(out) + 1))
     out.attrs["positive_rule"] = positive_rule(getattr(model, "threshold_", campaign.threshold),
                                                getattr(model, "min_gap_eV_", None))
+    out.attrs.update(model_check(campaign, version))
     return out
+
+
+#: Grouped-CV ROC-AUC below which `rank` warns that the ranking is close to random
+#: (chosen here; 0.5 is random, and these folds are small).
+WEAK_MODEL_ROC_AUC = 0.65
+
+
+def model_check(campaign: Campaign, version: str) -> dict[str, float]:
+    """Grouped-CV ``cv_roc_auc`` (mean over folds) and ``cv_rows`` of model ``version``.
+
+    From the campaign's model record, or from the shipped default model's metadata; an
+    empty dict when neither records them.
+    """
+    if version == "default":
+        meta = DEFAULT_MODEL_DIR / "metadata.json"
+        metrics = json.loads(meta.read_text()).get("metrics") or {} if meta.is_file() else {}
+    else:
+        record = campaign.model_record(version)
+        metrics = (record or {}).get("metrics") or {}
+    try:
+        return {"cv_roc_auc": float(metrics["roc_auc"]),
+                "cv_rows": float(metrics["n_train"]) + float(metrics["n"])}
+    except (KeyError, TypeError, ValueError):
+        return {}
 
 
 def _flags(row: Any) -> str:
     flags = []
+    if row.spillage == row.spillage:  # labelled: the known value beats any probability
+        flags.append(f"labelled: spillage {row.spillage:.3g}")
     if row.layer_status not in ("monolayer", "formula_only"):
         flags.append(row.layer_status.replace("_", " "))
     if row.layer_status == "formula_only":

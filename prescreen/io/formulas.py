@@ -11,7 +11,7 @@ from __future__ import annotations
 import csv
 import re
 from collections import deque
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from pathlib import Path
 
 from prescreen.candidate import Candidate
@@ -60,13 +60,18 @@ def read_utf8_text(path: str | Path, *, expected: str = "a UTF-8 text file") -> 
         ) from exc
 
 
-def iter_csv_records(path: str | Path) -> Iterator[CsvRecord | Rejection]:
+def iter_csv_records(path: str | Path, *,
+                     on_header: Callable[[list[str], int], None] | None = None,
+                     ) -> Iterator[CsvRecord | Rejection]:
     """Stream the records of a CSV file with a header line.
 
     Parameters
     ----------
     path
         The CSV file (UTF-8, optionally with a byte-order mark).
+    on_header
+        Called with the header's names and its line as soon as the header is read,
+        before any record (it may raise :class:`InputError` to refuse the file).
 
     Yields
     ------
@@ -136,6 +141,8 @@ def iter_csv_records(path: str | Path) -> Iterator[CsvRecord | Rejection]:
                     "header repeats column names", path=path, line=start, value=", ".join(repeated),
                     expected="each column name once",
                 )
+            if on_header is not None:
+                on_header(header, start)
             yield from _drain(pending)
             continue
         yield from _drain(pending)

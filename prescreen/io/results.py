@@ -106,6 +106,11 @@ def _number(raw: Any, name: str, *, path: Path, line: int | str, required: bool)
     return value
 
 
+#: Largest band gap accepted, eV: the widest gaps of real solids (LiF, about 14 eV; from
+#: memory) stay below it, while a gap given in meV by mistake lands far above.
+MAX_GAP_EV: float = 20.0
+
+
 def _text(raw: Any) -> str | None:
     if raw is None:
         return None
@@ -118,6 +123,10 @@ def _row(fields: dict[str, Any], *, path: Path, line: int | str, source: str) ->
     spillage = _number(fields.get("spillage"), "spillage", path=path, line=line, required=True)
     core_hours = _number(fields.get("core_hours"), "core_hours", path=path, line=line, required=False)
     gap = _number(fields.get("gap_soc_eV"), "gap_soc_eV", path=path, line=line, required=False)
+    if gap is not None and gap > MAX_GAP_EV:
+        raise InputError(f"gap_soc_eV above {MAX_GAP_EV:g} eV", path=path, line=line,
+                         value=str(fields.get("gap_soc_eV")),
+                         expected="a band gap in eV (was it given in meV?)")
     kmesh = _text(fields.get("kmesh"))
     if kmesh is not None:
         match = _KMESH.fullmatch(kmesh)
@@ -148,25 +157,38 @@ def _canonical_names(names: Iterable[str], *, path: Path, line: int | str) -> tu
 
 
 def _iter_csv(path: Path) -> Iterable[tuple[int | str, str, dict[str, Any]] | Rejection]:
-    mapping: dict[str, str] | None = None
-    for item in iter_csv_records(path):
+    found: dict[str, Any] = {}
+
+    def check(header: list[str], line: int) -> None:
+        mapping, unknown = _canonical_names(header, path=path, line=line)
+        _require(mapping, path, header, line)
+        found.update(mapping=mapping, unknown=unknown, line=line)
+
+    for item in iter_csv_records(path, on_header=check):
+        if "unknown" in found:
+            for name in found.pop("unknown"):
+                if name == "":  # pandas' unnamed index column: nothing in it is a result
+                    continue
+                yield Rejection(str(path), found["line"], name,
+                                "column is not used; known columns are " + ", ".join(RESULT_COLUMNS))
         if isinstance(item, Rejection):
             yield item
             continue
         line, fields = item
-        if mapping is None:
-            mapping, unknown = _canonical_names(fields, path=path, line=1)
-            _require(mapping, path)
-            for name in unknown:
-                yield Rejection(str(path), 1, name, "column is not used; known columns are " + ", ".join(RESULT_COLUMNS))
+        mapping = found["mapping"]
         yield line, f"{path}:{line}", {mapping[k]: v for k, v in fields.items() if k in mapping}
 
 
-def _require(mapping: dict[str, str], path: Path) -> None:
+def _require(mapping: dict[str, str], path: Path, header: list[str], line: int) -> None:
     for needed in ("id", "spillage"):
         if needed not in mapping.values():
-            raise InputError(f"no {needed!r} column", path=path, line=1, value=", ".join(mapping) or "",
-                             expected="columns id and spillage (optional: " + ", ".join(RESULT_COLUMNS[2:]) + ")")
+            hint = ""
+            if len(header) == 1 and any(ch in header[0] for ch in "\t;"):
+                hint = "; the header is one field: is the file separated by commas?"
+            raise InputError(f"no {needed!r} column{hint}", path=path, line=line,
+                             value=",".join(header),
+                             expected="columns id and spillage (optional: "
+                                      + ", ".join(RESULT_COLUMNS[2:]) + ")")
 
 
 def _iter_json(path: Path) -> Iterable[tuple[int | str, str, dict[str, Any]] | Rejection]:
@@ -266,8 +288,9 @@ def read_results(
                 continue
             where = r.source.rsplit(":", 1)[-1]
             reason = (f"id {ident!r} appears {len(group)} times with different values ({listing}); "
-                      + ("choose a conflict policy (first or last) or fix the file" if keep is None
-                         else f"kept the {on_conflict} one"))
+                      + ("keep one row per id in the file, or choose which one counts "
+                         "(on the command line: --repeats first or --repeats last)"
+                         if keep is None else f"kept the {on_conflict} one"))
             rejections.append(Rejection(str(path), _line(where), f"{r.spillage:g}", reason))
     rows.sort(key=lambda r: _order_key(r.source))
     return rows, rejections

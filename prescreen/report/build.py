@@ -180,7 +180,9 @@ class RoundSummary:
     pool_base_rate : float
         Mean calibrated probability over the pool: the expected hit rate of a random pick.
     random_expected_hits : float
-        ``pool_base_rate * n_picks``.
+        Expected hits of random picks for the batch's predicted cost:
+        ``random_hits_per_core_hour * total_cost_core_hours`` (the same spend, not the
+        same number of picks: random picks cost what the pool costs on average).
     hits_per_core_hour, random_hits_per_core_hour : float
         Expected hits over predicted core-hours, for the batch and for random picks
         (sum of p over sum of cost, over the pool).
@@ -368,12 +370,13 @@ def round_model_settings(campaign: Campaign, round_number: int | None = None) ->
 def _validation(campaign: Campaign, model: Any, model_dir: Path | None,
                 use_open: bool, progress: bool, *,
                 settings: dict[str, Any] | None = None,
-                training_rows: int | None = None) -> tuple[ValidationData | None, list[str]]:
+                training_rows: int | None = None,
+                threshold: float | None = None) -> tuple[ValidationData | None, list[str]]:
     """Grouped out-of-fold validation of the model's recipe on today's labelled data.
 
     The table is rebuilt the way training built it, from ``settings`` (the model's
-    recorded ``campaign_weight``, ``campaign_filter`` and ``min_gap_eV``) and
-    ``use_open``, but with the labels as they are now: when ``training_rows`` (the
+    recorded ``campaign_weight``, ``campaign_filter`` and ``min_gap_eV``), ``use_open``
+    and the model's spillage ``threshold``, but with the labels as they are now: when ``training_rows`` (the
     model's recorded count) differs, the stored per-fold table describes the smaller
     training set, and a note says so. Returns the validation (None when it cannot be
     made) and the notes.
@@ -385,7 +388,7 @@ def _validation(campaign: Campaign, model: Any, model_dir: Path | None,
     settings = settings or {}
     notes: list[str] = []
     try:
-        table = training_table(campaign, use_open=use_open,
+        table = training_table(campaign, use_open=use_open, threshold=threshold,
                                campaign_weight=float(settings.get("campaign_weight", 1.0)),
                                campaign_filter=settings.get("campaign_filter") or None,
                                min_gap_eV=settings.get("min_gap_eV"), progress=progress)
@@ -566,6 +569,14 @@ def collect(
                      "cost model (the round did not record them)")
     base_rate = float(at_proposal["base_rate"])
     total = float(rec["total_cost_core_hours"])
+    random_rate = float(at_proposal["random_hits_per_core_hour"])
+    # What a hit is comes from the model the round used, not from today's campaign setting.
+    threshold = float(getattr(model, "threshold_", None) or campaign.threshold)
+    if threshold != campaign.threshold:
+        notes.append(f"the round's model counts a hit at spillage >= {threshold:g} while the "
+                     f"campaign's threshold is {campaign.threshold:g}; its probabilities and "
+                     "this report's validation use the model's threshold (retrain with "
+                     "`prescreen train` to use the campaign's)")
     summary = RoundSummary(
         number=number, strategy=str(rec["strategy"]), seed=rec.get("seed"),
         model=str(rec.get("model", "")), budget_core_hours=float(rec["budget_core_hours"]),
@@ -575,9 +586,9 @@ def collect(
         interval_level=float(rec.get("interval_level", float("nan"))),
         interval_method=str(rec.get("interval_method", "")),
         n_picks=len(ids), pool_size=int(at_proposal["size"]), pool_base_rate=base_rate,
-        random_expected_hits=base_rate * len(ids),
+        random_expected_hits=random_rate * total,
         hits_per_core_hour=float(rec["expected_hits"]) / total if total > 0 else float("nan"),
-        random_hits_per_core_hour=float(at_proposal["random_hits_per_core_hour"]),
+        random_hits_per_core_hour=random_rate,
         after=rec.get("after_this_round"),
     )
     settings = _model_settings(campaign, summary.model)
@@ -590,7 +601,8 @@ def collect(
         validation, more = _validation(campaign, model, model_dir, used_open, progress,
                                        settings=settings,
                                        training_rows=None if record is None
-                                       else int(record["training_rows"]))
+                                       else int(record["training_rows"]),
+                                       threshold=threshold)
         notes.extend(more)
     status = campaign.status()
     labels = campaign.labels()
@@ -604,14 +616,14 @@ def collect(
         campaign_name=campaign.name, campaign_path=str(campaign.path),
         generated_at=_dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
         prescreen_version=__version__, status=status, threshold=campaign.threshold,
-        labelled_base_rate=_labelled_hit_fraction(labels, campaign.threshold,
+        labelled_base_rate=_labelled_hit_fraction(labels, threshold,
                                                   getattr(model, "min_gap_eV_", None)),
         round=summary, proposals=tuple(rows), explanation=explanation,
         global_explanation=global_explanation, validation=validation,
         spent_core_hours=float(np.sum(costs)) if len(costs) else 0.0,
         n_costed_results=int(len(costs)), cost_model=cost_model,
         provenance=_provenance(campaign, used_open), replay=replay_curves, notes=tuple(notes),
-        positive_rule=positive_rule(campaign.threshold, getattr(model, "min_gap_eV_", None)),
+        positive_rule=positive_rule(threshold, getattr(model, "min_gap_eV_", None)),
         invariants=_invariants(campaign, labels),
     )
 

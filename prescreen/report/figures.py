@@ -164,7 +164,7 @@ def expected_hits_figure(summary: RoundSummary, hit: str = "spillage ≥ thresho
     with mpl.rc_context(_STYLE):
         fig, (left, right) = _figure(3.4, ncols=2)
         colours = [OKABE_ITO["blue"], "0.6"]
-        names = ["this batch", "random picks\n(same number)"]
+        names = ["this batch", "random picks\n(same core-hours)"]
         left.bar(names, [summary.expected_hits, summary.random_expected_hits], color=colours)
         left.errorbar([0], [summary.expected_hits],
                       yerr=[[summary.expected_hits - lo], [hi - summary.expected_hits]],

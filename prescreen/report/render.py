@@ -67,8 +67,8 @@ def figures(data: ReportData) -> dict[str, Any]:
     out: dict[str, Any] = {"summary": [
         ("fig-expected-hits", "Expected hits against random selection",
          "Left: expected number of hits in the batch (bar) with its interval, and random picks "
-         "of the same number from the same pool (pool mean probability times picks). Right: "
-         "expected hits per predicted core-hour.", png(F.expected_hits_figure(data.round, data.positive_rule or "spillage ≥ threshold")))]}
+         "from the same pool for the same predicted core-hours (the pool's expected hits per "
+         "core-hour times the batch's cost). Right: expected hits per predicted core-hour.", png(F.expected_hits_figure(data.round, data.positive_rule or "spillage ≥ threshold")))]}
     out["shap"] = [
         ("fig-shap-bar", "Which features matter (mean |SHAP|)",
          f"Mean absolute SHAP value over {len(ge.row_ids)} pool candidates. " + PROBABILITY_NOTE,
