@@ -265,9 +265,9 @@ class Campaign:
             raise CampaignError(f"{path}: a campaign already exists here")
         if path.exists() and not path.is_dir():
             raise CampaignError(f"{path}: exists and is not a folder")
-        if not (threshold > 0):
-            raise InputError("spillage threshold must be positive", value=threshold,
-                             expected="a number > 0 (0.5 by common practice)")
+        if not (0 < threshold < float("inf")):
+            raise InputError("spillage threshold must be a positive number", value=threshold,
+                             expected="a finite number > 0 (0.5 by common practice)")
         path.mkdir(parents=True, exist_ok=True)
         conn = cls._connect(db)
         with conn:

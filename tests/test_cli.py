@@ -173,3 +173,24 @@ def test_ingest_repeats_option_and_a_file_without_rows(tmp_path, sources, capsys
     empty.write_text("id,spillage\n")
     assert main(["ingest", str(camp), str(empty)]) == 1
     assert "holds no result rows" in capsys.readouterr().err
+
+
+def test_status_flagged_names_each_odd_candidate(tmp_path, sources, capsys):
+    from ase.build import bulk
+
+    write(sources / "nacl.cif", bulk("NaCl", "rocksalt", a=5.64))  # a bulk crystal slipped in
+    camp = tmp_path / "camp"
+    assert main(["create", str(camp), str(sources), "--no-progress"]) == 0
+    capsys.readouterr()
+    assert main(["status", str(camp), "--flagged"]) == 0
+    out = capsys.readouterr().out
+    listed = [line.split()[0] for line in out.splitlines() if line.startswith("  ")
+              and ": " in line and line.split()[0] in ("nacl", "w1", "mos2", "hbn")]
+    assert sorted(listed) == ["nacl", "w1"]  # bulk, formula only; the monolayers are not listed
+    assert "not 2d" in out and "formula only" in out
+
+
+@pytest.mark.parametrize("value", ["inf", "nan", "0"])
+def test_a_threshold_that_nothing_can_reach_is_refused(tmp_path, capsys, value):
+    assert main(["create", str(tmp_path / "c"), "--threshold", value]) == 2
+    assert "spillage threshold must be a positive number" in capsys.readouterr().err

@@ -200,7 +200,8 @@ def training_table(
     from prescreen import SPILLAGE_THRESHOLD
 
     if not campaign_weight > 0:
-        raise InputError("campaign_weight must be positive", value=campaign_weight,
+        raise InputError("the campaign weight (--campaign-weight) must be positive",
+                         value=campaign_weight,
                          expected="a number > 0")
     if min_gap_eV is not None and not (np.isfinite(min_gap_eV) and min_gap_eV >= 0):
         raise InputError("min_gap_eV must be a finite number >= 0", value=min_gap_eV,

@@ -60,6 +60,23 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+def _plain_warnings() -> None:
+    """Show prescreen's own warnings as one ``warning: ...`` line, without source lines."""
+    import warnings
+
+    from prescreen.errors import PrescreenWarning
+
+    shown = warnings.showwarning
+
+    def show(message, category, filename, lineno, file=None, line=None):
+        if issubclass(category, PrescreenWarning):
+            print(f"warning: {message}", file=sys.stderr)
+        else:
+            shown(message, category, filename, lineno, file, line)
+
+    warnings.showwarning = show
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Run the command line; returns the exit status (0 ok, 2 user error)."""
     argv = list(sys.argv[1:] if argv is None else argv)
@@ -77,6 +94,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         return 0
     from prescreen.errors import PrescreenError
 
+    _plain_warnings()
     try:
         return int(module.run(args) or 0)
     except (PrescreenError, FileNotFoundError, PermissionError, IsADirectoryError) as exc:

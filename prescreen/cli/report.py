@@ -19,6 +19,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--replay", action="store_true",
                         help="add discovery curves from a retrospective replay on the "
                         "labelled data (minutes; needs >= 100 labelled rows)")
+    parser.add_argument("--no-progress", action="store_true", help="hide progress bars")
 
 
 def run(args: argparse.Namespace) -> int:
@@ -26,12 +27,22 @@ def run(args: argparse.Namespace) -> int:
     from prescreen.errors import CampaignError
     from prescreen.report import build_report, write_pdf
 
+    progress = not args.no_progress
     with Campaign.open(args.campaign) as campaign:
-        number = args.round_number or campaign.status().rounds
-        if not number:
+        latest = campaign.status().rounds
+        if not latest:
             raise CampaignError(f"{campaign.path}: no round proposed yet; run "
                                 "`prescreen propose` first")
-        out = args.out or campaign.path / f"report-round-{number:03d}.html"
+        number = latest if args.round_number is None else args.round_number
+        if not 1 <= number <= latest:
+            from prescreen.errors import InputError
+
+            raise InputError("no such round", value=number,
+                             expected=f"a round number from 1 to {latest}")
+        name = f"report-round-{number:03d}.html"
+        out = args.out or campaign.path / name
+        if out.is_dir():  # a folder: the report goes inside it
+            out = out / name
         curves = None
         if args.replay:
             from prescreen.acquire.rounds import replay_labelled
@@ -41,15 +52,25 @@ def run(args: argparse.Namespace) -> int:
             # replayed with the training data and hit rule of the round's model
             settings = round_model_settings(campaign, number)
             try:
-                curves = replay_labelled(campaign, use_open=bool(settings.get("use_open", True)),
-                                         min_gap_eV=settings.get("min_gap_eV"))
+                use_open = bool(settings.get("use_open", True))
+                curves = replay_labelled(campaign, use_open=use_open,
+                                         min_gap_eV=settings.get("min_gap_eV"),
+                                         progress=progress)
             except (CampaignError, InputError) as exc:
                 print(f"replay skipped: {exc}")
             else:
                 if curves is None:
-                    print("replay skipped: too few labelled rows or positives")
+                    from prescreen.acquire.rounds import (MIN_REPLAY_POSITIVES,
+                                                          MIN_REPLAY_ROWS, training_table)
+
+                    table = training_table(campaign, use_open=use_open,
+                                           min_gap_eV=settings.get("min_gap_eV"),
+                                           progress=False)
+                    print(f"replay skipped: {len(table)} labelled rows with "
+                          f"{int(table.y.sum())} positives; a replay needs at least "
+                          f"{MIN_REPLAY_ROWS} rows and {MIN_REPLAY_POSITIVES} positives")
         path = build_report(campaign, out_path=out, round_number=number,
-                            replay_curves=curves)
+                            replay_curves=curves, progress=progress)
     print(f"report written to {path}")
     if args.pdf:
         pdf = write_pdf(path)

@@ -11,6 +11,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("campaign", help="campaign folder")
     parser.add_argument("--rejections", action="store_true",
                         help="list every rejected entry with its file, line and reason")
+    parser.add_argument("--flagged", action="store_true",
+                        help="list every candidate that is not a plain monolayer (not 2D, "
+                        "ambiguous, formula only), a duplicate, or hazard-flagged, with why")
     parser.add_argument("--json", action="store_true", help="print the counts as JSON")
 
 
@@ -45,4 +48,18 @@ def run(args: argparse.Namespace) -> int:
         if args.rejections:
             for rej in campaign.rejections():
                 print(f"  {rej}")
+        if args.flagged:
+            frame = campaign.candidates_frame()
+            odd = ((frame["layer_status"] != "monolayer") | frame["duplicate_of"].notna()
+                   | (frame["hazard"].fillna("") != ""))
+            print(f"{int(odd.sum())} flagged candidates:")
+            for cid, r in frame[odd].iterrows():
+                why = [str(r.layer_status).replace("_", " ")]
+                if isinstance(r.layer_reason, str) and r.layer_reason:
+                    why[0] += f" ({r.layer_reason})"
+                if isinstance(r.duplicate_of, str):
+                    why.append(f"duplicate of {r.duplicate_of}")
+                if r.hazard:
+                    why.append(str(r.hazard))
+                print(f"  {cid}  {r.formula}  {r.source}: {'; '.join(why)}")
     return 0

@@ -39,6 +39,13 @@ def _fmt(value: Any, digits: int = 3) -> str:
     return f"{v:.{digits}f}"
 
 
+def _cv_cell(column: str, value: Any) -> str:
+    """A cell of the per-fold table: counts as whole numbers (a mean keeps one decimal)."""
+    if column in ("n_train", "n", "n_positive"):
+        return _fmt(value, 0 if float(value).is_integer() else 1)
+    return _fmt(value, 3)
+
+
 def _sig(value: Any, digits: int = 2) -> str:
     """A number with ``digits`` significant digits (costs span 1e-3 to 1e3 core-hours)."""
     text = _fmt(value, 0)
@@ -147,7 +154,7 @@ def render_html(data: ReportData) -> str:
                             "ef@10") if c in v.cv_table.columns]
         for name, row in v.cv_table.iterrows():
             label = f"fold {name}" if str(name).isdigit() else str(name)
-            cv_rows.append((label, [row[c] for c in cols]))
+            cv_rows.append((label, [_cv_cell(c, row[c]) for c in cols]))
         enrichment = v.enrichment().to_dict("records")
     else:
         cols = []
