@@ -333,7 +333,9 @@ def stratified_order(pool: "pd.DataFrame", seed: int, max_atoms: int = DEFAULT_M
 # --- relaxation ---------------------------------------------------------------------
 def _relax_one(ident: str, row: dict[str, Any], kpt_density: float, result_path: str) -> None:
     """Child process: relax one structure and write a JSON result file."""
-    from prescreen.physics.dft import REFINE_STEP, LabelSettings, relax_monolayer
+    from pymatgen.io.ase import AseAtomsAdaptor
+
+    from prescreen.physics.dft import REFINE_STEP, LabelSettings, LayerBroke, relax_monolayer
 
     os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
     t0 = time.perf_counter()
@@ -345,14 +347,26 @@ def _relax_one(ident: str, row: dict[str, Any], kpt_density: float, result_path:
         settings = LabelSettings(kpt_density=kpt_density, smearing_eV=RELAX_SMEARING_EV)
         structure = structure_from_row(row)
         converged, residual = False, math.nan
+        broke = ""
+
+        def check(atoms: Any) -> str:
+            return check_intact_monolayer(AseAtomsAdaptor.get_structure(atoms))[1]
+
         for attempt in range(1, RELAX_ATTEMPTS + 1):
             rec["attempts"] = attempt
-            structure, residual, converged = relax_monolayer(
-                structure, settings, fmax=RELAX_FMAX, steps=RELAX_STEPS, scales=RELAX_SCALES,
-                pre_relax_kpt_density=RELAX_PRE_KPT_DENSITY)
+            try:
+                structure, residual, converged = relax_monolayer(
+                    structure, settings, fmax=RELAX_FMAX, steps=RELAX_STEPS,
+                    scales=RELAX_SCALES, pre_relax_kpt_density=RELAX_PRE_KPT_DENSITY,
+                    check_layer=check)
+            except LayerBroke as exc:  # no lattice scan for a layer that is gone
+                structure, broke = exc.structure, f"after the pre-relaxation: {exc.reason}"
+                break
             if converged:
                 break
         intact, why = check_intact_monolayer(structure)
+        why = broke or why
+        intact = intact and not broke
         rec.update(residual_fmax_eV_per_A=float(residual), converged=bool(converged),
                    **structure_columns(structure))
         if not intact:
@@ -967,7 +981,10 @@ python scripts/build_open_dataset.py --seed {seed} --workers 2    # or: make dat
    extension; column `lattice_scan`; the in-plane cell shape
    is not optimised); up to {RELAX_ATTEMPTS} attempts. Structures that do not converge,
    or that are no longer one bonded, 2-periodic sheet with at least 8 A of vacuum
-   (covalent radii x 1.25 bond test), are recorded in `{RELAX_PARQUET}` and left out.
+   (covalent radii x 1.25 bond test), are recorded in `{RELAX_PARQUET}` and left out;
+   since 2026-12-02 the test also runs after the pre-relaxation, and a layer that fails
+   it there is recorded at that point without a lattice scan (reason "after the
+   pre-relaxation: ...").
 4. **Labels** (`prescreen.physics.labeller.run_labelling` with default
    `LabelSettings`): LCAO PBE dzp ground state, Gamma-centred k mesh (hexagonal meshes
    contain K), Fermi-Dirac smearing, spin-orbit coupling added non-self-consistently,

@@ -108,4 +108,5 @@ def test_reason_shows_cost_interval_when_given():
     view = PoolView.build(["a", "b"], np.eye(2), [0.6, 0.3], [0.1, 0.1], cost,
                           cost_low=low, cost_high=high)
     prop = st.greedy_probability(view, 1e6, np.random.default_rng(0))
-    assert prop.reasons[0].startswith(f"p=0.60±0.10, {cost[0]:.2g} ({low[0]:.2g}-{high[0]:.2g}) core-h")
+    assert prop.reasons[0].startswith(
+        f"p=0.60±0.10, {cost[0]:.2g} core-h (interval {low[0]:.2g}-{high[0]:.2g})")

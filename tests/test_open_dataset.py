@@ -232,18 +232,26 @@ def test_stratified_order_small_cells_first_and_prototypes_take_turns(pool):
     assert driver.stratified_order(pool, seed=1) == order  # same seed, same order
 
 
-def _fake_relax(structure, settings, *, fmax, steps, scales, pre_relax_kpt_density=None):
+def _fake_relax(structure, settings, *, fmax, steps, scales, pre_relax_kpt_density=None,
+                check_layer=None):
     """Stand-in for relax_monolayer: behaviour chosen by the first element."""
     import time as _time
+
+    from pymatgen.io.ase import AseAtomsAdaptor
+
+    from prescreen.physics.dft import LayerBroke
 
     symbol = structure[0].specie.symbol
     if symbol == "Mo":
         return structure, 0.01, True
     if symbol == "W":
         return structure, 0.30, False
-    if symbol == "Cr":  # pull one atom 6 A off the layer
+    if symbol in ("Cr", "V"):  # pull one atom 6 A off the layer
         broken = structure.copy()
         broken.translate_sites([1], [0, 0, 6.0], frac_coords=False)
+        if symbol == "V":  # found by the check after the pre-relaxation, as relax_monolayer does
+            reason = check_layer(AseAtomsAdaptor.get_atoms(broken))
+            raise LayerBroke(f"broke: {reason}", reason, broken)
         return broken, 0.01, True
     if symbol == "Ti":
         _time.sleep(30)
@@ -259,15 +267,17 @@ def test_relax_stage_records_outcomes_and_resumes(tmp_path, monkeypatch):
     table = pool_table(generate_pool(prototypes=["MX2-2H"], match_structures=False, progress=False))
     pick = {json.loads(d)["M"]: i for d, i in zip(table["decoration"], table["id"])
             if json.loads(d)["X"] == "S"}
-    ids = [pick[m] for m in ("Mo", "W", "Cr", "Nb", "Ti")]
+    ids = [pick[m] for m in ("Mo", "W", "Cr", "Nb", "Ti", "V")]
     records = driver.relax_stage(table, ids, tmp_path, workers=2, timeout_s=5, progress=False)
     status = {r["id"]: r["status"] for r in records}
     assert status == {pick["Mo"]: "ok", pick["W"]: "not_converged", pick["Cr"]: "fell_apart",
-                      pick["Nb"]: "failed", pick["Ti"]: "failed"}
+                      pick["Nb"]: "failed", pick["Ti"]: "failed", pick["V"]: "fell_apart"}
     reasons = {r["id"]: r["reason"] for r in records}
     assert "SCF did not converge" in reasons[pick["Nb"]]
     assert "Timeout: no result within 5 s" in reasons[pick["Ti"]]
     assert "bonded pieces" in reasons[pick["Cr"]]
+    assert reasons[pick["V"]].startswith("after the pre-relaxation: fell apart into 2 bonded")
+    assert next(r for r in records if r["id"] == pick["V"])["attempts"] == 1  # not retried
     ok = next(r for r in records if r["status"] == "ok")
     assert ok["residual_fmax_eV_per_A"] == pytest.approx(0.01)
     # rerun: nothing is repeated, nothing lost

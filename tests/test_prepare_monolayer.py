@@ -24,3 +24,27 @@ def test_tilted_third_vector_keeps_distances(a3):
     out.pbc = True
     after = np.sort(out.get_all_distances(mic=True).ravel())
     np.testing.assert_allclose(after, before, atol=1e-9)
+
+
+def test_a_layer_that_breaks_in_the_pre_relaxation_skips_the_lattice_scan(monkeypatch):
+    # The relaxation's own steps with a stand-in force field (ASE's Lennard-Jones), so no
+    # DFT is needed: only the control flow is under test, not a geometry.
+    from ase.calculators.lj import LennardJones
+
+    from prescreen.physics import dft
+
+    made = []
+
+    def stand_in(settings, kmesh, txt, magnetic, **extra):
+        made.append(str(txt))
+        return LennardJones(sigma=1.0, epsilon=0.01, rc=3.0)
+
+    monkeypatch.setattr(dft, "_gpaw_calculator", stand_in)
+    layer = mx2("MoS2", "2H", a=3.18, thickness=3.13, vacuum=9.0)
+    with pytest.raises(dft.LayerBroke, match="broke during the pre-relaxation: gone") as info:
+        dft.relax_monolayer(layer, check_layer=lambda atoms: "gone", steps=2)
+    assert info.value.reason == "gone" and len(info.value.structure) == 3
+    assert len(made) == 1 and made[0].endswith("relax-start.txt")  # no scan, no final step
+    made.clear()
+    relaxed, _, _ = dft.relax_monolayer(layer, check_layer=lambda atoms: "", steps=2)
+    assert any("scale" in name for name in made) and made[-1].endswith("relax-final.txt")

@@ -110,7 +110,8 @@ def _propose(view: PoolView, scores: np.ndarray, selection: S.Selection, name: s
     for i, note in zip(idx, selection.notes):
         cost = f"{view.cost[i]:.2g} core-h"
         if view.cost_low is not None and view.cost_high is not None:
-            cost = f"{view.cost[i]:.2g} ({view.cost_low[i]:.2g}-{view.cost_high[i]:.2g}) core-h"
+            cost = (f"{view.cost[i]:.2g} core-h (interval {view.cost_low[i]:.2g}-"
+                    f"{view.cost_high[i]:.2g})")
         parts = [f"p={view.mean[i]:.2f}±{view.std[i]:.2f}", cost]
         if lead:
             parts.append(lead.format(score=scores[i]))

@@ -658,6 +658,23 @@ PRE_RELAX_FMAX_EV_PER_A: float = 0.2
 PRE_RELAX_STEPS: int = 20
 
 
+class LayerBroke(LabellingError):
+    """A relaxation stopped early because the layer stopped being one (see ``check_layer``).
+
+    Attributes
+    ----------
+    reason : str
+        What the check found.
+    structure : pymatgen Structure or ase.Atoms
+        The geometry at that point, of the relaxation input's type.
+    """
+
+    def __init__(self, message: str, reason: str, structure: Any) -> None:
+        super().__init__(message)
+        self.reason = reason
+        self.structure = structure
+
+
 def relax_monolayer(structure: "Structure | Atoms",
                     settings: LabelSettings = LabelSettings(), *,
                     fmax: float = DEFAULT_FMAX_EV_PER_A, steps: int = 100,
@@ -668,6 +685,7 @@ def relax_monolayer(structure: "Structure | Atoms",
                     refine_step: float = REFINE_STEP,
                     max_extensions: int = MAX_SCAN_EXTENSIONS,
                     pre_relax_kpt_density: float | None = None,
+                    check_layer: Any = None,
                     ) -> tuple["Structure | Atoms", float, bool]:
     """Relax a monolayer at the labeller's level of theory (LCAO, PBE).
 
@@ -709,6 +727,11 @@ def relax_monolayer(structure: "Structure | Atoms",
         k-point density of the loose pre-relaxation only (``settings.kpt_density`` when
         None). A coarser mesh makes the pre-relaxation cheaper; the scan and the final
         relaxation keep ``settings``. Compare lattice constants before using it.
+    check_layer
+        Optional ``check_layer(atoms) -> str``, called on the geometry after the rough
+        pre-relaxation: a non-empty answer (why the layer is no longer a layer, e.g. it
+        fell apart) stops the relaxation there with :class:`LayerBroke`, sparing the
+        lattice scan and the final relaxation of a structure that will be discarded.
 
     Returns
     -------
@@ -763,6 +786,13 @@ def relax_monolayer(structure: "Structure | Atoms",
             # converging tightly would waste steps that the final relaxation repeats.
             relax_positions(atoms, folder, "start", max(fmax, PRE_RELAX_FMAX_EV_PER_A),
                             min(steps, PRE_RELAX_STEPS), pre_kmesh)
+            broken = check_layer(atoms.copy()) if check_layer is not None else ""
+            if broken:
+                there = atoms.copy()
+                there.calc = None
+                raise LayerBroke(f"{_formula(atoms)}: the layer broke during the "
+                                 f"pre-relaxation: {broken}", broken,
+                                 _same_type(structure, there))
             counter = iter(range(10**6))
             scanned, energies = _bracketed_scan(
                 scales, lambda f: scan(atoms, folder, f, f"scale{next(counter)}-"),
@@ -780,18 +810,25 @@ def relax_monolayer(structure: "Structure | Atoms",
             atoms.set_cell(cell, scale_atoms=True)
             ok = relax_positions(atoms, folder, "final", fmax, steps)
             residual = float(np.linalg.norm(atoms.get_forces(), axis=1).max())
+        except LayerBroke:
+            raise
         except Exception as exc:
             raise LabellingError(f"{_formula(atoms)}: relaxation failed: "
                                  f"{type(exc).__name__}: {exc}") from exc
     atoms.calc = None
-    relaxed = prepare_monolayer(atoms, settings.vacuum_A)
+    relaxed = _same_type(structure, prepare_monolayer(atoms, settings.vacuum_A))
+    return relaxed, residual, bool(ok and not edge)
+
+
+def _same_type(original: Any, atoms: "Atoms") -> Any:
+    """``atoms`` as a pymatgen Structure unless ``original`` is an ase.Atoms."""
     from ase import Atoms
 
-    if not isinstance(structure, Atoms):
-        from pymatgen.io.ase import AseAtomsAdaptor
+    if isinstance(original, Atoms):
+        return atoms
+    from pymatgen.io.ase import AseAtomsAdaptor
 
-        relaxed = AseAtomsAdaptor.get_structure(relaxed)
-    return relaxed, residual, bool(ok and not edge)
+    return AseAtomsAdaptor.get_structure(atoms)
 
 
 def honeycomb_monolayer(symbols: str, a: float, buckling: float = 0.0,
