@@ -241,6 +241,8 @@ def _iter_cif(path: Path) -> Iterator[Candidate | Rejection]:
                     structures = parser.parse_structures(primitive=False, on_error="raise")
                 except Exception as exc:  # pymatgen raises many types for malformed CIF
                     cause = _warning_text(caught)
+                    if "_atom_site_" not in block_text.lower():
+                        cause = "; ".join(c for c in ("the block has no atom-site loop", cause) if c)
                     message = f"CIF block data_{block} cannot be read: {type(exc).__name__}: {exc}"
                     message += f" ({cause})" if cause else ""
                     raise InputError(

@@ -685,6 +685,7 @@ def relax_monolayer(structure: "Structure | Atoms",
                     refine_step: float = REFINE_STEP,
                     max_extensions: int = MAX_SCAN_EXTENSIONS,
                     pre_relax_kpt_density: float | None = None,
+                    pre_relax_basis: str | None = None,
                     check_layer: Any = None,
                     ) -> tuple["Structure | Atoms", float, bool]:
     """Relax a monolayer at the labeller's level of theory (LCAO, PBE).
@@ -727,6 +728,10 @@ def relax_monolayer(structure: "Structure | Atoms",
         k-point density of the loose pre-relaxation only (``settings.kpt_density`` when
         None). A coarser mesh makes the pre-relaxation cheaper; the scan and the final
         relaxation keep ``settings``. Compare lattice constants before using it.
+    pre_relax_basis
+        LCAO basis of the loose pre-relaxation only (``settings.basis`` when None), e.g.
+        ``"szp(dzp)"``: the single-zeta-polarised part of the dzp set, fewer orbitals.
+        Compare lattice constants before using it.
     check_layer
         Optional ``check_layer(atoms) -> str``, called on the geometry after the rough
         pre-relaxation: a non-empty answer (why the layer is no longer a layer, e.g. it
@@ -756,15 +761,17 @@ def relax_monolayer(structure: "Structure | Atoms",
     pre_kmesh = kmesh if pre_relax_kpt_density is None else choose_kpts(
         atoms, replace(settings, kpt_density=float(pre_relax_kpt_density)))
 
-    def attach(a: "Atoms", folder: Path, tag: str, mesh: tuple[int, int, int] = kmesh) -> None:
-        if settings.spinpol:
-            a.set_initial_magnetic_moments([settings.initial_magmom_muB] * len(a))
-        a.calc = _gpaw_calculator(settings, mesh, folder / f"relax-{tag}.txt",
-                                  settings.spinpol, **extra)
+    def attach(a: "Atoms", folder: Path, tag: str, mesh: tuple[int, int, int] = kmesh,
+               level: LabelSettings = settings) -> None:
+        if level.spinpol:
+            a.set_initial_magnetic_moments([level.initial_magmom_muB] * len(a))
+        a.calc = _gpaw_calculator(level, mesh, folder / f"relax-{tag}.txt",
+                                  level.spinpol, **extra)
 
     def relax_positions(a: "Atoms", folder: Path, tag: str, f_tol: float, n_steps: int,
-                        mesh: tuple[int, int, int] = kmesh) -> bool:
-        attach(a, folder, tag, mesh)
+                        mesh: tuple[int, int, int] = kmesh,
+                        level: LabelSettings = settings) -> bool:
+        attach(a, folder, tag, mesh, level)
         return bool(BFGS(a, logfile=str(folder / f"bfgs-{tag}.log")).run(fmax=f_tol,
                                                                           steps=n_steps))
 
@@ -784,8 +791,10 @@ def relax_monolayer(structure: "Structure | Atoms",
         try:
             # A rough pre-relaxation at the input cell: the lattice is still off there, so
             # converging tightly would waste steps that the final relaxation repeats.
+            pre_level = settings if pre_relax_basis is None else replace(
+                settings, basis=str(pre_relax_basis))
             relax_positions(atoms, folder, "start", max(fmax, PRE_RELAX_FMAX_EV_PER_A),
-                            min(steps, PRE_RELAX_STEPS), pre_kmesh)
+                            min(steps, PRE_RELAX_STEPS), pre_kmesh, pre_level)
             broken = check_layer(atoms.copy()) if check_layer is not None else ""
             if broken:
                 there = atoms.copy()
