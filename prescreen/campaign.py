@@ -480,6 +480,8 @@ class Campaign:
             " ON r.candidate_id = c.id AND r.active = 1 ORDER BY c.seq",
             self._conn,
         )
+        for column in ("spillage", "core_hours"):  # None when nothing is labelled yet
+            df[column] = pd.to_numeric(df[column]).astype(float)
         df["labelled"] = df["spillage"].notna()
         return df.set_index("id")
 

@@ -47,6 +47,19 @@ def translated(s: Structure, shift) -> Structure:
     return Structure(s.lattice, s.species, s.frac_coords + np.asarray(shift))
 
 
+def across_the_cell_edge(s: Structure) -> Structure:
+    """The layer centred on the out-of-plane cell boundary, coordinates wrapped (as a CIF
+    of a layer at z = 0 reads)."""
+    return Structure(s.lattice, s.species, s.frac_coords + np.array([0.0, 0.0, 0.5]),
+                     to_unit_cell=True)
+
+
+def unwrapped(s: Structure) -> Structure:
+    """Each atom moved by a different whole lattice vector, coordinates left unwrapped."""
+    shifts = np.array([[3, -2, 0], [0, 1, 1], [-1, 0, -1]] * len(s))[: len(s)]
+    return Structure(s.lattice, s.species, s.frac_coords + shifts)
+
+
 def permuted(s: Structure, seed: int) -> Structure:
     perm = np.random.default_rng(seed).permutation(len(s))
     return Structure(s.lattice, [s.species[i] for i in perm], s.frac_coords[perm])
@@ -79,8 +92,11 @@ LAYER_NAMES = ["MoS2_2H", "MoS2_1T", "graphene", "silicene", "MoSSe_janus", "hBN
         lambda s: rebased(s, [[2, 1, 0], [1, 1, 0], [0, 0, 1]]),
         lambda s: rebased(s, [[0, 1, 0], [-1, 0, 0], [0, 0, 1]]),
         vacuum_along_a,
+        across_the_cell_edge,
+        unwrapped,
     ],
-    ids=["rotate1", "rotate2", "translate", "permute", "a+b", "2a+b,a+b", "swap", "axis-a"],
+    ids=["rotate1", "rotate2", "translate", "permute", "a+b", "2a+b,a+b", "swap", "axis-a",
+         "across-edge", "unwrapped"],
 )
 def test_invariant_under_rotation_translation_permutation_and_cell_choice(layers, name, transform):
     s = layers[name]

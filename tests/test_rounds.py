@@ -153,6 +153,19 @@ def test_an_empty_campaign_is_a_clear_error_for_rank_and_propose(tmp_path):
     camp.close()
 
 
+def test_a_campaign_without_results_is_ranked_and_proposed_from(tmp_path):
+    # with the shipped default model, before any DFT result is ingested
+    camp = _new_campaign(tmp_path / "fresh")
+    camp.add_candidates([Candidate(c, f, "gen", s) for c, f, s in _structures()[:6]])
+    table = rounds.rank(camp, progress=False)
+    assert len(table) == 6 and not table["flags"].str.contains("labelled").any()
+    assert table["spillage"].isna().all() and table["spillage"].dtype == float
+    rnd = rounds.propose(camp, budget_core_hours=_budget(table, 0.5), ranking=table,
+                         progress=False)
+    assert len(rnd.table)
+    camp.close()
+
+
 def test_unknown_strategy_names_the_choices():
     with pytest.raises(InputError, match="unknown strategy.*greedy_probability"):
         rounds.strategy_by_name("best_guess")

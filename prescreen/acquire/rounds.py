@@ -590,8 +590,10 @@ def model_check(campaign: Campaign, version: str) -> dict[str, float]:
 
 
 def _flags(row: Any) -> str:
+    import pandas as pd
+
     flags = []
-    if row.spillage == row.spillage:  # labelled: the known value beats any probability
+    if pd.notna(row.spillage):  # labelled: the known value beats any probability
         flags.append(f"labelled: spillage {row.spillage:.3g}")
     if row.layer_status not in ("monolayer", "formula_only"):
         flags.append(row.layer_status.replace("_", " "))

@@ -111,7 +111,7 @@ _IN_PLANE = np.array([[1, 2], [2, 0], [0, 1]])
 
 
 def _batch_features(matrix: np.ndarray, frac: np.ndarray, numbers: np.ndarray,
-                    axis: int | None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+                    axis: int | None) -> tuple[np.ndarray, ...]:
     """Geometry and bonding features of B structures with the same atom count N.
 
     Parameters
@@ -124,10 +124,12 @@ def _batch_features(matrix: np.ndarray, frac: np.ndarray, numbers: np.ndarray,
 
     Returns
     -------
-    values, axes, normals, inverses
+    values, axes, normals, inverses, placed
         ``(B, len(STRUCTURE_FEATURES))`` with the symmetry columns left NaN, the ``(B,)``
-        out-of-plane axis indices, the ``(B, 3)`` unit layer normals and the ``(B, 3, 3)``
-        inverse lattice matrices.
+        out-of-plane axis indices, the ``(B, 3)`` unit layer normals, the ``(B, 3, 3)``
+        inverse lattice matrices and the ``(B, N, 3)`` fractional coordinates with the
+        layer made contiguous (in-plane wrapped into [0, 1), out-of-plane measured from
+        the layer's lower edge).
     """
     nb, n, _ = frac.shape
     rows = np.arange(nb)
@@ -166,6 +168,12 @@ def _batch_features(matrix: np.ndarray, frac: np.ndarray, numbers: np.ndarray,
     reach[rows, ax] = np.where(vacuum > rcut, 0, reach[rows, ax])  # nothing bonds across vacuum
     r = reach.max(axis=0)
     images = _images(int(r[0]), int(r[1]), int(r[2]))  # (m, 3) shared by the batch
+    # Place every atom in one contiguous layer: in-plane coordinates wrapped into the cell,
+    # the out-of-plane one measured from the layer's lower edge. Raw coordinates can split
+    # the layer across the cell edge (a layer at z = 0) or hold unwrapped values, and the
+    # image search below (no images across the vacuum) would miss those bonds.
+    frac = np.mod(frac, 1.0)
+    frac[rows, :, ax] = f_perp
     cart = np.einsum("bni,bij->bnj", frac, matrix)
     shifts = np.einsum("mi,bij->bmj", images.astype(float), matrix)  # (B, m, 3)
     disp = (cart[:, None, :, None, :] + shifts[:, None, None, :, :]
@@ -197,7 +205,7 @@ def _batch_features(matrix: np.ndarray, frac: np.ndarray, numbers: np.ndarray,
         area / formula_units, la, lb, gamma, cn.mean(axis=1), cn.min(axis=1), cn.max(axis=1),
         bond_cols, nan, nan, nan,
     ])
-    return values, ax, normal, inv
+    return values, ax, normal, inv, frac
 
 
 def monolayer_features(
@@ -246,11 +254,11 @@ def _features_same_size(matrix: np.ndarray, frac: np.ndarray, numbers: np.ndarra
     for lo in range(0, len(matrix), SUB_BATCH):
         sl = slice(lo, lo + SUB_BATCH)
         m, fr, nu = matrix[sl], frac[sl], numbers[sl]
-        values, ax, normal, inv = _batch_features(m, fr, nu, axis)
+        values, ax, normal, inv, placed = _batch_features(m, fr, nu, axis)
         # Cartesian images of the layer-plane mirror, one per structure
         mirrors = _EYE3 - 2.0 * normal[:, :, None] * normal[:, None, :]
         for k in range(len(values)):
-            values[k, -3:] = _layer_symmetry(m[k], inv[k], fr[k], nu[k], int(ax[k]),
+            values[k, -3:] = _layer_symmetry(m[k], inv[k], placed[k], nu[k], int(ax[k]),
                                              mirrors[k], symprec)
         out.append(values)
     return np.concatenate(out) if out else np.zeros((0, len(STRUCTURE_FEATURES)))
