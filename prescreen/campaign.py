@@ -512,6 +512,11 @@ class Campaign:
         if on_conflict not in _POLICIES:
             raise InputError("unknown conflict policy", value=on_conflict,
                              expected=" or ".join(_POLICIES))
+        if not (isinstance(rows_and_rejections, tuple) and len(rows_and_rejections) == 2):
+            raise InputError("results must come as the (rows, rejections) pair",
+                             value=type(rows_and_rejections).__name__,
+                             expected="read_results(path), or results_from_frame(df) for a "
+                                      "pandas table")
         rows, rejections = rows_and_rejections
         report = ResultIngestReport(rejections=list(rejections))
         now = _now()

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import sys
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING
 
@@ -19,15 +20,16 @@ class Candidate:
     ----------
     id
         Stable identifier: the user's own name where the source has one (file stem,
-        database key, CSV column), else a content hash of the structure. Always a safe
+        database key, CSV column), else ``<file stem>-<position>``. Always a safe
         file-name component (see :func:`prescreen.io.ids.validate_id`).
     formula
         Formula as given or as derived from the structure (e.g. ``"MoS2"``).
     source
         Where it came from, ``path`` or ``path:frame`` or ``path:line``.
     structure
-        The periodic structure, or ``None`` for a composition-only candidate
-        (a row of a formula CSV); structure descriptors are then missing, never invented.
+        The periodic structure (pymatgen ``Structure``; an ``ase.Atoms`` is converted),
+        or ``None`` for a composition-only candidate (a row of a formula CSV); structure
+        descriptors are then missing, never invented.
     meta
         Extra columns the source carried (kept as strings).
     """
@@ -37,6 +39,13 @@ class Candidate:
     source: str
     structure: "Structure | None" = None
     meta: dict[str, str] = field(default_factory=dict, compare=False, hash=False)
+
+    def __post_init__(self) -> None:
+        ase = sys.modules.get("ase")  # an Atoms object means ASE is imported already
+        if ase is not None and isinstance(self.structure, ase.Atoms):
+            from pymatgen.io.ase import AseAtomsAdaptor
+
+            object.__setattr__(self, "structure", AseAtomsAdaptor.get_structure(self.structure))
 
     @property
     def has_structure(self) -> bool:

@@ -271,7 +271,14 @@ class Explanation:
         return 1.0 / (1.0 + np.exp(-self.margin()))
 
     def row(self, key: int | str) -> int:
-        """Position of a row given its position or its ID."""
+        """Position of a row given its ID (index label) or, failing that, its position.
+
+        A label is looked up first, as pandas' ``.loc`` would: with a table sorted or
+        sliced from a larger one (labels 129, 122, ...), ``row(129)`` is the row labelled
+        129, and a plain integer is read as a position only when no row has that label.
+        """
+        if str(key) in self.row_ids:
+            return self.row_ids.index(str(key))
         if isinstance(key, (int, np.integer)):
             if not -len(self.row_ids) <= int(key) < len(self.row_ids):
                 raise InputError("row out of range", value=int(key),

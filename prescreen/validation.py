@@ -412,7 +412,8 @@ def cross_validate(
     ----------
     model_factory
         Called once per fold for a fresh model with ``fit(X, y)`` and
-        ``predict_proba(X) -> (n, 2)``. If its ``fit`` accepts ``groups``, the chemistry
+        ``predict_proba(X) -> (n, 2)``; an unfitted scikit-learn style estimator is
+        accepted too and cloned (``sklearn.base.clone``) for each fold. If its ``fit`` accepts ``groups``, the chemistry
         groups of the training rows are passed, so its own inner splits are grouped too.
     X
         What the model reads, ``n`` rows: a feature DataFrame/array, or the formulas
@@ -450,6 +451,14 @@ def cross_validate(
     y = np.asarray(y)
     if len(y) != len(formulas):
         raise InputError("y and formulas differ in length", value=(len(y), len(formulas)))
+    if len(X) != len(y):
+        raise InputError("X and y differ in length", value=(len(X), len(y)),
+                         expected="one row of X per label")
+    if not callable(model_factory) and hasattr(model_factory, "fit"):
+        from sklearn.base import clone
+
+        estimator = model_factory
+        model_factory = lambda: clone(estimator)  # noqa: E731
     folds = grouped_folds(formulas, n_splits=n_splits, by=by, y=y, random_state=random_state)
     groups = formula_groups(formulas, by=by)
     rows = {}

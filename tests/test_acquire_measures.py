@@ -105,3 +105,18 @@ def test_expected_hits_interval_exact_and_normal():
     assert method == "normal approximation"
     sd = np.sqrt(5000 * 0.01 * 0.99)
     assert (low, high) == pytest.approx((50 - 1.6449 * sd, 50 + 1.6449 * sd), rel=1e-4)
+
+
+def test_pool_columns_indexed_by_id_are_aligned_not_taken_by_position():
+    import pandas as pd
+
+    ids = [f"c{i}" for i in range(5)]
+    rng = np.random.default_rng(1)
+    mean = pd.Series(rng.random(5), index=ids)
+    X = pd.DataFrame(rng.random((5, 2)), index=ids)
+    shuffled = mean.sample(frac=1, random_state=0)
+    view = PoolView.build(ids, X.iloc[::-1], shuffled, np.full(5, 0.1), np.ones(5))
+    np.testing.assert_array_equal(view.mean, mean.loc[ids].to_numpy())
+    np.testing.assert_array_equal(view.X, X.loc[ids].to_numpy())
+    with pytest.raises(InputError, match="does not match the candidate ids"):
+        PoolView.build(ids, X, mean.rename(index={"c0": "zz"}), np.full(5, 0.1), np.ones(5))

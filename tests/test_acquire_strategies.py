@@ -110,3 +110,12 @@ def test_reason_shows_cost_interval_when_given():
     prop = st.greedy_probability(view, 1e6, np.random.default_rng(0))
     assert prop.reasons[0].startswith(
         f"p=0.60±0.10, {cost[0]:.2g} core-h (interval {low[0]:.2g}-{high[0]:.2g})")
+
+
+@pytest.mark.parametrize("bad", [-1.0, float("nan"), 1.5])
+def test_strategies_refuse_a_diversity_outside_zero_to_one(bad):
+    rng = np.random.default_rng(0)
+    view = PoolView.build([f"c{i}" for i in range(6)], rng.random((6, 2)), rng.random(6),
+                          np.full(6, 0.1), np.ones(6))
+    with pytest.raises(InputError, match="bad diversity"):
+        st.greedy_probability(view, 3.0, rng, diversity=bad)

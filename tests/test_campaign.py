@@ -11,6 +11,7 @@ import textwrap
 import time
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 import pytest
 
@@ -253,3 +254,14 @@ def test_store_from_an_earlier_release_is_upgraded_on_open(campaign, table, colu
     conn.close()
     with Campaign.open(path) as again:
         check(again)
+
+
+def test_an_ase_atoms_candidate_is_stored_as_a_structure(campaign):
+    from ase.build import mx2
+
+    atoms = mx2("MoS2", "2H", a=3.18, thickness=3.13, vacuum=9.0)
+    report = campaign.add_candidates([Candidate("ase-mos2", "MoS2", "notebook", atoms)])
+    assert report.added == 1
+    stored = campaign.structure("ase-mos2")
+    assert stored.composition.reduced_formula == "MoS2"
+    np.testing.assert_allclose(stored.lattice.matrix, atoms.cell[:], atol=1e-12)

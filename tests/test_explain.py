@@ -175,3 +175,14 @@ def test_waterfall_row_errors(explanation):
         plot_waterfall(explanation, "nope")
     with pytest.raises(InputError, match="out of range"):
         plot_waterfall(explanation, 999)
+
+
+def test_an_integer_label_means_that_row_not_that_position(model, data):
+    # A frame sorted or sliced from a larger one keeps integer labels, as after
+    # df.sort_values(...).head(): the label wins, as with pandas' .loc.
+    X, _ = data
+    numbered = X.reset_index(drop=True).iloc[[7, 0, 3]]
+    e = explain(model, numbered)
+    assert e.row(0) == 1 and e.row(7) == 0 and e.row("3") == 2
+    np.testing.assert_allclose(e.data[e.row(0)], numbered.loc[0].to_numpy())
+    assert e.row(2) == 2  # no row is labelled 2: read as a position

@@ -219,3 +219,24 @@ def test_blank_formula_taken_from_structure(layers):
     row0 = frame.drop(columns="error").iloc[0].to_numpy()
     row1 = frame.drop(columns="error").iloc[1].to_numpy()
     np.testing.assert_allclose(row0, row1)
+
+
+def test_ase_atoms_compositions_missing_structures_and_the_callers_index(layers):
+    # What a notebook hands over: a pandas Series of formulas after a join (NaN where no
+    # structure), an ase.Atoms, a pymatgen Composition.
+    import pandas as pd
+    from pymatgen.core import Composition
+    from pymatgen.io.ase import AseAtomsAdaptor
+
+    s = layers["MoS2_2H"]
+    formulas = pd.Series(["MoS2", "MoS2", "Bi2Te3", Composition("WSe2")], index=list("abcd"))
+    structures = [s, AseAtomsAdaptor.get_atoms(s), np.nan, None]
+    out = featurise(formulas, structures, progress=False)
+    assert list(out.index) == list("abcd") and out["error"].isna().all()
+    cols = [c for c in out.columns if c.startswith("struct")]
+    np.testing.assert_allclose(out.loc["b", cols].to_numpy(float),
+                               out.loc["a", cols].to_numpy(float), atol=1e-9)  # Atoms = Structure
+    assert out.loc[["c", "d"], cols].isna().all().all()  # formula-only rows: missing, not failed
+    reference = featurise(["WSe2"], progress=False)
+    np.testing.assert_allclose(out.loc["d"].drop("error").to_numpy(float),
+                               reference.iloc[0].drop("error").to_numpy(float), equal_nan=True)

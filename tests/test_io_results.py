@@ -177,3 +177,30 @@ def test_pandas_index_column_is_not_a_rejection(tmp_path):
     pd.DataFrame({"id": ["MoS2", "WTe2"], "spillage": [0.1, 0.9]}).to_csv(path)
     rows, rejections = read_results(path)
     assert [r.id for r in rows] == ["MoS2", "WTe2"] and rejections == []
+
+
+def test_results_from_a_dataframe_follow_the_file_rules():
+    import pandas as pd
+
+    from prescreen.io.results import results_from_frame
+
+    frame = pd.DataFrame({"Spillage": [0.7, -1.0, 0.2], "gap_soc_eV": [0.1, None, None],
+                          "queue": ["a", "b", "c"]},
+                         index=pd.Index(["MoS2", "WTe2", "hBN"], name="id"))
+    rows, rejections = results_from_frame(frame, name="my_table")
+    assert [(r.id, r.spillage, r.gap_soc_eV, r.source) for r in rows] == [
+        ("MoS2", 0.7, 0.1, "my_table:0"), ("hBN", 0.2, None, "my_table:2")]
+    reasons = {r.value: r.reason for r in rejections}
+    assert "spillage is negative" in reasons["-1.0"] and "not used" in reasons["queue"]
+    with pytest.raises(InputError, match="no 'spillage' column"):
+        results_from_frame(pd.DataFrame({"id": ["a"], "value": [1.0]}))
+
+
+def test_ingesting_a_bare_dataframe_says_what_to_pass(tmp_path):
+    import pandas as pd
+
+    from prescreen.campaign import Campaign
+
+    with Campaign.create(tmp_path / "c") as camp:
+        with pytest.raises(InputError, match="results_from_frame"):
+            camp.ingest_results(pd.DataFrame({"id": ["a"], "spillage": [0.1]}))

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import numpy as np
+import pandas as pd
 import pytest
 from pymatgen.core import Composition
 
@@ -190,6 +191,13 @@ def test_cross_validate_spillage_classifier(cv_table):
     assert table.loc[[0, 1, 2, 3], "n"].sum() == len(y)
     assert table.loc["mean", "roc_auc"] == pytest.approx(table.loc[[0, 1, 2, 3], "roc_auc"].mean())
     assert table.loc["mean", "roc_auc"] > 0.6
+    # an estimator instead of a factory is cloned per fold: the same table
+    same = cross_validate(SpillageClassifier(n_models=2, n_estimators=15, random_state=0),
+                          X, y, formulas, n_splits=4, k_values=(10,), random_state=0,
+                          progress=False)
+    pd.testing.assert_frame_equal(same, table)
+    with pytest.raises(InputError, match="X and y differ in length"):
+        cross_validate(SpillageClassifier(), X[:-3], y, formulas, progress=False)
 
 
 # -------------------------------------------------------------------------- baselines

@@ -43,6 +43,27 @@ EXACT_POISSON_BINOMIAL_MAX: int = 3000
 DEFAULT_INTERVAL_LEVEL: float = 0.9
 
 
+def _by_id(values, ids: np.ndarray):
+    """A pandas Series/DataFrame indexed by candidate id, put in the order of ``ids``.
+
+    Anything else, and pandas objects with a plain 0..n-1 index, are taken by position.
+    """
+    import pandas as pd
+
+    index = getattr(values, "index", None)
+    if not isinstance(values, (pd.Series, pd.DataFrame)) or isinstance(index, pd.RangeIndex):
+        return values
+    keys = [str(k) for k in index]
+    if sorted(keys) != sorted(str(i) for i in ids):
+        missing = sorted(set(map(str, ids)) - set(keys))
+        raise InputError("the index of a pool column does not match the candidate ids",
+                         value=missing[:3] or keys[:3],
+                         expected="the same ids as the pool, or a plain 0..n-1 index")
+    out = values.copy()
+    out.index = keys
+    return out.loc[[str(i) for i in ids]]
+
+
 def _as_1d(name: str, values, n: int | None) -> np.ndarray:
     arr = np.asarray(values, dtype=float)
     if arr.ndim != 1:
@@ -141,13 +162,17 @@ class PoolView:
         if np.any(counts > 1):
             raise InputError("duplicate candidate id in the pool", line=str(uniq[counts > 1][0]),
                              value=str(uniq[counts > 1][0]), expected="unique ids")
-        X_arr = np.asarray(X, dtype=float)
+
+        def aligned(value):
+            return _by_id(value, id_arr)
+
+        X_arr = np.asarray(aligned(X), dtype=float)
         if X_arr.ndim != 2 or X_arr.shape[0] != n:
             raise InputError("X has the wrong shape", value=X_arr.shape,
                              expected=f"shape ({n}, d)")
-        mean_arr = _as_1d("mean", mean, n)
-        std_arr = _as_1d("std", std, n)
-        cost_arr = _as_1d("cost", cost, n)
+        mean_arr = _as_1d("mean", aligned(mean), n)
+        std_arr = _as_1d("std", aligned(std), n)
+        cost_arr = _as_1d("cost", aligned(cost), n)
         checks = (
             ("mean", mean_arr, (mean_arr < 0) | (mean_arr > 1), "a probability in [0, 1]"),
             ("std", std_arr, std_arr < 0, "a spread >= 0"),
@@ -167,8 +192,8 @@ class PoolView:
             if not np.all(np.isfinite(mem)) or np.any((mem < 0) | (mem > 1)):
                 raise InputError("members must hold probabilities in [0, 1]",
                                  expected="finite values in [0, 1]")
-        low = None if cost_low is None else _as_1d("cost_low", cost_low, n)
-        high = None if cost_high is None else _as_1d("cost_high", cost_high, n)
+        low = None if cost_low is None else _as_1d("cost_low", aligned(cost_low), n)
+        high = None if cost_high is None else _as_1d("cost_high", aligned(cost_high), n)
         lab = None
         if X_labelled is not None:
             lab = np.asarray(X_labelled, dtype=float)

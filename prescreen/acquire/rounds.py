@@ -635,10 +635,9 @@ def _strategy_options(name: str, diversity: float | None) -> dict[str, float]:
     if not takes:
         raise InputError(f"strategy {name} takes no diversity weight", value=diversity,
                          expected="no diversity option with this strategy")
-    if not 0.0 <= float(diversity) <= 1.0:  # also refuses NaN
-        raise InputError("bad diversity", value=diversity,
-                         expected="a weight in [0, 1], e.g. 0.3 (0 = none)")
-    return {"diversity": float(diversity)}
+    from prescreen.acquire.strategies import check_diversity
+
+    return {"diversity": check_diversity(diversity)}
 
 
 @dataclass(frozen=True)

@@ -114,10 +114,12 @@ def top_within_budget(scores, cost, budget: float) -> Selection:
 
 
 def knapsack_greedy(values, cost, budget: float) -> Selection:
-    """0/1 knapsack maximising the summed value: greedy by value/cost, or best single item.
+    """0/1 knapsack maximising the summed value: the best of three greedy fills.
 
-    Values must be >= 0 (e.g. hit probabilities). The result is at least half the optimum
-    (the classic bound for this modified greedy; from memory).
+    First fit by value/cost, first fit by value, and the best single item; the fill with
+    the largest summed value wins (ties in that order). Values must be >= 0 (e.g. hit
+    probabilities). The result is at least half the optimum (the classic bound for the
+    ratio fill with the best single item, from memory) and never below picking by value.
 
     Parameters
     ----------
@@ -135,13 +137,24 @@ def knapsack_greedy(values, cost, budget: float) -> Selection:
     rank = np.empty(v.shape[0], dtype=int)
     rank[order] = np.arange(1, v.shape[0] + 1)
     picked = _first_fit(order, c, b)
+    by_value = _descending(v)
+    value_rank = np.empty(v.shape[0], dtype=int)
+    value_rank[by_value] = np.arange(1, v.shape[0] + 1)
+    plain = _first_fit(by_value, c, b)
     fits = np.flatnonzero(c <= b)
+    best_total = v[picked].sum()
+    choice = Selection(np.asarray(picked, dtype=int),
+                       tuple(f"{_ordinal(int(rank[i]))} by value per core-hour" for i in picked))
+    if v[plain].sum() > best_total:
+        best_total = v[plain].sum()
+        choice = Selection(np.asarray(plain, dtype=int),
+                           tuple(f"{_ordinal(int(value_rank[i]))} by value (fills the budget "
+                                 "better than value per core-hour)" for i in plain))
     if fits.size:
         best = int(fits[_descending(v[fits])[0]])
-        if v[best] > v[picked].sum():
+        if v[best] > best_total:
             return Selection(np.asarray([best]), ("best single item within budget",))
-    return Selection(np.asarray(picked, dtype=int),
-                     tuple(f"{_ordinal(int(rank[i]))} by value per core-hour" for i in picked))
+    return choice
 
 
 def knapsack_exact(values, cost, budget: float) -> Selection:

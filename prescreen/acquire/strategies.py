@@ -127,10 +127,19 @@ def _propose(view: PoolView, scores: np.ndarray, selection: S.Selection, name: s
     )
 
 
+def check_diversity(value: float) -> float:
+    """``value`` as a float if it is a diversity weight in [0, 1], else InputError."""
+    if not 0.0 <= float(value) <= 1.0:  # also refuses NaN
+        raise InputError("bad diversity", value=value,
+                         expected="a weight in [0, 1], e.g. 0.3 (0 = none)")
+    return float(value)
+
+
 def _pick(view: PoolView, scores: np.ndarray, budget: float, rng: np.random.Generator,
           name: str, *, diversity: float = 0.0, clusters: int | None = None,
           knapsack: bool = False, lead: str | None = None) -> Proposal:
     """Choose the selector for the options, run it, and build the proposal."""
+    diversity = check_diversity(diversity)
     if clusters is not None:
         sel = S.clustered_within_budget(scores, view.X, view.cost, budget,
                                         n_clusters=clusters, rng=rng)

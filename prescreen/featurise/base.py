@@ -17,9 +17,10 @@ from __future__ import annotations
 
 import hashlib
 import json
+import sys
 from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass
-from typing import TYPE_CHECKING, Protocol, Sequence, runtime_checkable
+from typing import TYPE_CHECKING, Any, Protocol, Sequence, runtime_checkable
 
 import numpy as np
 import pandas as pd
@@ -169,6 +170,26 @@ def _check_names(featurisers: Sequence[Featuriser]) -> list[str]:
     return names
 
 
+def _as_structure(item: Any) -> Any:
+    """A row's structure as featurisers want it: None for missing (None, NaN, pd.NA), a
+    pymatgen Structure for an ``ase.Atoms``; anything else as given (reported later)."""
+    if item is None or (not hasattr(item, "__len__") and pd.isna(item)):
+        return None
+    ase = sys.modules.get("ase")  # an Atoms object means ASE is imported already
+    if ase is not None and isinstance(item, ase.Atoms):
+        from pymatgen.io.ase import AseAtomsAdaptor
+
+        return AseAtomsAdaptor.get_structure(item)
+    return item
+
+
+def _as_formula(item: Any) -> Any:
+    """A pymatgen Composition as its formula text; anything else as given."""
+    if hasattr(item, "reduced_formula") and hasattr(item, "formula"):
+        return str(item.formula).replace(" ", "")
+    return item
+
+
 def _fill_formulas(formulas: Sequence[str], structures: Sequence["Structure | None"]) -> list:
     """Take a missing (None, NaN) or blank formula from the row's structure, if it has one."""
     out = []
@@ -223,11 +244,13 @@ def featurise(
     Parameters
     ----------
     formulas
-        ``(n,)`` formulas. A blank formula is taken from the structure of that row.
+        ``(n,)`` formulas (text or pymatgen ``Composition``). A blank formula is taken
+        from the structure of that row.
     structures
-        ``(n,)`` pymatgen ``Structure`` (monolayers) or ``None`` for formula-only rows;
-        ``None`` for the whole argument means every row is formula-only. Structure
-        features of formula-only rows are NaN (explicitly missing).
+        ``(n,)`` pymatgen ``Structure`` or ``ase.Atoms`` (monolayers), or a missing value
+        (``None``, NaN) for formula-only rows; ``None`` for the whole argument means every
+        row is formula-only. Structure features of formula-only rows are NaN (explicitly
+        missing).
     featurisers
         Defaults to :func:`default_featurisers`.
     progress
@@ -238,7 +261,8 @@ def featurise(
     Returns
     -------
     pandas.DataFrame
-        ``n`` rows in input order (index ``0..n-1``), one float column per feature name
+        ``n`` rows in input order (the index of ``formulas`` when it is a pandas Series,
+        else ``0..n-1``), one float column per feature name
         in featuriser order, then the ``error`` column (``None`` or a message naming the
         entry, the bad value and what was expected).
 
@@ -252,11 +276,12 @@ def featurise(
 
     featurisers = default_featurisers() if featurisers is None else list(featurisers)
     names = _check_names(featurisers)
-    formulas = list(formulas)
+    index = formulas.index if isinstance(formulas, pd.Series) else None
+    formulas = [_as_formula(f) for f in formulas]
     n = len(formulas)
     if structures is None:
         structures = [None] * n
-    structures = list(structures)
+    structures = [_as_structure(st) for st in structures]
     if len(structures) != n:
         raise InputError("structures and formulas differ in length", value=len(structures),
                          expected=f"{n} structures (None for formula-only rows)")
@@ -284,4 +309,6 @@ def featurise(
         errors = np.zeros(0, dtype=object)
     frame = pd.DataFrame(values, columns=names)
     frame[ERROR_COLUMN] = pd.Series(errors, dtype=object)
+    if index is not None:
+        frame.index = index
     return frame

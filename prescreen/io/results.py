@@ -34,7 +34,7 @@ from prescreen.errors import InputError, Rejection
 from prescreen.io.formulas import iter_csv_records, read_utf8_text
 from prescreen.io.ids import validate_id
 
-__all__ = ["RESULT_COLUMNS", "ResultRow", "read_results", "unknown_ids"]
+__all__ = ["RESULT_COLUMNS", "ResultRow", "read_results", "results_from_frame", "unknown_ids"]
 
 #: Canonical column names, in output order.
 RESULT_COLUMNS: tuple[str, ...] = ("id", "spillage", "functional", "code", "kmesh", "core_hours",
@@ -254,11 +254,54 @@ def read_results(
         message names the byte offset.
     """
     path = Path(path)
-    if on_conflict not in ("reject", "first", "last"):
-        raise InputError("unknown conflict policy", value=on_conflict, expected="'reject', 'first' or 'last'")
+    _check_policy(on_conflict)
     if not path.is_file():
         raise InputError("no such results file", path=path, expected="a CSV or JSON file")
     entries = _iter_json(path) if _is_json(path) else _iter_csv(path)
+    return _collect(entries, path, on_conflict)
+
+
+def results_from_frame(frame: Any, *, name: str = "dataframe",
+                       on_conflict: ConflictPolicy = "reject",
+                       ) -> tuple[list[ResultRow], list[Rejection]]:
+    """Validate results held in a pandas DataFrame, with the rules of :func:`read_results`.
+
+    Columns as in a results file (``id`` may also be the index's name); each row is
+    located as ``<name>:<index label>`` in messages and in the stored provenance.
+    Returns the ``(rows, rejections)`` pair that
+    :meth:`prescreen.campaign.Campaign.ingest_results` takes.
+    """
+    import pandas as pd
+
+    _check_policy(on_conflict)
+    if not isinstance(frame, pd.DataFrame):
+        raise InputError("not a pandas DataFrame", value=type(frame).__name__,
+                         expected="a DataFrame with columns id and spillage")
+    if frame.index.name is not None and str(frame.index.name).strip().lower() == "id":
+        frame = frame.reset_index()
+    mapping, unknown = _canonical_names(frame.columns, path=Path(name), line="columns")
+    _require(mapping, Path(name), [str(c) for c in frame.columns], 1)
+
+    def entries() -> Iterable[tuple[int | str, str, dict[str, Any]] | Rejection]:
+        for column in unknown:
+            yield Rejection(name, "columns", column,
+                            "column is not used; known columns are " + ", ".join(RESULT_COLUMNS))
+        for label, row in zip(frame.index, frame.to_dict("records")):
+            fields = {mapping[k]: (None if pd.isna(v) else v) for k, v in row.items()
+                      if k in mapping}
+            yield str(label), f"{name}:{label}", fields
+
+    return _collect(entries(), Path(name), on_conflict)
+
+
+def _check_policy(on_conflict: str) -> None:
+    if on_conflict not in ("reject", "first", "last"):
+        raise InputError("unknown conflict policy", value=on_conflict, expected="'reject', 'first' or 'last'")
+
+
+def _collect(entries: Iterable[tuple[int | str, str, dict[str, Any]] | Rejection], path: Path,
+             on_conflict: ConflictPolicy) -> tuple[list[ResultRow], list[Rejection]]:
+    """Validate entries into rows (one per id, in order) and rejections."""
     rejections: list[Rejection] = []
     by_id: dict[str, list[ResultRow]] = {}
     for item in entries:
