@@ -99,7 +99,7 @@ def test_rank_scores_every_candidate_once(trained):
     # Labelled rows say so, with their value; the model's own grouped CV comes along.
     labels = camp.labels()["spillage"]
     for cid, value in labels.items():
-        assert f"labelled: spillage {value:.3g}" in table.loc[cid, "flags"]
+        assert f"labelled: spillage {value:.2f}" in table.loc[cid, "flags"]
     assert not table.drop(index=labels.index)["flags"].str.contains("labelled").any()
     record = camp.model_record(table["model"].iloc[0])
     assert table.attrs["cv_roc_auc"] == record["metrics"]["roc_auc"]

@@ -594,7 +594,7 @@ def _flags(row: Any) -> str:
 
     flags = []
     if pd.notna(row.spillage):  # labelled: the known value beats any probability
-        flags.append(f"labelled: spillage {row.spillage:.3g}")
+        flags.append(f"labelled: spillage {row.spillage:.2f}")
     if row.layer_status not in ("monolayer", "formula_only"):
         flags.append(row.layer_status.replace("_", " "))
     if row.layer_status == "formula_only":
