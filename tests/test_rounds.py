@@ -376,3 +376,18 @@ def test_a_gap_requirement_turns_gapless_high_spillage_negative(tmp_path, capsys
         ranked = rounds.rank(again, progress=False)
     assert model.min_gap_eV_ == 0.02
     assert ranked.attrs["positive_rule"] == "spillage >= 0.5 and band gap with SOC >= 0.02 eV"
+
+
+def test_cost_descriptors_are_computed_once_per_candidate(trained, monkeypatch):
+    from prescreen.acquire import cost
+
+    camp, _ = trained
+    first = rounds.rank(camp, progress=False)
+    calls = []
+    real = cost.descriptors_for_structure
+    monkeypatch.setattr(cost, "descriptors_for_structure",
+                        lambda s, *a, **k: calls.append(1) or real(s, *a, **k))
+    again = rounds.rank(camp, progress=False)
+    assert calls == []  # read from the campaign's cache
+    pd.testing.assert_series_equal(again["cost_core_hours"], first["cost_core_hours"])
+    assert np.isnan(again.loc["f-only", "cost_core_hours"])

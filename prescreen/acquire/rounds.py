@@ -512,6 +512,12 @@ def cost_model(campaign: Campaign, *, data_open: str | Path | None = None):
     return cost_model_with_source(campaign, data_open=data_open)[0]
 
 
+#: Columns of :func:`prescreen.acquire.cost.descriptors_for_structure`, and the name of
+#: their cache in the campaign (change the version when the descriptors change).
+COST_DESCRIPTORS = ("n_electrons", "n_kpoints", "volume", "n_atoms", "area")
+COST_DESCRIPTOR_CACHE = "cost-descriptors-1"
+
+
 def rank(campaign: Campaign, *, progress: bool = True) -> pd.DataFrame:
     """Score every candidate: probability, uncertainty, predicted cost, flags and rank.
 
@@ -538,23 +544,25 @@ def rank(campaign: Campaign, *, progress: bool = True) -> pd.DataFrame:
     out["probability"] = mean
     out["uncertainty"] = std
     costs = cost_model(campaign)
-    rows, where = [], []
-    for i, (cid, structure) in enumerate(campaign.iter_structures()):
-        if structure is not None:
-            rows.append(descriptors_for_structure(structure))
-            where.append(i)
+
+    def describe(ids: list[str], formulas: list[str], structures: list[Any]) -> pd.DataFrame:
+        import pandas as pd
+
+        return pd.DataFrame([descriptors_for_structure(st) if st is not None else {}
+                             for st in structures], columns=COST_DESCRIPTORS, dtype=float)
+
+    # cached in the campaign like the features: unpacking thousands of structures each
+    # time would dominate a ranking
+    desc = campaign.features(describe, COST_DESCRIPTOR_CACHE)
     out["cost_core_hours"] = np.nan
     out["cost_low"] = np.nan
     out["cost_high"] = np.nan
-    if rows:
-        import pandas as pd
-
-        desc = pd.DataFrame(rows)
-        col = out.columns.get_loc
-        mid, low, high = costs.predict_interval(desc)
-        out.iloc[where, col("cost_core_hours")] = mid
-        out.iloc[where, col("cost_low")] = low
-        out.iloc[where, col("cost_high")] = high
+    known = desc.dropna()
+    if len(known):
+        mid, low, high = costs.predict_interval(known)
+        out.loc[known.index, "cost_core_hours"] = mid
+        out.loc[known.index, "cost_low"] = low
+        out.loc[known.index, "cost_high"] = high
     out["flags"] = [_flags(r) for r in out.itertuples()]
     out["model"] = version
     out = out.sort_values(["probability", "uncertainty"], ascending=[False, True], kind="stable")
