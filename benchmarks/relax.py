@@ -21,6 +21,8 @@ os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 VARIANTS = {
     "dataset settings": {},
     "pre-relax on k density 1.25": {"pre_relax_kpt_density": 1.25},
+    "pre-relax k 1.25, szp(dzp)": {"pre_relax_kpt_density": 1.25,
+                                   "pre_relax_basis": "szp(dzp)"},
     "h 0.25 A, density tol 1e-3": {"grid_spacing_A": 0.25, "scf_density_tol": 1e-3},
 }
 
