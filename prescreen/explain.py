@@ -529,12 +529,13 @@ def plot_dependence(explanation: Explanation, *, k: int = 4) -> Figure:
 
 
 def plot_waterfall(explanation: Explanation, row: int | str, *, max_display: int = 8,
-                   title: str | None = None) -> Figure:
+                   title: str | None = None, calibrated: float | None = None) -> Figure:
     """How one candidate's log-odds build up from the base value, feature by feature.
 
     Bars run from the base value (mean margin over the training data) to the row's
-    margin; features beyond ``max_display`` are lumped into one bar. The caption gives
-    the uncalibrated probability ``1 / (1 + exp(-margin))``.
+    margin; features beyond ``max_display`` are lumped into one bar. The axis label gives
+    the ``calibrated`` probability when it is passed (the one to read), else the
+    uncalibrated ``1 / (1 + exp(-margin))``.
 
     Parameters
     ----------
@@ -546,6 +547,9 @@ def plot_waterfall(explanation: Explanation, row: int | str, *, max_display: int
         Features shown individually, largest |SHAP| first.
     title
         Figure title (default: the row ID).
+    calibrated
+        The row's calibrated probability (e.g. from ``predict_proba``), shown instead of
+        the uncalibrated one, which can disagree with it widely.
 
     Returns
     -------
@@ -582,11 +586,14 @@ def plot_waterfall(explanation: Explanation, row: int | str, *, max_display: int
         ax.axvline(explanation.base_value, color="0.4", linewidth=0.8, linestyle="--")
         ax.axvline(margin, color=OKABE_ITO["black"], linewidth=1.0)
         ax.set_yticks(y, labels)
-        p = 1.0 / (1.0 + np.exp(-margin))
-        ax.set_xlabel(
-            f"log-odds of high spillage: base {explanation.base_value:.2f} → {margin:.2f}\n"
-            f"(uncalibrated p = 1/(1+exp(-{margin:.2f})) = {p:.2f})"
-        )
+        if calibrated is not None:
+            second = (f"(calibrated probability {calibrated:.2f}; the bars are the "
+                      "ensemble's raw log-odds)")
+        else:
+            p = 1.0 / (1.0 + np.exp(-margin))
+            second = f"(uncalibrated p = 1/(1+exp({-margin:+.2f})) = {p:.2f})"
+        ax.set_xlabel(f"log-odds of high spillage: base {explanation.base_value:.2f} → "
+                      f"{margin:.2f}\n{second}")
         lo = min(explanation.base_value, margin, *(explanation.base_value + np.cumsum(contribs)))
         hi = max(explanation.base_value, margin, *(explanation.base_value + np.cumsum(contribs)))
         pad = max(0.15 * (hi - lo), 0.3)

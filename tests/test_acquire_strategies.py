@@ -109,7 +109,7 @@ def test_reason_shows_cost_interval_when_given():
                           cost_low=low, cost_high=high)
     prop = st.greedy_probability(view, 1e6, np.random.default_rng(0))
     assert prop.reasons[0].startswith(
-        f"p=0.60±0.10, {cost[0]:.2g} core-h (interval {low[0]:.2g}-{high[0]:.2g})")
+        f"p=0.60 (spread 0.10), {cost[0]:.2g} core-h (interval {low[0]:.2g}-{high[0]:.2g})")
 
 
 @pytest.mark.parametrize("bad", [-1.0, float("nan"), 1.5])

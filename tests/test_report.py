@@ -363,3 +363,55 @@ def test_a_hit_is_what_the_rounds_model_was_trained_on(built, tmp_path):
     assert any("threshold is 0.3" in note for note in data.notes)
     assert data.labelled_base_rate == pytest.approx(float((labels["spillage"] >= 0.5).mean()))
     assert data.validation.y.sum() == int((labels["spillage"] >= 0.5).sum())
+
+
+def test_budget_overrun_probability_matches_the_log_normal_law():
+    # One candidate, or all errors moving together: the total is log-normal, and
+    # scipy.stats.lognorm gives the exact tail (Monte Carlo tolerance ~4 standard errors).
+    from scipy import stats
+
+    from prescreen.report.build import budget_overrun_probability
+
+    z = stats.norm.ppf(0.95)
+    sigma = 0.4
+    cost, low, high = np.array([2.0, 1.0, 3.0]), None, None
+    low, high = cost * np.exp(-z * sigma), cost * np.exp(z * sigma)
+    for budget in (5.0, 6.0, 8.0):
+        exact = stats.lognorm.sf(budget, s=sigma, scale=cost.sum())
+        got = budget_overrun_probability(cost, low, high, budget, correlated=True)
+        assert got == pytest.approx(exact, abs=0.015)
+        one = budget_overrun_probability(cost[:1], low[:1], high[:1], budget / 3)
+        assert one == pytest.approx(stats.lognorm.sf(budget / 3, s=sigma, scale=2.0), abs=0.015)
+    # independent errors partly cancel: a budget above the median total is overrun less often
+    assert (budget_overrun_probability(cost, low, high, 7.0)
+            < budget_overrun_probability(cost, low, high, 7.0, correlated=True))
+
+
+def test_roc_auc_interval_brackets_scikit_learns_value():
+    from sklearn.metrics import roc_auc_score
+
+    from prescreen.report.build import roc_auc_interval
+
+    rng = np.random.default_rng(0)
+    y = rng.integers(0, 2, 80)
+    p = np.clip(0.3 * y + rng.random(80) * 0.7, 0, 1)
+    out = roc_auc_interval(y, p)
+    assert out["roc_auc"] == pytest.approx(roc_auc_score(y, p))
+    assert out["low"] < out["roc_auc"] < out["high"]
+    assert np.isnan(roc_auc_interval(np.ones(5), np.linspace(0, 1, 5))["roc_auc"])
+
+
+def test_summary_shows_skill_cheapest_first_and_overrun(built, collected):
+    doc = parse(built["html"])
+    by_id = {a["id"]: a for t, a in doc.tags if "id" in a}
+    record = json.loads((built["proposed"].folder / "round.json").read_text())
+    at = record["pool_at_proposal"]
+    assert float(by_id["cheapest-first"]["data-value"]) == at["cheapest_first_expected_hits"]
+    assert at["cheapest_first_picks"] > 0
+    skill = collected.skill
+    from sklearn.metrics import roc_auc_score
+
+    v = collected.validation
+    assert skill["roc_auc"] == pytest.approx(roc_auc_score(v.y, v.p_oof))
+    assert 0.0 <= float(by_id["overrun"]["data-value"]) <= 1.0
+    assert "no-replay" not in by_id  # this report has discovery curves

@@ -762,7 +762,8 @@ def propose(
         "after_this_round": after,
         # What the report compares the batch with, fixed now: a later model or cost model
         # must not rewrite the figures a round was proposed on.
-        "pool_at_proposal": _pool_summary(pool),
+        "pool_at_proposal": _pool_summary(pool, budget_core_hours),
+        "diversity": options.get("diversity"),
         "picks": {cid: {"formula": str(pool.at[cid, "formula"]),
                         "flags": str(pool.at[cid, "flags"] or ""),
                         "cost_low": float(pool.at[cid, "cost_low"]),
@@ -776,13 +777,25 @@ def propose(
                          strategy=proposal.strategy, after=after)
 
 
-def _pool_summary(pool: pd.DataFrame) -> dict[str, float]:
-    """Size, mean probability and random selection's hits per core-hour of a pool."""
+def _pool_summary(pool: pd.DataFrame, budget: float | None = None) -> dict[str, float]:
+    """Size, mean probability and random selection's hits per core-hour of a pool.
+
+    With a ``budget``, also ``cheapest_first_expected_hits`` and ``cheapest_first_picks``:
+    the pool filled cheapest first within the budget, no model involved in the choice
+    (how much of a batch's advantage comes from cheap cells alone).
+    """
     p = pool["probability"].to_numpy(float)
     cost = pool["cost_core_hours"].to_numpy(float)
-    return {"size": int(len(pool)), "base_rate": float(p.mean()) if len(p) else float("nan"),
-            "random_hits_per_core_hour": float(p.sum() / cost.sum()) if cost.sum() > 0
-            else float("nan")}
+    out = {"size": int(len(pool)), "base_rate": float(p.mean()) if len(p) else float("nan"),
+           "random_hits_per_core_hour": float(p.sum() / cost.sum()) if cost.sum() > 0
+           else float("nan")}
+    if budget is not None:
+        from prescreen.acquire.selectors import top_within_budget
+
+        cheap = top_within_budget(-cost, cost, float(budget)).indices
+        out.update(cheapest_first_expected_hits=float(p[cheap].sum()),
+                   cheapest_first_picks=int(len(cheap)))
+    return out
 
 
 def _stop_rule(rest: pd.DataFrame) -> dict[str, Any]:

@@ -52,7 +52,7 @@ class Proposal:
     probability, spread, cost : ndarray of float, shape (k,)
         Hit probability, its spread, predicted core-hours.
     reasons : tuple of str, length k
-        One short line each, e.g. ``"p=0.81±0.07, 3.2 core-h, 2nd most distant from batch"``.
+        One short line each, e.g. ``"p=0.81 (spread 0.07), 3.2 core-h, ..."``.
     total_cost : float
         Sum of predicted cost, core-hours (never above ``budget``).
     budget : float
@@ -112,7 +112,7 @@ def _propose(view: PoolView, scores: np.ndarray, selection: S.Selection, name: s
         if view.cost_low is not None and view.cost_high is not None:
             cost = (f"{view.cost[i]:.2g} core-h (interval {view.cost_low[i]:.2g}-"
                     f"{view.cost_high[i]:.2g})")
-        parts = [f"p={view.mean[i]:.2f}±{view.std[i]:.2f}", cost]
+        parts = [f"p={view.mean[i]:.2f} (spread {view.std[i]:.2f})", cost]
         if lead:
             parts.append(lead.format(score=scores[i]))
         parts.append(note)

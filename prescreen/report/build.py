@@ -32,6 +32,8 @@ if TYPE_CHECKING:  # pragma: no cover
 
 __all__ = [
     "CAUTIONS",
+    "budget_overrun_probability",
+    "roc_auc_interval",
     "ENRICHMENT_K",
     "GLOBAL_SHAP_ROWS",
     "ReplayCurves",
@@ -189,6 +191,16 @@ class RoundSummary:
     after : dict or None
         The stop rule over the pool this round leaves (``round.json``,
         ``after_this_round``; see :func:`prescreen.acquire.stopping.stop_estimate`).
+    same_number_random_hits : float
+        ``pool_base_rate * n_picks``: random picks of the same number (ignoring cost).
+    cheapest_first_expected_hits, cheapest_first_picks : float or None
+        The pool filled cheapest first within the budget, no model in the choice (None
+        for rounds proposed before it was recorded).
+    diversity : float or None
+        The diversity weight the strategy used (None: none, or not recorded).
+    overrun_independent, overrun_correlated : float
+        Chance that the batch's real cost exceeds the budget, with the per-candidate cost
+        errors independent or all moving together (:func:`budget_overrun_probability`).
     """
 
     number: int
@@ -208,6 +220,12 @@ class RoundSummary:
     hits_per_core_hour: float
     random_hits_per_core_hour: float
     after: dict[str, Any] | None = None
+    same_number_random_hits: float = float("nan")
+    cheapest_first_expected_hits: float | None = None
+    cheapest_first_picks: int | None = None
+    diversity: float | None = None
+    overrun_independent: float = float("nan")
+    overrun_correlated: float = float("nan")
 
 
 @dataclass(frozen=True)
@@ -281,6 +299,66 @@ class ReportData:
     positive_rule: str = ""
     #: Z2 invariants computed for the campaign's candidates (``prescreen z2``).
     invariants: tuple[InvariantRow, ...] = ()
+    #: Pooled out-of-fold ROC-AUC with a 95 % bootstrap interval (None without validation).
+    skill: dict[str, float] | None = None
+
+
+#: Draws of the Monte Carlo estimates in the report (seeded; chosen here).
+MONTE_CARLO_DRAWS = 20000
+
+
+def budget_overrun_probability(cost: Any, low: Any, high: Any, budget: float, *,
+                               level: float = 0.9, correlated: bool = False,
+                               draws: int = MONTE_CARLO_DRAWS, seed: int = 0) -> float:
+    """Chance that the summed real cost of a batch exceeds ``budget``.
+
+    Each candidate's cost is log-normal with median ``cost`` and the central ``level``
+    interval ``(low, high)`` (the cost model's own form, see
+    :meth:`prescreen.acquire.cost.CostModel.predict_interval`); the log-errors are
+    independent, or (``correlated``) one common error scales every candidate. Monte
+    Carlo with a fixed seed. NaN when there is nothing to sum.
+    """
+    from scipy import stats
+
+    cost, low, high = (np.asarray(a, dtype=float) for a in (cost, low, high))
+    ok = np.isfinite(cost) & np.isfinite(low) & np.isfinite(high) & (cost > 0)
+    if not ok.any():
+        return float("nan")
+    z90 = float(stats.norm.ppf(0.5 + level / 2))
+    sigma = 0.5 * (np.log(high[ok]) - np.log(low[ok])) / z90
+    rng = np.random.default_rng(seed)
+    shape = (draws, 1) if correlated else (draws, int(ok.sum()))
+    totals = (cost[ok] * np.exp(sigma * rng.standard_normal(shape))).sum(axis=1)
+    return float(np.mean(totals > budget))
+
+
+def roc_auc_interval(y: Any, p: Any, *, level: float = 0.95, draws: int = 2000,
+                     seed: int = 0) -> dict[str, float]:
+    """ROC-AUC of out-of-fold predictions with a percentile bootstrap interval over rows.
+
+    Returns ``{"roc_auc", "low", "high", "n", "positives"}``; NaN where undefined (one
+    class, or no resample with both classes).
+    """
+    from sklearn.metrics import roc_auc_score
+
+    y, p = np.asarray(y).astype(int), np.asarray(p, dtype=float)
+    keep = np.isfinite(p)
+    y, p = y[keep], p[keep]
+    out = {"roc_auc": float("nan"), "low": float("nan"), "high": float("nan"),
+           "n": float(len(y)), "positives": float(y.sum())}
+    if len(set(y.tolist())) < 2:
+        return out
+    out["roc_auc"] = float(roc_auc_score(y, p))
+    rng = np.random.default_rng(seed)
+    scores = []
+    for _ in range(draws):
+        idx = rng.integers(0, len(y), len(y))
+        if 0 < y[idx].sum() < len(idx):
+            scores.append(roc_auc_score(y[idx], p[idx]))
+    if scores:
+        out["low"], out["high"] = (float(q) for q in
+                                   np.quantile(scores, [(1 - level) / 2, (1 + level) / 2]))
+    return out
 
 
 # ------------------------------------------------------------------------------ helpers
@@ -590,6 +668,16 @@ def collect(
         hits_per_core_hour=float(rec["expected_hits"]) / total if total > 0 else float("nan"),
         random_hits_per_core_hour=random_rate,
         after=rec.get("after_this_round"),
+        same_number_random_hits=base_rate * len(ids),
+        cheapest_first_expected_hits=at_proposal.get("cheapest_first_expected_hits"),
+        cheapest_first_picks=at_proposal.get("cheapest_first_picks"),
+        diversity=rec.get("diversity"),
+        overrun_independent=budget_overrun_probability(
+            [r.cost_core_hours for r in rows], [r.cost_low for r in rows],
+            [r.cost_high for r in rows], float(rec["budget_core_hours"])),
+        overrun_correlated=budget_overrun_probability(
+            [r.cost_core_hours for r in rows], [r.cost_low for r in rows],
+            [r.cost_high for r in rows], float(rec["budget_core_hours"]), correlated=True),
     )
     settings = _model_settings(campaign, summary.model)
     used_open = bool(settings.get("use_open", True)) if use_open is None else bool(use_open)
@@ -625,6 +713,7 @@ def collect(
         provenance=_provenance(campaign, used_open), replay=replay_curves, notes=tuple(notes),
         positive_rule=positive_rule(threshold, getattr(model, "min_gap_eV_", None)),
         invariants=_invariants(campaign, labels),
+        skill=None if validation is None else roc_auc_interval(validation.y, validation.p_oof),
     )
 
 

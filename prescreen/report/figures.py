@@ -186,27 +186,28 @@ def cost_figure(rows: tuple[ProposalRow, ...], budget: float) -> Figure:
     """Predicted core-hours per proposed candidate (with interval) and the running total."""
     import matplotlib as mpl
 
-    ids = [r.id for r in rows]
     mid = np.array([r.cost_core_hours for r in rows])
     low = np.array([r.cost_low for r in rows])
     high = np.array([r.cost_high for r in rows])
     with mpl.rc_context(_STYLE):
-        fig, (left, right) = _figure(1.8 + 0.3 * len(rows), ncols=2)
+        fig, (left, right) = _figure(1.8 + 0.22 * len(rows), ncols=2)
         y = np.arange(len(rows))[::-1]
         left.barh(y, mid, color=OKABE_ITO["orange"])
         ok = np.isfinite(low) & np.isfinite(high)
         left.errorbar(mid[ok], y[ok], xerr=[mid[ok] - low[ok], high[ok] - mid[ok]],
                       fmt="none", color="black", capsize=3, linewidth=1)
-        left.set_yticks(y, ids)
-        left.set_xlabel("predicted cost (core-hours; bar: central, line: interval)")
+        left.set_yticks(y, [f"{r.id} ({r.formula})" for r in rows])
+        left.set_xlabel("predicted cost (core-hours; bar: central, line: 90 % interval)")
         left.set_title("Cost per candidate")
         steps = np.arange(1, len(rows) + 1)
         right.plot(steps, np.cumsum(mid), color=OKABE_ITO["orange"], linewidth=2, marker="o",
                    label="cumulative predicted cost")
-        right.set_xticks(steps)
+        from matplotlib.ticker import MaxNLocator
+
+        right.xaxis.set_major_locator(MaxNLocator(nbins=10, integer=True))
         right.set_xlim(0.5, len(rows) + 0.5)
         right.axhline(budget, color=OKABE_ITO["black"], linestyle="--", linewidth=1,
-                      label=f"budget {budget:.1f} core-h")
+                      label=f"budget {budget:.3g} core-h")
         right.set_xlabel("candidates in rank order")
         right.set_ylabel("core-hours")
         right.set_ylim(0, max(budget, float(np.sum(mid))) * 1.15)

@@ -89,7 +89,8 @@ def figures(data: ReportData) -> dict[str, Any]:
     ]
     ex = data.explanation
     out["waterfalls"] = {
-        row.id: png(plot_waterfall(ex, row.id, title=f"#{row.rank} {row.id} ({row.formula})"))
+        row.id: png(plot_waterfall(ex, row.id, title=f"#{row.rank} {row.id} ({row.formula})",
+                                   calibrated=row.probability))
         for row in data.proposals
     }
     out["cost"] = [("fig-cost", "Predicted cost of the batch",
