@@ -415,3 +415,18 @@ def test_summary_shows_skill_cheapest_first_and_overrun(built, collected):
     assert skill["roc_auc"] == pytest.approx(roc_auc_score(v.y, v.p_oof))
     assert 0.0 <= float(by_id["overrun"]["data-value"]) <= 1.0
     assert "no-replay" not in by_id  # this report has discovery curves
+
+
+def test_picks_scored_like_known_non_hits_are_counted(built, collected):
+    from prescreen.acquire.rounds import _feature_columns, candidate_features, load_model
+
+    camp = built["campaign"]
+    labels = camp.labels()
+
+    clf, _ = load_model(camp)
+    feats = _feature_columns(candidate_features(camp, progress=False))
+    negatives = labels.index[labels["spillage"] < camp.threshold]
+    ceiling = clf.predict_proba(feats.loc[negatives])[:, 1].max()
+    assert collected.negative_ceiling == pytest.approx(ceiling)
+    assert collected.picks_at_or_below_negatives == sum(
+        r.probability <= ceiling for r in collected.proposals)

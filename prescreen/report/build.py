@@ -301,6 +301,10 @@ class ReportData:
     invariants: tuple[InvariantRow, ...] = ()
     #: Pooled out-of-fold ROC-AUC with a 95 % bootstrap interval (None without validation).
     skill: dict[str, float] | None = None
+    #: Highest probability the round's model gives one of the campaign's labelled
+    #: non-hits (None when it has none), and how many picks score no higher.
+    negative_ceiling: float | None = None
+    picks_at_or_below_negatives: int | None = None
 
 
 #: Draws of the Monte Carlo estimates in the report (seeded; chosen here).
@@ -700,6 +704,8 @@ def collect(
     fitted, source = cost_model_with_source(campaign)
     cost_model = fitted.as_dict()
     cost_model["source"] = source
+    ceiling = _negative_ceiling(model, feats, labels, threshold,
+                                getattr(model, "min_gap_eV_", None))
     return ReportData(
         campaign_name=campaign.name, campaign_path=str(campaign.path),
         generated_at=_dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
@@ -714,7 +720,25 @@ def collect(
         positive_rule=positive_rule(threshold, getattr(model, "min_gap_eV_", None)),
         invariants=_invariants(campaign, labels),
         skill=None if validation is None else roc_auc_interval(validation.y, validation.p_oof),
+        negative_ceiling=ceiling,
+        picks_at_or_below_negatives=(None if ceiling is None else
+                                     sum(r.probability <= ceiling for r in rows)),
     )
+
+
+def _negative_ceiling(model: Any, feats: Any, labels: Any, threshold: float,
+                      min_gap_eV: float | None) -> float | None:
+    """The highest probability ``model`` gives a labelled non-hit of the campaign."""
+    if not len(labels):
+        return None
+    spill = labels["spillage"].to_numpy(float)
+    hit = spill >= threshold
+    if min_gap_eV is not None:
+        hit &= labels["gap_soc_eV"].to_numpy(float) >= min_gap_eV  # NaN gap: no hit
+    ids = [i for i in labels.index[~hit] if i in feats.index]
+    if not ids:
+        return None
+    return float(np.max(model.predict_proba(feats.loc[ids])[:, 1]))
 
 
 def build_report(
