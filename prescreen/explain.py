@@ -587,8 +587,7 @@ def plot_waterfall(explanation: Explanation, row: int | str, *, max_display: int
         ax.axvline(margin, color=OKABE_ITO["black"], linewidth=1.0)
         ax.set_yticks(y, labels)
         if calibrated is not None:
-            second = (f"(calibrated probability {calibrated:.2f}; the bars are the "
-                      "ensemble's raw log-odds)")
+            second = f"(calibrated probability {calibrated:.2f}; bars: raw log-odds)"
         else:
             p = 1.0 / (1.0 + np.exp(-margin))
             second = f"(uncalibrated p = 1/(1+exp({-margin:+.2f})) = {p:.2f})"

@@ -197,7 +197,7 @@ def cost_figure(rows: tuple[ProposalRow, ...], budget: float) -> Figure:
         left.errorbar(mid[ok], y[ok], xerr=[mid[ok] - low[ok], high[ok] - mid[ok]],
                       fmt="none", color="black", capsize=3, linewidth=1)
         left.set_yticks(y, [f"{r.id} ({r.formula})" for r in rows])
-        left.set_xlabel("predicted cost (core-hours; bar: central, line: 90 % interval)")
+        left.set_xlabel("predicted core-hours\n(bar: central; line: 90 % interval)")
         left.set_title("Cost per candidate")
         steps = np.arange(1, len(rows) + 1)
         right.plot(steps, np.cumsum(mid), color=OKABE_ITO["orange"], linewidth=2, marker="o",
@@ -211,7 +211,7 @@ def cost_figure(rows: tuple[ProposalRow, ...], budget: float) -> Figure:
         right.set_xlabel("candidates in rank order")
         right.set_ylabel("core-hours")
         right.set_ylim(0, max(budget, float(np.sum(mid))) * 1.15)
-        right.legend(loc="lower right")
+        right.legend(loc="upper left")
         right.set_title("Batch total against budget")
         for ax in (left, right):
             _tidy(ax)
