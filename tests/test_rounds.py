@@ -257,6 +257,11 @@ def test_round_records_the_stop_rule_over_the_pool_it_leaves(trained):
     assert after["expected_hits_left"] == pytest.approx(left["probability"].sum())
     assert after["hits_left_low"] <= after["expected_hits_left"] <= after["hits_left_high"]
     assert after == rnd.after
+    # a hit worth less than the expected cost of the next one: the rule says stop
+    cheap = rounds.propose(camp, budget_core_hours=_budget(ranking, 0.05), seed=5,
+                           max_core_hours_per_hit=after["core_hours_to_next_hit"] / 100,
+                           progress=False)
+    assert cheap.after["advice"].startswith("stop: the next hit is expected to cost")
 
 
 def test_campaign_filter_keeps_matching_results_only(trained):

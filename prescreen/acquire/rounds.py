@@ -671,6 +671,7 @@ def propose(
     diversity: float | None = None,
     seed: int = DEFAULT_SEED,
     ranking: pd.DataFrame | None = None,
+    max_core_hours_per_hit: float | None = None,
     progress: bool = True,
 ) -> ProposedRound:
     """Pick the next batch under a core-hour budget and record it as a round.
@@ -678,6 +679,9 @@ def propose(
     Only candidates with a structure that are monolayers (or ambiguous), not duplicates,
     not labelled and not pending in an earlier round can be picked. The same campaign
     state and seed give the same proposal, bit for bit.
+
+    ``max_core_hours_per_hit`` (what a hit is worth to you) lets the stop rule advise
+    stopping when the next hit is expected to cost more.
 
     ``diversity`` (a weight in [0, 1]) goes to strategies that take one; None means
     :data:`DEFAULT_DIVERSITY` for those and nothing for the others. A value for a
@@ -697,6 +701,9 @@ def propose(
     if not (budget_core_hours > 0 and math.isfinite(budget_core_hours)):
         raise InputError("bad budget", value=budget_core_hours,
                          expected="a finite number of core-hours > 0")
+    if max_core_hours_per_hit is not None and not (0 < max_core_hours_per_hit < math.inf):
+        raise InputError("bad worth of a hit", value=max_core_hours_per_hit,
+                         expected="a finite number of core-hours > 0, or none")
     options = _strategy_options(strategy, diversity)
     func = strategy_by_name(strategy, **options)
     ranked = rank(campaign, progress=progress) if ranking is None else ranking
@@ -728,7 +735,7 @@ def propose(
             expected=f"at least {pool.at[cheapest, 'cost_core_hours']:.3g} core-hours (the "
                      f"cheapest candidate, {cheapest})")
     table = proposal.to_frame().set_index("id")
-    after = _stop_rule(pool.drop(index=table.index))
+    after = _stop_rule(pool.drop(index=table.index), max_core_hours_per_hit)
     table["formula"] = pool.loc[table.index, "formula"]
     table["flags"] = pool.loc[table.index, "flags"]
     rows = [{"id": cid, "probability": float(r.probability), "uncertainty": float(r.spread),
@@ -798,14 +805,16 @@ def _pool_summary(pool: pd.DataFrame, budget: float | None = None) -> dict[str, 
     return out
 
 
-def _stop_rule(rest: pd.DataFrame) -> dict[str, Any]:
+def _stop_rule(rest: pd.DataFrame, max_core_hours_per_hit: float | None = None
+               ) -> dict[str, Any]:
     """The stop rule over the candidates a round left in the pool, as plain numbers."""
     from dataclasses import asdict
 
     from prescreen.acquire.stopping import stop_estimate
 
     est = stop_estimate(rest["probability"].to_numpy(float),
-                        rest["cost_core_hours"].to_numpy(float))
+                        rest["cost_core_hours"].to_numpy(float),
+                        max_core_hours_per_hit=max_core_hours_per_hit)
     return {k: (float(v) if isinstance(v, (int, float, np.floating)) else v)
             for k, v in asdict(est).items()}
 

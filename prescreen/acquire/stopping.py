@@ -124,8 +124,8 @@ def stop_estimate(p, cost, *, max_core_hours_per_hit: float | None = None,
     elif high < 1:
         advice = f"stop: fewer than one hit expected even at the upper {level:.0%} bound"
     elif max_core_hours_per_hit is not None and to_next > max_core_hours_per_hit:
-        advice = (f"stop: the next hit is expected to cost {to_next:.1f} core-h, more than "
-                  f"{max_core_hours_per_hit:.1f}")
+        advice = (f"stop: the next hit is expected to cost {to_next:.3g} core-h, more than "
+                  f"{max_core_hours_per_hit:.3g}")
     else:
         advice = f"continue: {mean:.1f} hits expected left ({low:.0f}-{high:.0f})"
     return StopEstimate(

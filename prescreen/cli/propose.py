@@ -18,6 +18,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="weight of feature-space diversity in [0, 1] (default 0.3 for "
                         "the strategies that take one; random_selection takes none)")
     parser.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
+    parser.add_argument("--max-core-hours-per-hit", type=float, default=None, metavar="H",
+                        help="what a hit is worth to you: the stop rule advises stopping when "
+                        "the next hit is expected to cost more core-hours than this")
     parser.add_argument("--no-progress", action="store_true", help="hide progress bars")
 
 
@@ -27,7 +30,9 @@ def run(args: argparse.Namespace) -> int:
 
     with Campaign.open(args.campaign) as campaign:
         rnd = propose(campaign, budget_core_hours=args.budget, strategy=args.strategy,
-                      diversity=args.diversity, seed=args.seed, progress=not args.no_progress)
+                      diversity=args.diversity, seed=args.seed,
+                      max_core_hours_per_hit=args.max_core_hours_per_hit,
+                      progress=not args.no_progress)
     low, high = rnd.expected_hits_interval
     print(f"round {rnd.number}: {len(rnd.table)} candidates, {rnd.total_cost:.3g} of "
           f"{rnd.budget:g} core-hours ({rnd.strategy})")
