@@ -121,9 +121,13 @@ def calibration_figure(y: np.ndarray, p: np.ndarray, n_bins: int = 10) -> Figure
     """Reliability diagram: observed hit fraction against mean predicted probability.
 
     Equal-width bins (as :func:`prescreen.validation.expected_calibration_error`); the
-    marker area grows with the number of rows in the bin, written beside each point.
+    marker area grows with the number of rows in the bin, written beside each point; the
+    bars are 95 % Wilson score intervals of the observed fraction (scipy's
+    ``binomtest(...).proportion_ci(method="wilson")``); ticks along the bottom show where
+    the predictions fall (a narrow band means an unsharp model, whatever its ECE).
     """
     import matplotlib as mpl
+    from scipy import stats
 
     from prescreen.validation import expected_calibration_error
 
@@ -138,6 +142,16 @@ def calibration_figure(y: np.ndarray, p: np.ndarray, n_bins: int = 10) -> Figure
         fig, (ax,) = _figure(4.2)
         ax.plot([0, 1], [0, 1], color="0.5", linestyle="--", linewidth=1, label="perfect calibration")
         ax.plot(mean_p, frac, color=OKABE_ITO["green"], linewidth=1.5)
+        hits = np.bincount(bins, weights=y, minlength=n_bins)[used].round().astype(int)
+        ci = [stats.binomtest(int(k), int(n)).proportion_ci(confidence_level=0.95,
+                                                            method="wilson")
+              for k, n in zip(hits, count[used])]
+        ax.errorbar(mean_p, frac, yerr=[frac - np.array([c.low for c in ci]),
+                                        np.array([c.high for c in ci]) - frac],
+                    fmt="none", color=OKABE_ITO["green"], capsize=3, linewidth=1,
+                    label="95 % Wilson interval")
+        ax.plot(p, np.full(len(p), -0.01), "|", color="0.3", markersize=8,
+                label="out-of-fold predictions")
         ax.scatter(mean_p, frac, s=20 + 180 * count[used] / count.max(), color=OKABE_ITO["green"],
                    zorder=3, label=f"model (ECE {expected_calibration_error(y, p, n_bins=n_bins):.3f})")
         for x, f, c in zip(mean_p, frac, count[used]):
@@ -145,7 +159,7 @@ def calibration_figure(y: np.ndarray, p: np.ndarray, n_bins: int = 10) -> Figure
         ax.set_xlabel(f"mean predicted probability in bin ({n_bins} equal-width bins)")
         ax.set_ylabel("observed fraction with high spillage")
         ax.set_xlim(0, 1)
-        ax.set_ylim(-0.02, 1.02)
+        ax.set_ylim(-0.03, 1.02)
         ax.set_aspect("equal")
         ax.legend(loc="upper left")
         ax.set_title("Calibration (reliability) curve, out of fold")
