@@ -399,6 +399,7 @@ def plot_flow(result: WilsonZ2, ax: Any = None) -> Any:
     ax.set_ylim(0.0, 1.0)
     ax.set_xlabel("$k_2$ (units of $b_2$)")
     ax.set_ylabel("Wannier charge centre (units of $a_1$)")
-    ax.set_title(f"{result.id or result.formula}: Z2 = {result.z2}")
+    name = result.formula if not result.id else f"{result.id} ({result.formula})"
+    ax.set_title(f"{name}: Z2 = {result.z2}")
     ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), fontsize="small", frameon=False)
     return ax
