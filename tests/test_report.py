@@ -397,6 +397,13 @@ def test_roc_auc_interval_brackets_scikit_learns_value():
     p = np.clip(0.3 * y + rng.random(80) * 0.7, 0, 1)
     out = roc_auc_interval(y, p)
     assert out["roc_auc"] == pytest.approx(roc_auc_score(y, p))
+    # the vectorised resample AUCs equal scikit-learn's, ties included
+    from prescreen.report.build import _auc_rows
+
+    idx = np.random.default_rng(1).integers(0, 80, (5, 80))
+    coarse = np.round(p, 1)  # many ties
+    np.testing.assert_allclose(_auc_rows(y[idx], coarse[idx]),
+                               [roc_auc_score(y[i], coarse[i]) for i in idx])
     assert out["low"] < out["roc_auc"] < out["high"]
     assert np.isnan(roc_auc_interval(np.ones(5), np.linspace(0, 1, 5))["roc_auc"])
 

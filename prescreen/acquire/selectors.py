@@ -230,7 +230,8 @@ def diverse_within_budget(
     if lab is not None and lab.shape[0]:
         for row in Z[n:]:
             nearest = np.minimum(nearest, np.linalg.norm(pool - row, axis=1))
-    where = "batch" if lab is None or lab.shape[0] == 0 else "labelled and batch"
+    where = ("batch so far" if lab is None or lab.shape[0] == 0
+             else "labelled rows and the batch so far")
     available = np.ones(n, dtype=bool)
     left = b
     picked: list[int] = []
@@ -251,9 +252,10 @@ def diverse_within_budget(
         j = int(_descending(util)[0])
         i = int(cand[j])
         s_rank = int(np.sum(s[cand] > s[i])) + 1
-        note = f"score rank {s_rank} of {cand.size} left"
+        note = f"score rank {s_rank} of the {cand.size} that still fit (1 = best)"
         if d_rank is not None:
-            note += f", novelty rank {int(d_rank[j])} of {cand.size} (distance to {where})"
+            note += (f", novelty rank {int(d_rank[j])} (1 = farthest from the "
+                     f"{where})")
         picked.append(i)
         notes.append(note)
         available[i] = False

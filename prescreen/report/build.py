@@ -354,15 +354,26 @@ def roc_auc_interval(y: Any, p: Any, *, level: float = 0.95, draws: int = 2000,
         return out
     out["roc_auc"] = float(roc_auc_score(y, p))
     rng = np.random.default_rng(seed)
-    scores = []
-    for _ in range(draws):
-        idx = rng.integers(0, len(y), len(y))
-        if 0 < y[idx].sum() < len(idx):
-            scores.append(roc_auc_score(y[idx], p[idx]))
-    if scores:
+    idx = rng.integers(0, len(y), (draws, len(y)))
+    scores = _auc_rows(y[idx], p[idx])
+    scores = scores[np.isfinite(scores)]
+    if scores.size:
         out["low"], out["high"] = (float(q) for q in
                                    np.quantile(scores, [(1 - level) / 2, (1 + level) / 2]))
     return out
+
+
+def _auc_rows(y: np.ndarray, p: np.ndarray) -> np.ndarray:
+    """ROC-AUC of each row of ``(m, n)`` labels and scores (Mann-Whitney U over average
+    ranks, so ties count one half); NaN for a row with one class."""
+    from scipy.stats import rankdata
+
+    ranks = rankdata(p, axis=1)
+    pos = y.sum(axis=1).astype(float)
+    neg = y.shape[1] - pos
+    u = (ranks * y).sum(axis=1) - pos * (pos + 1) / 2
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where((pos > 0) & (neg > 0), u / (pos * neg), np.nan)
 
 
 # ------------------------------------------------------------------------------ helpers
