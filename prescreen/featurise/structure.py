@@ -296,7 +296,9 @@ class MonolayerStructureFeaturiser:
     """
 
     name = "monolayer_structure"
-    version = "1"
+    #: 2: atoms placed as one contiguous layer before the bond search and the layer
+    #: group (a layer across the cell edge, or unwrapped coordinates, lost bonds in 1).
+    version = "2"
 
     def __init__(self, *, axis: int | None = None, symprec: float = SYMPREC_A) -> None:
         self.axis = axis
