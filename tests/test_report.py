@@ -437,3 +437,16 @@ def test_picks_scored_like_known_non_hits_are_counted(built, collected):
     assert collected.negative_ceiling == pytest.approx(ceiling)
     assert collected.picks_at_or_below_negatives == sum(
         r.probability <= ceiling for r in collected.proposals)
+
+
+def test_the_importance_caption_says_correlation_and_ranks_the_spin_orbit_features(built):
+    from prescreen.report.render import _proxy_note
+
+    data = collect(built["campaign"], use_open=False)
+    ge = data.global_explanation
+    order = list(np.argsort(-ge.importance(), kind="stable"))
+    first_soc = next(k for k in order if ge.feature_names[k].startswith("soc "))
+    note = _proxy_note(ge, data)
+    assert f"is {order.index(first_soc) + 1} of {len(order)}." in note
+    assert "These are correlations the model learned from" in note
+    assert note.strip() in " ".join(" ".join(parse(built["html"]).text).split())

@@ -12,6 +12,8 @@ from __future__ import annotations
 import math
 from typing import TYPE_CHECKING, Any
 
+import numpy as np
+
 if TYPE_CHECKING:  # pragma: no cover
     from prescreen.report.build import ReportData
 
@@ -37,6 +39,19 @@ def _fmt(value: Any, digits: int = 3) -> str:
     if v == int(v) and abs(v) < 1e15 and digits <= 0:
         return f"{int(v)}"
     return f"{v:.{digits}f}"
+
+
+def _proxy_note(ge: Any, data: ReportData) -> str:
+    """What the importances are (correlations) and where spin-orbit features rank."""
+    rows = "" if data.validation is None else f" from {len(data.validation.y)} labelled rows"
+    text = f" These are correlations the model learned{rows}, not mechanisms."
+    order = list(np.argsort(-ge.importance(), kind="stable"))
+    soc = [k for k in order if ge.feature_names[k].startswith("soc ")]
+    if soc:
+        k = soc[0]
+        text += (f" The highest-ranked spin-orbit feature, {ge.display_names[k]}, is "
+                 f"{order.index(k) + 1} of {len(order)}.")
+    return text
 
 
 def _cv_cell(column: str, value: Any) -> str:
@@ -78,8 +93,8 @@ def figures(data: ReportData) -> dict[str, Any]:
          "core-hour times the batch's cost). Right: expected hits per predicted core-hour.", png(F.expected_hits_figure(data.round, data.positive_rule or "spillage ≥ threshold")))]}
     out["shap"] = [
         ("fig-shap-bar", "Which features matter (mean |SHAP|)",
-         f"Mean absolute SHAP value over {len(ge.row_ids)} pool candidates. " + PROBABILITY_NOTE,
-         png(plot_bar(ge))),
+         f"Mean absolute SHAP value over {len(ge.row_ids)} pool candidates. " + PROBABILITY_NOTE
+         + _proxy_note(ge, data), png(plot_bar(ge))),
         ("fig-shap-beeswarm", "How each feature moves each candidate",
          "One dot per candidate; colour gives the feature value (low to high within these "
          "rows); right of zero raises the log-odds of high spillage.", png(plot_beeswarm(ge))),
