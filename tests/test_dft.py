@@ -194,6 +194,9 @@ def test_band_gap(eigs, n, expected):
         ({"vacuum_A": 2.0}, "vacuum_A out of range"),
         ({"smearing_eV": -0.1}, "smearing_eV out of range"),
         ({"soc_scale": float("nan")}, "soc_scale out of range"),
+        ({"spinpol": "no"}, "spinpol must be True or False"),
+        ({"initial_magmom_muB": float("nan")}, "initial_magmom_muB must be a finite"),
+        ({"smearing_eV": True}, "smearing_eV out of range"),
     ],
 )
 def test_bad_settings_are_refused(kwargs, match):

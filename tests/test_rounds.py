@@ -231,6 +231,26 @@ def test_label_pending_ingests_and_clears_pending(trained):
     assert again.n_ingested == 0  # resumed from the checkpoint; nothing new
 
 
+def failing_compute(structure, settings, *, id=None):
+    """Stand-in for a calculation that dies (a timeout, say)."""
+    raise RuntimeError("stand-in failure")
+
+
+def test_a_failed_calculation_is_computed_again_only_when_asked(trained):
+    camp, _ = trained
+    rounds.propose(camp, budget_core_hours=_budget(rounds.rank(camp, progress=False), 0.1),
+                   progress=False)
+    cid = camp.pending_ids()[0]
+    first = rounds.label_pending(camp, ids=[cid], compute=failing_compute, progress=False)
+    assert (first.n_ok, first.n_failed) == (0, 1) and "stand-in failure" in first.failures[0][1]
+    again = rounds.label_pending(camp, ids=[cid], compute=rule_compute, progress=False)
+    assert (again.n_ok, again.n_failed, again.n_ingested) == (0, 1, 0)  # not "labelled"
+    retried = rounds.label_pending(camp, ids=[cid], compute=rule_compute, retry_failed=True,
+                                   progress=False)
+    assert (retried.n_ok, retried.n_failed, retried.n_ingested) == (1, 0, 1)
+    assert cid in camp.labels().index and cid not in camp.pending_ids()
+
+
 def test_one_class_training_data_is_a_clear_error(tmp_path):
     camp = _new_campaign(tmp_path / "one")
     items = _structures()[:6]
@@ -396,3 +416,19 @@ def test_cost_descriptors_are_computed_once_per_candidate(trained, monkeypatch):
     assert calls == []  # read from the campaign's cache
     pd.testing.assert_series_equal(again["cost_core_hours"], first["cost_core_hours"])
     assert np.isnan(again.loc["f-only", "cost_core_hours"])
+
+
+def test_labelling_without_gpaw_stops_before_recording_any_failure(trained, monkeypatch):
+    import importlib.util
+
+    camp, _ = trained
+    real = importlib.util.find_spec
+    monkeypatch.setattr(importlib.util, "find_spec",
+                        lambda name, *a: None if name == "gpaw" else real(name, *a))
+    before = (camp.path / "labels" / "records.jsonl").read_text() \
+        if (camp.path / "labels" / "records.jsonl").exists() else ""
+    with pytest.raises(CampaignError, match="GPAW is not installed.*make dft-env"):
+        rounds.label_pending(camp, ids=camp.candidate_ids()[:1], progress=False)
+    after = (camp.path / "labels" / "records.jsonl").read_text() \
+        if (camp.path / "labels" / "records.jsonl").exists() else ""
+    assert after == before

@@ -841,6 +841,7 @@ def label_pending(
     settings: Any = None,
     progress: bool = True,
     compute: Any = None,
+    retry_failed: bool = False,
 ) -> LabelOutcome:
     """Compute spillage with the DFT labeller for pending proposals and ingest it.
 
@@ -859,11 +860,27 @@ def label_pending(
     compute
         Replacement for the DFT calculation (tests); see
         :func:`prescreen.physics.labeller.run_labelling`.
+    retry_failed
+        Compute again the candidates whose earlier calculation failed (a timeout, a
+        worker that died); without it they are reported as failed again.
     """
+    import importlib.util
+    import warnings
+
+    from prescreen.errors import PrescreenWarning
     from prescreen.io.results import ResultRow
     from prescreen.physics.dft import LabelSettings
     from prescreen.physics.labeller import load_records, run_labelling
 
+    if compute is None and importlib.util.find_spec("gpaw") is None:
+        # checked here, not in each worker: a failure per candidate would be recorded
+        raise CampaignError("GPAW is not installed, so nothing can be labelled; install it "
+                            "with `make dft-env` (or `bash scripts/install_gpaw.sh .venv`)")
+    cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count()
+    if cores and workers > cores:
+        warnings.warn(f"{workers} workers on {cores} cores: the calculations share cores, "
+                      "run longer than their timeout allows and record inflated core-hours; "
+                      f"use --workers {cores} or fewer", PrescreenWarning, stacklevel=2)
     settings = settings or LabelSettings()
     wanted = list(ids) if ids is not None else campaign.pending_ids()
     if not wanted:
@@ -878,7 +895,8 @@ def label_pending(
     out_dir = campaign.path / "labels"
     kwargs = {"compute": compute} if compute is not None else {}
     summary = run_labelling(jobs, out_dir, settings=settings, workers=workers,
-                            timeout_s=timeout_s, progress=progress, **kwargs)
+                            timeout_s=timeout_s, progress=progress, retry_failed=retry_failed,
+                            **kwargs)
     newest = {r.id: r for r in load_records(out_dir)}
     rows, failures = [], []
     for cid in wanted:
@@ -898,7 +916,8 @@ def label_pending(
             "consistent spin-orbit coupling)", source=f"{out_dir / 'records.jsonl'}:{cid}",
         ))
     report = campaign.ingest_results((rows, []), on_conflict="keep")
-    return LabelOutcome(n_jobs=len(jobs), n_ok=summary.n_ok + summary.n_skipped,
+    n_ok = sum(1 for cid in wanted if cid in newest and newest[cid].ok)
+    return LabelOutcome(n_jobs=len(jobs), n_ok=n_ok,
                         n_failed=len(failures), n_ingested=report.added,
                         failures=tuple(failures), core_hours=float(summary.core_hours),
                         out_dir=out_dir)

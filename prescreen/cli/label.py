@@ -14,6 +14,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="parallel single-core calculations (default 1)")
     parser.add_argument("--timeout", type=float, default=1800.0,
                         help="wall-time limit per structure in seconds (default 1800)")
+    parser.add_argument("--retry-failed", action="store_true",
+                        help="compute again the candidates whose earlier calculation failed "
+                        "(e.g. a timeout: raise --timeout as well)")
     parser.add_argument("--z2", action="store_true",
                         help="then compute the Z2 invariant (parities at the TRIMs, or Wilson loops "
                         "without an inversion centre) of every "
@@ -28,11 +31,15 @@ def run(args: argparse.Namespace) -> int:
     with Campaign.open(args.campaign) as campaign:
         wanted = args.ids or campaign.pending_ids()
         out = label_pending(campaign, ids=args.ids or None, workers=args.workers,
-                            timeout_s=args.timeout, progress=not args.no_progress)
+                            timeout_s=args.timeout, progress=not args.no_progress,
+                            retry_failed=args.retry_failed)
         print(f"labelled {out.n_ok} of {out.n_jobs} ({out.core_hours:.3f} core-hours this "
               f"run); ingested {out.n_ingested} new results")
         for cid, reason in out.failures:
             print(f"  failed: {cid}: {reason}")
+        if out.failures and not args.retry_failed:
+            print("  (failed candidates stay pending; `prescreen label "
+                  f"{args.campaign} --retry-failed` computes them again)")
         print(f"raw records in {out.out_dir}")
         if args.z2:
             from prescreen.cli.z2 import print_outcomes

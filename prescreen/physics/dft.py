@@ -64,8 +64,10 @@ __all__ = [
 DEFAULT_VACUUM_A: float = 15.0
 
 #: k-point density (points per reciprocal Angstrom, |b| including the 2 pi): each
-#: in-plane mesh size is at least ``density * |b_i|``. 5.0 gives 12x12 for buckled
-#: Bi/Sn honeycombs and 15x15 for MoS2. Common practice, not from a published bound.
+#: in-plane mesh size is at least ``density * |b_i|`` (rounded up to a multiple of 3 on
+#: hexagonal cells, so that K is on the mesh). 5.0 gives 9x9 for buckled Bi/Sn/Ge
+#: honeycombs, 12x12 for MoS2 and 15x15 for graphene and hBN. Common practice, not
+#: from a published bound.
 DEFAULT_KPT_DENSITY: float = 5.0
 
 #: Smallest in-plane mesh size accepted (points).
@@ -138,9 +140,18 @@ class LabelSettings:
             object.__setattr__(self, "kpts", k)
         for name, low in (("kpt_density", 0.0), ("smearing_eV", 0.0), ("vacuum_A", 5.0)):
             value = getattr(self, name)
-            if not (isinstance(value, (int, float)) and math.isfinite(value) and value > low):
+            if not (isinstance(value, (int, float)) and not isinstance(value, bool)
+                    and math.isfinite(value) and value > low):
                 raise InputError(f"LabelSettings.{name} out of range", value=value,
                                  expected=f"a finite number > {low}")
+        if not isinstance(self.spinpol, bool):  # "no" would count as true
+            raise InputError("LabelSettings.spinpol must be True or False", value=self.spinpol,
+                             expected="a bool")
+        if not (isinstance(self.initial_magmom_muB, (int, float))
+                and not isinstance(self.initial_magmom_muB, bool)
+                and math.isfinite(self.initial_magmom_muB)):
+            raise InputError("LabelSettings.initial_magmom_muB must be a finite number",
+                             value=self.initial_magmom_muB, expected="e.g. 1.0 (Bohr magnetons)")
         if not (math.isfinite(self.soc_scale) and self.soc_scale >= 0):
             raise InputError("LabelSettings.soc_scale out of range", value=self.soc_scale,
                              expected="a finite number >= 0 (1 = physical)")
