@@ -26,11 +26,17 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
 
 def print_outcomes(outcomes, path: Path) -> None:
     """One line per candidate, where the file is, and the caution."""
+    computed = 0
     for outcome in outcomes:
         print(f"  {outcome.describe()}")
+        computed += outcome.row.get("status") == "ok"
     print(f"written to {path}")
-    print("note: Z2 = 1 at this level of theory (PBE, LCAO, SOC added non-self-consistently) "
-          "is strong evidence, not proof; check the gap and the functional.")
+    if computed:
+        print("note: Z2 = 1 at this level of theory (PBE, LCAO, SOC added non-self-"
+              "consistently, spin-paired) is strong evidence, not proof; check the gap, the "
+              "functional and whether the layer is magnetic.")
+    else:
+        print("no invariant was computed: every candidate was refused (reasons above)")
 
 
 def run(args: argparse.Namespace) -> int:

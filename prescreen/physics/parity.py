@@ -34,9 +34,10 @@ PBE, dzp, spin-orbit coupling added non-self-consistently):
 The eigenvalues are checked: they must lie within :data:`PARITY_TOL` of +-1 and the
 minus signs must come in pairs, else the result is refused (a basis-convention or
 degeneracy problem, never a silent guess). The method needs an insulator with spin-orbit
-coupling at every TRIM; metals and magnets are refused with the reason. Layers without
-an inversion centre need Wilson loops (:mod:`prescreen.physics.z2` for model
-Hamiltonians) instead.
+coupling at every TRIM; metals and magnetic settings are refused with the reason (a
+spin-paired run of a layer that is really magnetic is not detected here). Layers
+without an inversion centre need Wilson loops (:mod:`prescreen.physics.wilson`)
+instead.
 """
 
 from __future__ import annotations
