@@ -227,8 +227,9 @@ def test_label_pending_ingests_and_clears_pending(trained):
     assert (out.n_jobs, out.n_ok, out.n_ingested) == (2, 2, 2)
     assert set(pending[:2]) <= set(camp.labels().index)
     assert not set(pending[:2]) & set(camp.pending_ids())
-    again = rounds.label_pending(camp, ids=pending[:2], compute=rule_compute, progress=False)
-    assert again.n_ingested == 0  # resumed from the checkpoint; nothing new
+    # naming them again would recompute results that cannot be stored: refused up front
+    with pytest.raises(InputError, match="already have a result"):
+        rounds.label_pending(camp, ids=pending[:2], compute=rule_compute, progress=False)
 
 
 def failing_compute(structure, settings, *, id=None):

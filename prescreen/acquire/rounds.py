@@ -885,6 +885,13 @@ def label_pending(
     wanted = list(ids) if ids is not None else campaign.pending_ids()
     if not wanted:
         raise CampaignError("nothing to label: no pending proposals (propose a round first)")
+    known = campaign.labels().index
+    done = [cid for cid in wanted if cid in known]
+    if ids is not None and done:
+        # computing them again would cost core-hours for a result that is not stored
+        raise InputError("these candidates already have a result", value=", ".join(done[:10]),
+                         expected="unlabelled IDs (to replace a result, ingest it with "
+                                  "`prescreen ingest --on-conflict replace`)")
     jobs = []
     for cid in wanted:
         structure = campaign.structure(cid)
