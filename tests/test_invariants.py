@@ -123,6 +123,7 @@ def test_label_with_z2_checks_the_new_gapped_hits(campaign, monkeypatch, capsys)
     assert main(["label", str(path), "c0", "c1", "c2", "--z2", "--no-progress"]) == 0
     out = capsys.readouterr().out
     assert "Z2 of 1 hit(s) with a band gap with SOC" in out  # c0 only: c1 is a metal
+    assert "hits (spillage >= 0.5): 2 of 3; 1 with a band gap with SOC, 1 metals" in out
     assert "c0: no invariant: c0: no direct gap with spin-orbit coupling (stand-in)" in out
     assert list(read_invariants(path / INVARIANTS_FILE)) == ["c0"]
 

@@ -37,6 +37,16 @@ def run(args: argparse.Namespace) -> int:
               f"run); ingested {out.n_ingested} new results")
         for cid, reason in out.failures:
             print(f"  failed: {cid}: {reason}")
+        labels = campaign.labels()
+        mine = labels.loc[[c for c in wanted if c in labels.index]]
+        hits = mine[mine["spillage"] >= campaign.threshold]
+        if len(mine):
+            from prescreen.physics.dft import METAL_GAP_EV
+
+            gapped = int((hits["gap_soc_eV"] >= METAL_GAP_EV).sum())
+            print(f"hits (spillage >= {campaign.threshold:g}): {len(hits)} of {len(mine)}; "
+                  f"{gapped} with a band gap with SOC, {len(hits) - gapped} metals or "
+                  "semimetals (`prescreen train --min-gap` leaves those out of the positives)")
         if out.failures and not args.retry_failed:
             print("  (failed candidates stay pending; `prescreen label "
                   f"{args.campaign} --retry-failed` computes them again)")
