@@ -181,7 +181,7 @@ def choose_method(structure: Any, method: str = "auto", settings: Any = None) ->
     Raises
     ------
     InputError
-        An unknown method.
+        An unknown method, or a structure that is not a monolayer slab.
     """
     if method not in METHODS:
         raise InputError("unknown Z2 method", value=method, expected=" or ".join(METHODS))
@@ -191,9 +191,10 @@ def choose_method(structure: Any, method: str = "auto", settings: Any = None) ->
     from prescreen.physics.parity import inversion_map
 
     settings = settings or LabelSettings()
+    layer = prepare_monolayer(structure, settings.vacuum_A)  # a bad input is refused as such
     try:
-        inversion_map(prepare_monolayer(structure, settings.vacuum_A))
-    except InputError:
+        inversion_map(layer)
+    except InputError:  # no inversion centre
         return "wilson"
     return "parity"
 
