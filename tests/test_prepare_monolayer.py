@@ -48,3 +48,23 @@ def test_a_layer_that_breaks_in_the_pre_relaxation_skips_the_lattice_scan(monkey
     made.clear()
     relaxed, _, _ = dft.relax_monolayer(layer, check_layer=lambda atoms: "", steps=2)
     assert any("scale" in name for name in made) and made[-1].endswith("relax-final.txt")
+
+
+@pytest.mark.parametrize("axis", [0, 1])
+def test_vacuum_along_a1_or_a2_is_turned_to_a3_keeping_distances(axis):
+    # the same 2H-MoS2 layer with its vacuum along another lattice vector: the monolayer
+    # check accepts it, so the labeller must too (distances by ASE's minimum image)
+    layer = mx2("MoS2", "2H", a=3.18, thickness=3.13, vacuum=9.0)
+    order = [(axis + 1) % 3, (axis + 2) % 3, axis]
+    inverse = np.argsort(order)
+    from ase import Atoms
+
+    turned = Atoms(layer.numbers, cell=np.asarray(layer.cell)[inverse],
+                   scaled_positions=layer.get_scaled_positions()[:, inverse], pbc=True)
+    out = prepare_monolayer(turned, vacuum_A=15.0)
+    ref = prepare_monolayer(layer, vacuum_A=15.0)
+    np.testing.assert_allclose(out.cell.cellpar(), ref.cell.cellpar(), atol=1e-9)
+    for a in (out, ref):
+        a.pbc = True
+    np.testing.assert_allclose(np.sort(out.get_all_distances(mic=True).ravel()),
+                               np.sort(ref.get_all_distances(mic=True).ravel()), atol=1e-9)

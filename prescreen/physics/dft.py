@@ -355,8 +355,9 @@ def prepare_monolayer(structure: "Structure | Atoms", vacuum_A: float = DEFAULT_
     Parameters
     ----------
     structure
-        A monolayer whose third lattice vector is out of plane, with an empty gap of at
-        least :data:`MIN_SLAB_GAP_A` along the normal.
+        A monolayer with an empty gap of at least :data:`MIN_SLAB_GAP_A` along the
+        normal; the lattice vector across the widest gap is taken as out of plane (the
+        axes are relabelled cyclically when it is a1 or a2).
     vacuum_A
         Total vacuum (Angstrom) between the layer and its image.
     name
@@ -372,6 +373,12 @@ def prepare_monolayer(structure: "Structure | Atoms", vacuum_A: float = DEFAULT_
 
     atoms = _to_atoms(structure)
     where = name or _formula(atoms)
+    axis = _vacuum_axis(atoms)
+    if axis != 2:  # vacuum along a1 or a2: relabel the axes cyclically (same handedness)
+        order = [(axis + 1) % 3, (axis + 2) % 3, axis]
+        atoms = Atoms(numbers=atoms.numbers, cell=np.asarray(atoms.cell)[order],
+                      scaled_positions=atoms.get_scaled_positions(wrap=True)[:, order],
+                      pbc=True)
     cell = np.asarray(atoms.cell, dtype=float)
     a1, a2, a3 = cell
     normal = np.cross(a1, a2)
@@ -411,6 +418,18 @@ def prepare_monolayer(structure: "Structure | Atoms", vacuum_A: float = DEFAULT_
     positions = np.column_stack([inplane, height + 0.5 * (c - thickness)])
     return Atoms(numbers=atoms.numbers, positions=positions, cell=new_cell,
                  pbc=(True, True, False))
+
+
+def _vacuum_axis(atoms: "Atoms") -> int:
+    """The lattice vector across the widest empty gap (Angstrom between lattice planes);
+    ties go to a3, the usual vacuum axis."""
+    cell = np.asarray(atoms.cell, dtype=float)
+    if abs(np.linalg.det(cell)) < 1e-9:
+        return 2
+    spacing = 1.0 / np.linalg.norm(np.linalg.inv(cell).T, axis=1)  # between lattice planes
+    frac = np.sort(atoms.get_scaled_positions(wrap=True), axis=0)
+    gaps = np.diff(np.vstack([frac, frac[:1] + 1.0]), axis=0).max(axis=0) * spacing
+    return int(np.argmax(gaps + np.array([0.0, 0.0, 1e-6])))
 
 
 def is_hexagonal(cell: np.ndarray) -> bool:
