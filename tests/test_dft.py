@@ -137,6 +137,13 @@ def test_mesh_for_hexagonal_cells_contains_k():
     # 10 x 10 misses K: the scratch false negative for stanene (see docs/labeller.md)
     with pytest.raises(InputError, match="misses the K point"):
         choose_kpts(atoms, LabelSettings(kpts=(10, 10, 1)))
+    # the same layer strained by 0.15 % along a1 keeps a mesh through K
+    strained = atoms.copy()
+    cell = np.array(strained.cell)
+    cell[0] *= 1.0015
+    strained.set_cell(cell, scale_atoms=True)
+    m1, m2, _ = choose_kpts(strained, LabelSettings())
+    assert m1 % 3 == 0 and m2 % 3 == 0
 
 
 def test_mesh_for_rectangular_cell_follows_density():
