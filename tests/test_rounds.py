@@ -205,6 +205,34 @@ def test_a_budget_below_every_candidate_records_nothing(trained):
     assert camp.status().rounds == before
 
 
+#: A timeout above any predicted cost of these campaigns (the unfitted default cost
+#: model's placeholder scale), so that the too-slow warning stays out of the way.
+LONG = 1e7
+
+
+@pytest.fixture
+def fresh_round(tmp_path):
+    """A campaign of six candidates with one round proposed by the shipped default model
+    (kept apart from ``trained``, whose pool the other tests count)."""
+    camp = _new_campaign(tmp_path / "fresh")
+    camp.add_candidates([Candidate(c, f, "gen", s) for c, f, s in _structures()[:6]])
+    rounds.propose(camp, budget_core_hours=_budget(rounds.rank(camp, progress=False), 0.5),
+                   progress=False)
+    yield camp
+    camp.close()
+
+
+def test_a_timeout_below_the_predicted_cost_is_warned_about(fresh_round):
+    from prescreen.errors import PrescreenWarning
+
+    camp = fresh_round
+    cid = camp.pending_ids()[0]
+    cost = float(camp.proposals().set_index("candidate_id").loc[cid, "cost_core_hours"])
+    with pytest.warns(PrescreenWarning, match=f"more than the .* timeout \\({cid}"):
+        rounds.label_pending(camp, ids=[cid], compute=rule_compute,
+                             timeout_s=cost * 3600 / 2, progress=False)
+
+
 def rule_compute(structure, settings, *, id=None):
     """Stand-in for the DFT calculation (spawned worker): the plumbing rule as a record."""
     gamma = np.array([0.0, _rule(structure)])
@@ -223,13 +251,15 @@ def test_label_pending_ingests_and_clears_pending(trained):
         rounds.propose(camp, budget_core_hours=_budget(rounds.rank(camp, progress=False), 0.1),
                        progress=False)
         pending = camp.pending_ids()
-    out = rounds.label_pending(camp, ids=pending[:2], compute=rule_compute, progress=False)
+    out = rounds.label_pending(camp, ids=pending[:2], compute=rule_compute, timeout_s=LONG,
+                               progress=False)
     assert (out.n_jobs, out.n_ok, out.n_ingested) == (2, 2, 2)
     assert set(pending[:2]) <= set(camp.labels().index)
     assert not set(pending[:2]) & set(camp.pending_ids())
     # naming them again would recompute results that cannot be stored: refused up front
     with pytest.raises(InputError, match="already have a result"):
-        rounds.label_pending(camp, ids=pending[:2], compute=rule_compute, progress=False)
+        rounds.label_pending(camp, ids=pending[:2], compute=rule_compute, timeout_s=LONG,
+                               progress=False)
 
 
 def failing_compute(structure, settings, *, id=None):
@@ -237,16 +267,17 @@ def failing_compute(structure, settings, *, id=None):
     raise RuntimeError("stand-in failure")
 
 
-def test_a_failed_calculation_is_computed_again_only_when_asked(trained):
-    camp, _ = trained
-    rounds.propose(camp, budget_core_hours=_budget(rounds.rank(camp, progress=False), 0.1),
-                   progress=False)
+def test_a_failed_calculation_is_computed_again_only_when_asked(fresh_round):
+    camp = fresh_round
     cid = camp.pending_ids()[0]
-    first = rounds.label_pending(camp, ids=[cid], compute=failing_compute, progress=False)
+    first = rounds.label_pending(camp, ids=[cid], compute=failing_compute, timeout_s=LONG,
+                                 progress=False)
     assert (first.n_ok, first.n_failed) == (0, 1) and "stand-in failure" in first.failures[0][1]
-    again = rounds.label_pending(camp, ids=[cid], compute=rule_compute, progress=False)
+    again = rounds.label_pending(camp, ids=[cid], compute=rule_compute, timeout_s=LONG,
+                                 progress=False)
     assert (again.n_ok, again.n_failed, again.n_ingested) == (0, 1, 0)  # not "labelled"
     retried = rounds.label_pending(camp, ids=[cid], compute=rule_compute, retry_failed=True,
+                                   timeout_s=LONG,
                                    progress=False)
     assert (retried.n_ok, retried.n_failed, retried.n_ingested) == (1, 0, 1)
     assert cid in camp.labels().index and cid not in camp.pending_ids()

@@ -883,6 +883,15 @@ def label_pending(
                       f"use --workers {cores} or fewer", PrescreenWarning, stacklevel=2)
     settings = settings or LabelSettings()
     wanted = list(ids) if ids is not None else campaign.pending_ids()
+    proposed = campaign.proposals()
+    if len(proposed):
+        cost = proposed.drop_duplicates("candidate_id", keep="last").set_index(
+            "candidate_id")["cost_core_hours"]
+        slow = [cid for cid in wanted if cid in cost.index and cost[cid] * 3600 > timeout_s]
+        if slow:
+            warnings.warn(f"{len(slow)} candidate(s) are predicted to need more than the "
+                          f"{timeout_s:g} s timeout ({', '.join(slow[:5])}); raise --timeout "
+                          "or they will fail", PrescreenWarning, stacklevel=2)
     if not wanted:
         raise CampaignError("nothing to label: no pending proposals (propose a round first)")
     known = campaign.labels().index
