@@ -101,7 +101,7 @@ def test_diversity_spreads_the_batch_over_clusters():
     assert len(set(blob[clustered.indices])) == 6
     for sel in (diverse, clustered):
         assert sel.indices.size == 12 and len(sel.notes) == 12
-    assert "(distance to batch)" in diverse.notes[1]
+    assert "(1 = farthest from the batch so far)" in diverse.notes[1]
 
 
 def test_diverse_trade_off_zero_is_score_order():
