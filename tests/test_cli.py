@@ -195,3 +195,11 @@ def test_status_flagged_names_each_odd_candidate(tmp_path, sources, capsys):
 def test_a_threshold_that_nothing_can_reach_is_refused(tmp_path, capsys, value):
     assert main(["create", str(tmp_path / "c"), "--threshold", value]) == 2
     assert "spillage threshold must be a positive number" in capsys.readouterr().err
+
+
+def test_label_with_z2_and_nothing_pending_points_to_z2(tmp_path, sources, capsys):
+    camp = tmp_path / "camp"
+    assert main(["create", str(camp), str(sources), "--no-progress"]) == 0
+    capsys.readouterr()
+    assert main(["label", str(camp), "--z2"]) == 2
+    assert f"run `prescreen z2 {camp}`" in capsys.readouterr().err

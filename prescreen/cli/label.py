@@ -30,6 +30,12 @@ def run(args: argparse.Namespace) -> int:
 
     with Campaign.open(args.campaign) as campaign:
         wanted = args.ids or campaign.pending_ids()
+        if not wanted and args.z2:
+            from prescreen.errors import CampaignError
+
+            # e.g. a run interrupted during its Z2 step: the labels are in already
+            raise CampaignError("nothing to label: no pending proposals; for the invariants "
+                                f"of the labelled hits run `prescreen z2 {args.campaign}`")
         out = label_pending(campaign, ids=args.ids or None, workers=args.workers,
                             timeout_s=args.timeout, progress=not args.no_progress,
                             retry_failed=args.retry_failed)
