@@ -47,9 +47,9 @@ def run(args: argparse.Namespace) -> int:
         mine = labels.loc[[c for c in wanted if c in labels.index]]
         hits = mine[mine["spillage"] >= campaign.threshold]
         if len(mine):
-            from prescreen.physics.dft import METAL_GAP_EV
+            from prescreen.invariants import gapped_hits
 
-            gapped = int((hits["gap_soc_eV"] >= METAL_GAP_EV).sum())
+            gapped = len(gapped_hits(campaign, mine.index))
             print(f"hits (spillage >= {campaign.threshold:g}): {len(hits)} of {len(mine)}; "
                   f"{gapped} with a band gap with SOC, {len(hits) - gapped} metals or "
                   "semimetals (`prescreen train --min-gap` leaves those out of the positives)")

@@ -670,9 +670,12 @@ def collect(
                      f"campaign's threshold is {campaign.threshold:g}; its probabilities and "
                      "this report's validation use the model's threshold (retrain with "
                      "`prescreen train` to use the campaign's)")
+    picked_costs = [[getattr(r, k) for r in rows] for k in ("cost_core_hours", "cost_low",
+                                                            "cost_high")]
+    budget = float(rec["budget_core_hours"])
     summary = RoundSummary(
         number=number, strategy=str(rec["strategy"]), seed=rec.get("seed"),
-        model=str(rec.get("model", "")), budget_core_hours=float(rec["budget_core_hours"]),
+        model=str(rec.get("model", "")), budget_core_hours=budget,
         total_cost_core_hours=total, expected_hits=float(rec["expected_hits"]),
         expected_hits_interval=(float(rec["expected_hits_interval"][0]),
                                 float(rec["expected_hits_interval"][1])),
@@ -687,12 +690,8 @@ def collect(
         cheapest_first_expected_hits=at_proposal.get("cheapest_first_expected_hits"),
         cheapest_first_picks=at_proposal.get("cheapest_first_picks"),
         diversity=rec.get("diversity"),
-        overrun_independent=budget_overrun_probability(
-            [r.cost_core_hours for r in rows], [r.cost_low for r in rows],
-            [r.cost_high for r in rows], float(rec["budget_core_hours"])),
-        overrun_correlated=budget_overrun_probability(
-            [r.cost_core_hours for r in rows], [r.cost_low for r in rows],
-            [r.cost_high for r in rows], float(rec["budget_core_hours"]), correlated=True),
+        overrun_independent=budget_overrun_probability(*picked_costs, budget),
+        overrun_correlated=budget_overrun_probability(*picked_costs, budget, correlated=True),
     )
     settings = _model_settings(campaign, summary.model)
     used_open = bool(settings.get("use_open", True)) if use_open is None else bool(use_open)
