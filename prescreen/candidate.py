@@ -4,12 +4,22 @@ from __future__ import annotations
 
 import sys
 from dataclasses import dataclass, field
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 if TYPE_CHECKING:  # pragma: no cover - typing only
     from pymatgen.core import Structure
 
 __all__ = ["Candidate"]
+
+
+def atoms_to_structure(item: Any) -> Any:
+    """An ``ase.Atoms`` as a pymatgen ``Structure``; anything else unchanged."""
+    ase = sys.modules.get("ase")  # an Atoms object means ASE is imported already
+    if ase is not None and isinstance(item, ase.Atoms):
+        from pymatgen.io.ase import AseAtomsAdaptor
+
+        return AseAtomsAdaptor.get_structure(item)
+    return item
 
 
 @dataclass(frozen=True)
@@ -41,11 +51,7 @@ class Candidate:
     meta: dict[str, str] = field(default_factory=dict, compare=False, hash=False)
 
     def __post_init__(self) -> None:
-        ase = sys.modules.get("ase")  # an Atoms object means ASE is imported already
-        if ase is not None and isinstance(self.structure, ase.Atoms):
-            from pymatgen.io.ase import AseAtomsAdaptor
-
-            object.__setattr__(self, "structure", AseAtomsAdaptor.get_structure(self.structure))
+        object.__setattr__(self, "structure", atoms_to_structure(self.structure))
 
     @property
     def has_structure(self) -> bool:

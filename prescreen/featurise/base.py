@@ -17,7 +17,6 @@ from __future__ import annotations
 
 import hashlib
 import json
-import sys
 from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any, Protocol, Sequence, runtime_checkable
@@ -173,14 +172,11 @@ def _check_names(featurisers: Sequence[Featuriser]) -> list[str]:
 def _as_structure(item: Any) -> Any:
     """A row's structure as featurisers want it: None for missing (None, NaN, pd.NA), a
     pymatgen Structure for an ``ase.Atoms``; anything else as given (reported later)."""
+    from prescreen.candidate import atoms_to_structure
+
     if item is None or (not hasattr(item, "__len__") and pd.isna(item)):
         return None
-    ase = sys.modules.get("ase")  # an Atoms object means ASE is imported already
-    if ase is not None and isinstance(item, ase.Atoms):
-        from pymatgen.io.ase import AseAtomsAdaptor
-
-        return AseAtomsAdaptor.get_structure(item)
-    return item
+    return atoms_to_structure(item)
 
 
 def _as_formula(item: Any) -> Any:
