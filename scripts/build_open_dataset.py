@@ -51,7 +51,6 @@ import sys
 import time
 import traceback
 from collections import Counter
-from contextlib import contextmanager
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Iterable, NamedTuple, Sequence
 
@@ -62,6 +61,7 @@ if str(ROOT) not in sys.path:  # run as a plain script from a checkout
     sys.path.insert(0, str(ROOT))
 
 from prescreen.errors import InputError  # noqa: E402
+from prescreen.process import die_with_parent, folder_lock  # noqa: E402
 from prescreen.physics.dft import MAX_SCAN_EXTENSIONS  # noqa: E402
 from prescreen.physics.parity import SYMPREC_A  # noqa: E402
 from prescreen.prototypes import (  # noqa: E402
@@ -417,14 +417,7 @@ def _label_one(ident: str, payload: dict[str, Any], result_path: str) -> None:
 
 def _child(target: Any, parent: int, *args: Any) -> None:
     """Child process entry: die with the parent (no orphan runs on), then do the job."""
-    try:
-        import ctypes
-
-        ctypes.CDLL(None, use_errno=True).prctl(1, signal.SIGKILL)  # 1: PR_SET_PDEATHSIG
-    except (OSError, AttributeError):  # not Linux: the parent's clean-up still applies
-        pass
-    if os.getppid() != parent:  # the parent died before the line above
-        os._exit(1)
+    die_with_parent(parent)
     # Ctrl-C and `kill` reach the parent, which stops the children itself; a child must not
     # run the parent's SIGTERM handler (it would unwind into the parent's loop)
     signal.signal(signal.SIGINT, signal.SIG_IGN)
@@ -520,29 +513,9 @@ def _stop(jobs: Sequence[_Job]) -> None:
         job.process.join()
 
 
-@contextmanager
 def _work_lock(work: Path) -> Any:
-    """Hold ``<work>/.lock`` for the duration: one writer of the checkpoints at a time.
-
-    A POSIX record lock (``lockf``): it belongs to this process only, so forked
-    workers do not inherit it, and it goes away with the process, however it ends.
-    """
-    import fcntl
-
-    work.mkdir(parents=True, exist_ok=True)
-    path = work / ".lock"
-    fh = open(path, "w")
-    try:
-        fcntl.lockf(fh, fcntl.LOCK_EX | fcntl.LOCK_NB)
-    except OSError:
-        fh.close()
-        raise InputError("another build is using this work folder", path=path,
-                         expected="one build per work folder at a time: wait for it or "
-                         "stop it") from None
-    try:
-        yield
-    finally:
-        fh.close()
+    """Hold ``<work>/.lock`` for the duration: one writer of the checkpoints at a time."""
+    return folder_lock(work, "build")
 
 
 def _finished(job: _Job, timeout_s: float) -> dict[str, Any] | None:

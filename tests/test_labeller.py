@@ -35,6 +35,9 @@ def fake_compute(structure, settings, *, id=None):
     """Stand-in for label_structure: behaviour chosen by the id prefix."""
     with open(os.environ["PRESCREEN_FAKE_LOG"], "a") as fh:
         fh.write(f"{id}\n")
+    if os.environ.get("PRESCREEN_FAKE_PIDS"):  # which process computed it
+        with open(os.environ["PRESCREEN_FAKE_PIDS"], "a") as fh:
+            fh.write(f"{os.getpid()}\n")
     time.sleep(float(os.environ.get("PRESCREEN_FAKE_SLEEP", "0")))
     if id.startswith("fail"):
         raise ValueError(f"cannot converge {id}")
@@ -144,6 +147,57 @@ def test_resume_after_kill_9_neither_loses_nor_repeats(tmp_path, log, monkeypatc
     assert sorted(r.id for r in load_records(out)) == ids  # and none is lost
     lines = records.read_text().splitlines()
     assert len(lines) == 12 and len({json.loads(x)["id"] for x in lines}) == 12
+
+
+_SLOW_SCRIPT = """
+import sys
+sys.path.insert(0, {tests!r})
+from test_labeller import fake_compute, _jobs, SETTINGS
+from prescreen.physics.labeller import run_labelling
+run_labelling(_jobs(["slow-a"]), {out!r}, settings=SETTINGS, compute=fake_compute,
+              progress=False)
+"""
+
+
+def _running(pid: int) -> bool:
+    """Whether ``pid`` is a live process (a zombie waiting to be reaped is not)."""
+    try:
+        state = Path(f"/proc/{pid}/status").read_text()
+    except FileNotFoundError:
+        return False
+    return "\nState:\tZ" not in state
+
+
+@pytest.mark.skipif(not Path("/proc/self/status").exists(), reason="needs Linux /proc")
+def test_a_second_run_is_refused_and_workers_die_with_a_killed_run(tmp_path, log, monkeypatch):
+    out, pids = tmp_path / "run", tmp_path / "pids"
+    monkeypatch.setenv("PRESCREEN_FAKE_PIDS", str(pids))
+    script = _SLOW_SCRIPT.format(tests=str(Path(__file__).parent), out=str(out))
+    proc = subprocess.Popen([sys.executable, "-c", script], start_new_session=True)
+    try:
+        deadline = time.time() + 60
+        while time.time() < deadline and not (pids.exists() and pids.read_text().strip()):
+            time.sleep(0.05)
+        worker = int(pids.read_text().split()[0])  # computing "slow-a" (a 60 s job)
+        with pytest.raises(InputError, match=r"another labelling run is using this folder"):
+            run_labelling(_jobs(["b"]), out, settings=SETTINGS, compute=fake_compute,
+                          progress=False)
+        assert _calls(log) == ["slow-a"]  # the refused run computed nothing
+        os.kill(proc.pid, signal.SIGKILL)  # the run only, not its worker
+        proc.wait()
+        deadline = time.time() + 10
+        while time.time() < deadline and _running(worker):
+            time.sleep(0.05)
+        assert not _running(worker), "the worker outlived the killed run"
+    finally:
+        try:
+            os.killpg(proc.pid, signal.SIGKILL)
+        except ProcessLookupError:
+            pass
+    # the lock went with the killed run: the folder is free, and "slow-a" was never recorded
+    s = run_labelling(_jobs(["b"]), out, settings=SETTINGS, compute=fake_compute,
+                      progress=False)
+    assert s.n_ok == 1 and [r.id for r in load_records(out)] == ["b"]
 
 
 def test_torn_last_line_is_repaired(tmp_path, log):

@@ -366,7 +366,7 @@ def test_a_second_build_on_the_same_work_folder_is_refused(tmp_path):
     other.start()
     try:
         assert ready.wait(20)
-        with pytest.raises(InputError, match=r"another build is using this work folder"):
+        with pytest.raises(InputError, match=r"another build is using this folder"):
             with driver._work_lock(tmp_path):
                 pass
     finally:

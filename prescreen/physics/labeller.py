@@ -16,7 +16,10 @@ too, with ``status = "failed"`` and the reason; ``retry_failed=True`` tries them
 (the newest record of an id wins in :func:`load_records`).
 
 Each worker is a separate process (``spawn``) running one calculation at a time with
-single-threaded BLAS; a worker that exceeds the timeout is killed and replaced.
+single-threaded BLAS; a worker that exceeds the timeout is killed and replaced, and
+every worker dies with the run that started it. One run at a time writes an output
+folder: a second is refused while the first holds the folder's lock
+(:func:`prescreen.process.folder_lock`).
 """
 
 from __future__ import annotations
@@ -35,6 +38,7 @@ import numpy as np
 
 from prescreen.errors import InputError
 from prescreen.io.ids import validate_id
+from prescreen.process import die_with_parent, folder_lock
 from prescreen.physics.dft import LabelRecord, LabelSettings, label_structure
 
 if TYPE_CHECKING:  # pragma: no cover - typing only
@@ -63,6 +67,11 @@ WORKER_ENV = {"OPENBLAS_NUM_THREADS": "1", "OMP_NUM_THREADS": "1", "MKL_NUM_THRE
 
 #: How often (s) the runner wakes up to check timeouts.
 POLL_S: float = 0.2
+
+#: Extra time (s) a new worker gets to start its interpreter and imports before the
+#: timeout of its first job starts counting: the timeout measures the calculation, not
+#: the start-up, which takes seconds on a busy machine.
+STARTUP_GRACE_S: float = 120.0
 
 Compute = Callable[..., LabelRecord]
 
@@ -107,8 +116,15 @@ def _formula_of(structure: Any) -> str:
         return "?"
 
 
-def _worker(conn: Connection, compute: Compute, settings: LabelSettings) -> None:
-    """Worker loop: receive (id, structure), compute, send the record back."""
+def _worker(conn: Connection, compute: Compute, settings: LabelSettings,
+            parent_pid: int | None = None) -> None:
+    """Worker loop: receive (id, structure), compute, send the record back.
+
+    With ``parent_pid`` the worker dies with that parent (a killed ``label`` run leaves
+    no calculation running on).
+    """
+    if parent_pid is not None:
+        die_with_parent(parent_pid)
     while True:
         try:
             job = conn.recv()
@@ -118,6 +134,10 @@ def _worker(conn: Connection, compute: Compute, settings: LabelSettings) -> None
             return
         ident, structure = job
         t0 = time.perf_counter()
+        try:
+            conn.send(("started",))  # the job's timeout counts from here
+        except (BrokenPipeError, OSError):
+            return
         try:
             rec = compute(structure, settings, id=ident)
             if not isinstance(rec, LabelRecord):
@@ -138,6 +158,7 @@ class _Slot:
     conn: Connection
     job: tuple[str, Any] | None = None
     started: float = 0.0
+    running: bool = False  # the worker has said it started the job
 
 
 class RecordStore:
@@ -273,11 +294,10 @@ def run_labelling(jobs: Iterable[tuple[str, "Structure | Atoms"]], out_dir: Path
     Raises
     ------
     InputError
-        On malformed or duplicate ids, bad ``workers``/``timeout_s``, or an output
-        folder made with other settings.
+        On malformed or duplicate ids, bad ``workers``/``timeout_s``, an output
+        folder made with other settings, or one that another labelling run (another
+        process) is writing to.
     """
-    from tqdm.auto import tqdm
-
     if not (isinstance(workers, int) and workers >= 1):
         raise InputError("workers must be a positive integer", value=workers,
                          expected="an integer >= 1")
@@ -285,7 +305,18 @@ def run_labelling(jobs: Iterable[tuple[str, "Structure | Atoms"]], out_dir: Path
         raise InputError("timeout_s must be positive", value=timeout_s, expected="> 0 s")
     t0 = time.perf_counter()
     all_jobs = _validate_jobs(jobs)
-    store = RecordStore(Path(out_dir), settings)
+    with folder_lock(out_dir, "labelling run"):  # a second run would compute the same ids
+        return _run_locked(all_jobs, Path(out_dir), settings, workers, timeout_s, compute,
+                           progress, retry_failed, t0)
+
+
+def _run_locked(all_jobs: list[tuple[str, Any]], out_dir: Path, settings: LabelSettings,
+                workers: int, timeout_s: float, compute: Compute, progress: bool,
+                retry_failed: bool, t0: float) -> LabelSummary:
+    """The body of :func:`run_labelling`, run while holding the folder's lock."""
+    from tqdm.auto import tqdm
+
+    store = RecordStore(out_dir, settings)
     done = store.status()
     pending = [(i, s) for i, s in all_jobs
                if i not in done or (retry_failed and done[i] == "failed")]
@@ -300,7 +331,8 @@ def run_labelling(jobs: Iterable[tuple[str, "Structure | Atoms"]], out_dir: Path
 
     def start_slot() -> _Slot:
         parent, child = ctx.Pipe()
-        proc = ctx.Process(target=_worker, args=(child, compute, settings), daemon=True)
+        proc = ctx.Process(target=_worker, args=(child, compute, settings, os.getpid()),
+                           daemon=True)
         proc.start()
         child.close()
         return _Slot(proc, parent)
@@ -332,7 +364,7 @@ def run_labelling(jobs: Iterable[tuple[str, "Structure | Atoms"]], out_dir: Path
             for slot in slots:
                 if slot.job is None and queue:
                     slot.job = queue.pop()
-                    slot.started = time.perf_counter()
+                    slot.started, slot.running = time.perf_counter(), False
                     slot.conn.send(slot.job)
             busy = [s for s in slots if s.job is not None]
             ready = wait([s.conn for s in busy], timeout=POLL_S)
@@ -349,13 +381,16 @@ def run_labelling(jobs: Iterable[tuple[str, "Structure | Atoms"]], out_dir: Path
                                    f"{slot.process.exitcode}), e.g. killed or out of memory")
                         slots[i] = start_slot()
                         continue
-                    if msg[0] == "ok":
+                    if msg[0] == "started":
+                        slot.started, slot.running = time.perf_counter(), True
+                    elif msg[0] == "ok":
                         finish(slot, LabelRecord.from_dict(msg[1]))
                     else:
                         ident, structure = slot.job
                         finish(slot, LabelRecord.failed(ident, _formula_of(structure),
                                                         settings, msg[1], msg[2]))
-                elif now - slot.started > timeout_s:
+                elif now - slot.started > timeout_s + (0.0 if slot.running
+                                                       else STARTUP_GRACE_S):
                     slot.process.kill()
                     slot.process.join()
                     fail(slot, f"Timeout: no result within {timeout_s:g} s")
