@@ -81,6 +81,76 @@ def test_fit_recovers_a_known_power_law_and_interval_covers():
     assert np.all(low < pred) and np.all(pred < high)
 
 
+def test_unpenalised_interval_equals_the_ols_prediction_interval_of_statsmodels():
+    # reference: statsmodels OLS get_prediction(...).summary_frame, obs_ci_* (the
+    # prediction interval of a new observation), on the log-transformed columns
+    sm = pytest.importorskip("statsmodels.api")
+    rec = _records(25, seed=4)
+    fitted = CostModel().fit(rec, ridge=0.0)
+    X = sm.add_constant(np.log(rec[list(COST_TERMS)].to_numpy()))
+    ols = sm.OLS(np.log(rec["core_hours"].to_numpy()), X).fit()
+    far = _records(6, seed=5)
+    far[list(COST_TERMS)] *= [3.0, 5.0, 2.0, 4.0]  # outside the fitted range: wider
+    frame = ols.get_prediction(sm.add_constant(np.log(far[list(COST_TERMS)].to_numpy()),
+                                               has_constant="add")).summary_frame(alpha=0.1)
+    pred, low, high = fitted.predict_interval(far, level=0.9)
+    assert np.log(pred) == pytest.approx(frame["mean"].to_numpy(), abs=1e-8)
+    assert np.log(low) == pytest.approx(frame["obs_ci_lower"].to_numpy(), abs=1e-8)
+    assert np.log(high) == pytest.approx(frame["obs_ci_upper"].to_numpy(), abs=1e-8)
+    assert fitted.dof == pytest.approx(ols.df_resid)
+
+
+def test_interval_widens_away_from_the_fitted_cells_and_keeps_its_coverage():
+    # fit on small cells, predict cells several times larger; over many repeats a 90 %
+    # interval should hold about 90 % of the new wall times (a fixed band would not)
+    inside_fitted, inside_fixed = [], []
+    for seed in range(200):
+        rng = np.random.default_rng(100 + seed)
+        small = pd.DataFrame({"n_electrons": rng.uniform(10, 40, 12),
+                              "n_kpoints": rng.uniform(5, 40, 12),
+                              "volume": rng.uniform(100, 300, 12),
+                              "n_atoms": rng.uniform(1, 5, 12)})
+        rec = _records_at(small, seed=100 + seed)
+        far = _records_at(rec.iloc[:1].assign(n_electrons=150.0, n_kpoints=300.0, volume=1500.0,
+                                               n_atoms=16.0), seed=5000 + seed)
+        fitted = CostModel().fit(rec, ridge=0.0)
+        _, low, high = fitted.predict_interval(far, level=0.9)
+        y = far["core_hours"].to_numpy()
+        inside_fitted.append(bool(low[0] <= y[0] <= high[0]))
+        q = 1.6448536269514722  # normal 95th percentile (standard value)
+        mid = fitted.predict(far)[0]
+        band = np.exp(q * fitted.log_sigma)
+        inside_fixed.append(bool(mid / band <= y[0] <= mid * band))
+    assert 0.84 <= np.mean(inside_fitted) <= 0.96
+    assert np.mean(inside_fixed) < np.mean(inside_fitted) - 0.1
+
+
+def _records_at(table, seed, exps=(1.7, 1.1, 0.8, 0.4), c0=-9.0, sigma=0.2):
+    """New wall times for the given descriptors, from the power law of :func:`_records`."""
+    rng = np.random.default_rng(seed)
+    table = table.copy()
+    logt = c0 + np.log(table[list(COST_TERMS)].to_numpy(float)) @ np.asarray(exps)
+    table["core_hours"] = np.exp(logt + rng.normal(0, sigma, len(table)))
+    return table
+
+
+def test_fitted_uncertainty_survives_json_and_goes_with_user_coefficients(tmp_path):
+    fitted = CostModel().fit(_records(30))
+    path = tmp_path / "cost.json"
+    fitted.save(path)
+    again = CostModel.load(path)
+    fresh = _records(5, seed=9)
+    for a, b in zip(fitted.predict_interval(fresh), again.predict_interval(fresh)):
+        assert a == pytest.approx(b, rel=1e-12)
+    own = fitted.with_coefficients(exponents={"n_atoms": 3.0})
+    assert own.coef_cov is None and own.dof == float("inf")
+    data = json.loads(path.read_text())
+    data["coef_cov"] = [[1.0, 2.0]]
+    path.write_text(json.dumps(data))
+    with pytest.raises(InputError, match="coef_cov"):
+        CostModel.load(path)
+
+
 def test_few_records_move_the_scale_not_the_shape():
     rec = _records(2, seed=3)
     fitted = CostModel().fit(rec, ridge=1e6)

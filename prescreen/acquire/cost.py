@@ -25,7 +25,10 @@ not a measurement). Only cost *ratios* matter for ranking; for budgets, fit the 
 the wall times your labeller recorded with :meth:`CostModel.fit`. Fitting is ridge
 regression in log space that shrinks the exponents towards the default shape, so a
 handful of records moves mainly the intercept and many records can change the shape.
-The interval comes from the residual spread in log space.
+The interval is the regression's prediction interval in log space: the residual
+spread, widened where the fitted coefficients are uncertain (far from the cells the
+model was fitted to), with Student's t quantiles for the residual degrees of freedom.
+An unfitted model, or one whose coefficients the user set, has only the assumed spread.
 """
 
 from __future__ import annotations
@@ -33,6 +36,7 @@ from __future__ import annotations
 import json
 from dataclasses import dataclass, field, replace
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -103,6 +107,13 @@ class CostModel:
         User scale factor for their code and cluster (> 0), applied last.
     n_fitted : int
         Number of records the model was fitted to (0: default shape and scale).
+    coef_cov : tuple of tuples or None
+        Covariance of the fitted ``(c0, exponents...)`` in units of ``log_sigma**2``
+        (from :meth:`fit`); widens the interval away from the fitted cells. None when
+        not fitted, or after the user changed the coefficients.
+    dof : float
+        Residual degrees of freedom of the fit (``inf``: the spread is assumed, not
+        estimated, and the interval uses normal quantiles).
     """
 
     intercept: float = field(default_factory=lambda: _default_intercept(DEFAULT_EXPONENTS))
@@ -111,6 +122,8 @@ class CostModel:
     log_sigma: float = DEFAULT_LOG_SIGMA
     multiplier: float = 1.0
     n_fitted: int = 0
+    coef_cov: tuple | None = None
+    dof: float = float("inf")
 
     # ------------------------------------------------------------------ build / override
     @classmethod
@@ -135,9 +148,11 @@ class CostModel:
                 raise InputError("unknown cost term", line=key, value=key,
                                  expected=f"one of {', '.join(COST_TERMS)}")
             exps[key] = float(value)
+        # the fit's coefficient uncertainty no longer describes the user's coefficients
         new = replace(self, exponents=exps,
                       intercept=self.intercept if intercept is None else float(intercept),
-                      soc_factor=self.soc_factor if soc_factor is None else float(soc_factor))
+                      soc_factor=self.soc_factor if soc_factor is None else float(soc_factor),
+                      coef_cov=None, dof=float("inf"))
         new._validate(None)
         return new
 
@@ -157,6 +172,9 @@ class CostModel:
         if not (np.isfinite(self.log_sigma) and self.log_sigma >= 0):
             raise InputError("log_sigma must be >= 0", path=path, line="log_sigma",
                              value=self.log_sigma, expected="a finite number >= 0")
+        if not (self.dof > 0):
+            raise InputError("dof must be > 0", path=path, line="dof", value=self.dof,
+                             expected="a number of degrees of freedom > 0 (or null)")
         if not np.isfinite(self.intercept):
             raise InputError("intercept must be finite", path=path, line="intercept",
                              value=self.intercept, expected="a finite number")
@@ -198,12 +216,24 @@ class CostModel:
 
     def predict_interval(self, table: pd.DataFrame, level: float = 0.9
                          ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """``(prediction, low, high)`` core-hours; log-normal interval at ``level``."""
+        """``(prediction, low, high)`` core-hours: a prediction interval at ``level``.
+
+        In log space, ``log_sigma * sqrt(1 + a C a^T)`` with ``a = (1, log descriptors)``
+        and ``C`` = :attr:`coef_cov` (the textbook prediction interval of a linear
+        regression, ridge-adjusted), and Student's t quantile with :attr:`dof` degrees
+        of freedom; without a fit, ``log_sigma`` and the normal quantile.
+        """
         if not 0 < level < 1:
             raise InputError("interval level must be in (0, 1)", value=level, expected="0 < level < 1")
-        z = float(stats.norm.ppf(0.5 + level / 2))
         lp = self._log_predict(table)
-        return np.exp(lp), np.exp(lp - z * self.log_sigma), np.exp(lp + z * self.log_sigma)
+        spread = np.full(lp.shape, self.log_sigma)
+        if self.coef_cov is not None:
+            A = np.hstack([np.ones((lp.shape[0], 1)), self._design(table)])
+            C = np.asarray(self.coef_cov, dtype=float)
+            spread = self.log_sigma * np.sqrt(1.0 + np.einsum("ij,jk,ik->i", A, C, A))
+        q = float(stats.t.ppf(0.5 + level / 2, self.dof) if np.isfinite(self.dof)
+                  else stats.norm.ppf(0.5 + level / 2))
+        return np.exp(lp), np.exp(lp - q * spread), np.exp(lp + q * spread)
 
     def fit(self, records: pd.DataFrame, *, ridge: float = DEFAULT_RIDGE,
             path: str | Path | None = None) -> "CostModel":
@@ -249,20 +279,26 @@ class CostModel:
         sol = np.linalg.lstsq(G, A.T @ r, rcond=None)[0]
         exps = {t: float(b0[j] + sol[j + 1]) for j, t in enumerate(COST_TERMS)}
         resid = r - A @ sol
-        sigma = self.log_sigma
+        sigma, dof, cov = self.log_sigma, float("inf"), None
         if n >= 3:
-            hat = A @ np.linalg.pinv(G) @ A.T
+            Ginv = np.linalg.pinv(G)
+            hat = A @ Ginv @ A.T
             dof = max(n - float(np.trace(hat)), 1.0)
             sigma = float(np.sqrt(np.sum(resid**2) / dof))
+            # Var(coefficients) / sigma^2 of the ridge estimate G^-1 A^T r
+            cov = Ginv @ (A.T @ A) @ Ginv
+            cov = tuple(tuple(float(v) for v in row) for row in 0.5 * (cov + cov.T))
         return replace(self, intercept=float(sol[0]), exponents=exps, log_sigma=sigma,
-                       n_fitted=int(n))
+                       n_fitted=int(n), coef_cov=cov, dof=float(dof))
 
     # ------------------------------------------------------------------ persistence
     def as_dict(self) -> dict:
         return {"kind": "prescreen.cost_model", "version": 1, "intercept": self.intercept,
                 "exponents": dict(self.exponents), "soc_factor": self.soc_factor,
                 "log_sigma": self.log_sigma, "multiplier": self.multiplier,
-                "n_fitted": self.n_fitted}
+                "n_fitted": self.n_fitted,
+                "coef_cov": None if self.coef_cov is None else [list(r) for r in self.coef_cov],
+                "dof": self.dof if np.isfinite(self.dof) else None}
 
     @classmethod
     def from_dict(cls, data: dict, path: str | Path | None = None) -> "CostModel":
@@ -280,7 +316,9 @@ class CostModel:
                         soc_factor=float(data.get("soc_factor", DEFAULT_SOC_FACTOR)),
                         log_sigma=float(data.get("log_sigma", DEFAULT_LOG_SIGMA)),
                         multiplier=float(data.get("multiplier", 1.0)),
-                        n_fitted=int(data.get("n_fitted", 0)))
+                        n_fitted=int(data.get("n_fitted", 0)),
+                        coef_cov=_read_cov(data.get("coef_cov")),
+                        dof=float("inf") if data.get("dof") is None else float(data["dof"]))
         except (KeyError, TypeError, ValueError) as exc:
             if isinstance(exc, InputError):
                 raise
@@ -303,6 +341,17 @@ class CostModel:
             raise InputError(f"not valid JSON: {exc.msg}", path=path, line=exc.lineno,
                              expected="a JSON cost model") from exc
         return cls.from_dict(data, path=path)
+
+
+def _read_cov(value: Any) -> tuple | None:
+    """``coef_cov`` from JSON: None, or a square matrix of 1 + len(COST_TERMS) rows."""
+    if value is None:
+        return None
+    C = np.asarray(value, dtype=float)
+    k = 1 + len(COST_TERMS)
+    if C.shape != (k, k) or not np.all(np.isfinite(C)):
+        raise ValueError(f"coef_cov must be a {k}x{k} matrix of finite numbers")
+    return tuple(tuple(float(v) for v in row) for row in C)
 
 
 # ------------------------------------------------------------------- descriptors

@@ -317,8 +317,10 @@ def budget_overrun_probability(cost: Any, low: Any, high: Any, budget: float, *,
     """Chance that the summed real cost of a batch exceeds ``budget``.
 
     Each candidate's cost is log-normal with median ``cost`` and the central ``level``
-    interval ``(low, high)`` (the cost model's own form, see
-    :meth:`prescreen.acquire.cost.CostModel.predict_interval`); the log-errors are
+    interval ``(low, high)`` (the cost model's interval,
+    :meth:`prescreen.acquire.cost.CostModel.predict_interval`, is Student-t in log space
+    after a fit: matching its width with a normal is a little conservative); the
+    log-errors are
     independent, or (``correlated``) one common error scales every candidate. Monte
     Carlo with a fixed seed. NaN when there is nothing to sum.
     """
