@@ -38,10 +38,6 @@ GOAL_ACCELERATION_50 = 8.0
 GOAL_FEWER_THAN_BASELINE_50 = 0.25
 BASELINE_NAME = "baseline: greedy RF on magpie"
 LABELLED_NAMES = ("labelled.parquet",)
-#: Smallest labelled table worth replaying: room for the initial set and several rounds,
-#: and enough positives for "50 % of positives" to mean something (common practice).
-MIN_LABELLED = 100
-MIN_POSITIVES = 10
 
 
 def strategies() -> dict[str, object]:
@@ -213,8 +209,10 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--data", type=Path, default=REPO / "data_open",
                         help="folder with labelled.parquet, or the table itself")
     parser.add_argument("--seeds", type=int, default=5, help="campaigns per strategy (>= 5 for the issue)")
-    parser.add_argument("--n-initial", type=int, default=20, help="random evaluations before the first model")
-    parser.add_argument("--batch-runs", type=float, default=20.0,
+    # defaults sized for a table of about a hundred rows: a tenth spent at random before
+    # the first model, rounds of about five evaluations
+    parser.add_argument("--n-initial", type=int, default=10, help="random evaluations before the first model")
+    parser.add_argument("--batch-runs", type=float, default=5.0,
                         help="budget per round, in multiples of the median predicted cost")
     parser.add_argument("--until", type=float, default=0.8, help="stop a campaign at this fraction of positives")
     parser.add_argument("--min-gap", type=float, default=None, metavar="EV",
@@ -227,6 +225,8 @@ def main(argv: list[str] | None = None) -> int:
     import pandas as pd
 
     from prescreen.acquire.replay import plot_discovery, replay, summarise
+    from prescreen.acquire.rounds import MIN_REPLAY_POSITIVES as MIN_POSITIVES
+    from prescreen.acquire.rounds import MIN_REPLAY_ROWS as MIN_LABELLED
     from prescreen.model import SpillageClassifier
 
     seed0 = 0

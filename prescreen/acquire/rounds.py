@@ -939,10 +939,12 @@ def label_pending(
                         out_dir=out_dir)
 
 
-#: Fewest labelled rows and positives for a retrospective replay worth showing (the same
-#: floor as benchmarks/replay.py; common practice, chosen here).
-MIN_REPLAY_ROWS = 100
-MIN_REPLAY_POSITIVES = 10
+#: Fewest labelled rows and positives for a retrospective replay worth showing (also the
+#: floor of benchmarks/replay.py). A judgement, not a published rule: room for the initial
+#: set and several rounds, and at least 20 positives, so that "half of the positives" is
+#: ten or more hits and one lucky pick moves it by at most a tenth.
+MIN_REPLAY_ROWS = 60
+MIN_REPLAY_POSITIVES = 20
 #: Strategies replayed for the report, against random selection.
 REPLAY_STRATEGIES = ("expected_hits_per_core_hour", "greedy_probability")
 

@@ -18,7 +18,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="also print the report to PDF (needs Chromium)")
     parser.add_argument("--replay", action="store_true",
                         help="add discovery curves from a retrospective replay on the "
-                        "labelled data (minutes; needs >= 100 labelled rows)")
+                        "labelled data (minutes; skipped, with the reason, below "
+                        "prescreen.acquire.rounds.MIN_REPLAY_ROWS labelled rows or "
+                        "MIN_REPLAY_POSITIVES positives)")
     parser.add_argument("--no-progress", action="store_true", help="hide progress bars")
 
 
