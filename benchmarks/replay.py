@@ -280,7 +280,7 @@ def main(argv: list[str] | None = None) -> int:
     curves = pd.concat(runs, ignore_index=True)
     table = summarise(curves, y, fractions=(0.5, 0.8), baseline=BASELINE_NAME)
     P, N = int(y.sum()), int(y.size)
-    from prescreen.acquire.replay import random_runs_to_fraction
+    from prescreen.acquire.replay import random_runs_to_fraction, runs_to_fraction
 
     print(f"\n  random selection, expected: {random_runs_to_fraction(N, P, 0.5):.1f} evaluations to 50 %, "
           f"{random_runs_to_fraction(N, P, 0.8):.1f} to 80 % of the {P} positives (N = {N})")
@@ -298,6 +298,12 @@ def main(argv: list[str] | None = None) -> int:
           "(inf: the median seed never got there); acceleration_X: random expected / runs_to_X; "
           f"fewer_runs_vs_baseline_X: 1 - runs / baseline runs; EF@{P}: hit rate in the first {P} "
           "evaluations over the base rate")
+    print("\n  spread over seeds (to 50 % of positives): smallest-largest evaluations; core-hours")
+    for name, block in curves.groupby("strategy", sort=False):
+        per_seed = [g.sort_values("n_runs") for _, g in block.groupby("seed", sort=True)]
+        runs = [runs_to_fraction(g, P, 0.5) for g in per_seed]
+        hours = [runs_to_fraction(g, P, 0.5, "core_hours") for g in per_seed]
+        print(f"    {name:<34} {min(runs):5.0f}-{max(runs):<5.0f} {min(hours):6.2f}-{max(hours):.2f}")
     best = table.loc[table["strategy"] != BASELINE_NAME].sort_values("runs_to_50").iloc[0]
     print(f"\n  best strategy to 50 %: {best['strategy']}: acceleration {best['acceleration_50']:.2f}x "
           f"(goal >= {GOAL_ACCELERATION_50:g}x: {'met' if best['acceleration_50'] >= GOAL_ACCELERATION_50 else 'NOT met'}); "
