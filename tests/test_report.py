@@ -424,6 +424,23 @@ def test_summary_shows_skill_cheapest_first_and_overrun(built, collected):
     assert "no-replay" not in by_id  # this report has discovery curves
 
 
+def test_discovery_caption_states_the_replayed_pool_and_the_runs_to_half(built):
+    from prescreen.acquire.replay import random_runs_to_fraction, runs_to_fraction
+
+    replay = small_replay(built["campaign"])  # the same seeded replay as the report's
+    html = built["html"]
+    caption = html[html.index('id="fig-discovery"'):]
+    caption = caption[:caption.index("</figcaption>")]
+    n, p = int(replay.y.size), int(replay.y.sum())
+    assert f"Replayed on {n} labelled rows with {p} positives" in caption
+    per_seed = [runs_to_fraction(g.sort_values("n_runs"), p, 0.5)
+                for _, g in replay.curves.groupby("seed")]
+    median = float(np.median(per_seed))
+    assert (f"random_selection: {median:.0f} evaluations" in caption if np.isfinite(median)
+            else "random_selection: not reached" in caption)
+    assert f"expected to need {random_runs_to_fraction(n, p, 0.5):.0f} evaluations" in caption
+
+
 def test_picks_scored_like_known_non_hits_are_counted(built, collected):
     from prescreen.acquire.rounds import _feature_columns, candidate_features, load_model
 

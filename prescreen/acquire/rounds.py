@@ -994,8 +994,13 @@ def replay_labelled(
     def factory(seed: int) -> SpillageClassifier:
         return _classifier(n_models, seed, n)
 
+    n_initial, budget = max(2, n // 10), float(cost.sum()) / 10
     curves = [replay(X, table.y, cost, table.formulas, strategy_by_name(name), factory,
-                     n_initial=max(2, n // 10), batch_budget=float(cost.sum()) / 10,
+                     n_initial=n_initial, batch_budget=budget,
                      n_rounds=n_rounds, seeds=seeds, name=name, progress=progress)
               for name in (*strategies, "random_selection")]
-    return ReplayCurves(curves=pd.concat(curves, ignore_index=True), y=table.y, cost=cost)
+    protocol = (f"{len(seeds)} campaigns per strategy (seeds), each starting from {n_initial} "
+                f"rows at random, then up to {n_rounds} rounds of {budget:.3g} core-hours "
+                "(a tenth of the recorded cost of all rows)")
+    return ReplayCurves(curves=pd.concat(curves, ignore_index=True), y=table.y, cost=cost,
+                        protocol=protocol)

@@ -91,11 +91,14 @@ class ReplayCurves:
         Labels of the replayed pool.
     cost : ndarray, shape (N,)
         Recorded core-hours of the replayed pool.
+    protocol : str
+        How the campaigns were run (seeds, initial set, round size), for the caption.
     """
 
     curves: Any
     y: np.ndarray
     cost: np.ndarray
+    protocol: str = ""
 
 
 @dataclass(frozen=True)
