@@ -81,6 +81,7 @@ CREATE TABLE IF NOT EXISTS rejections (
     value TEXT NOT NULL,
     reason TEXT NOT NULL,
     at TEXT NOT NULL,
+    superseded_at TEXT,
     UNIQUE (kind, path, line, value, reason)
 );
 CREATE TABLE IF NOT EXISTS results (
@@ -225,9 +226,10 @@ class Campaign:
 
     def _upgrade(self) -> None:
         """Add columns that later releases of the same store format introduced."""
-        added = {"models": ("settings", "TEXT NOT NULL DEFAULT '{}'"),
-                 "results": ("gap_soc_eV", "REAL")}
-        for table, (column, kind) in added.items():
+        added = [("models", "settings", "TEXT NOT NULL DEFAULT '{}'"),
+                 ("results", "gap_soc_eV", "REAL"),
+                 ("rejections", "superseded_at", "TEXT")]
+        for table, column, kind in added:
             columns = {row[1] for row in self._conn.execute(f"PRAGMA table_info({table})")}
             if column not in columns:
                 try:
@@ -352,6 +354,9 @@ class Campaign:
         report = CandidateIngestReport()
         now = _now()
         seq0 = self._conn.execute("SELECT COALESCE(MAX(seq), 0) FROM candidates").fetchone()[0]
+        rej0 = self._conn.execute("SELECT COALESCE(MAX(seq), 0) FROM rejections").fetchone()[0]
+        read: set[str] = set()  # the files this add read (a source is "path" or "path:entry")
+        still: set[int] = set()  # earlier rejections that this add met again
         finder = DuplicateFinder(existing=self._representatives_loader())
         iterator: Iterable[Candidate | Rejection] = items
         if progress:
@@ -361,13 +366,15 @@ class Campaign:
         with self._transaction() as conn:
             for i, item in enumerate(iterator):
                 if isinstance(item, Rejection):
-                    self._record_rejection(conn, "candidate", item, now)
+                    read.add(item.path)
+                    still.add(self._record_rejection(conn, "candidate", item, now))
                     report.rejections.append(item)
                     continue
+                read.update({item.source, item.source.rsplit(":", 1)[0]})
                 outcome = self._insert_candidate(conn, item, finder, check_monolayer, now,
                                                  seq0 + i + 1)
                 if isinstance(outcome, Rejection):
-                    self._record_rejection(conn, "candidate", outcome, now)
+                    still.add(self._record_rejection(conn, "candidate", outcome, now))
                     report.rejections.append(outcome)
                 elif outcome == "present":
                     report.already_present += 1
@@ -377,6 +384,16 @@ class Campaign:
                     report.duplicates += outcome[1] is not None
                 if _after_each is not None:
                     _after_each(i)
+            # a file read again stands as it is now: its earlier rejections that did not
+            # come up again were fixed (kept, marked superseded, out of the counts)
+            for path in read:
+                conn.execute(
+                    "UPDATE rejections SET superseded_at=? WHERE kind='candidate' AND path=? "
+                    "AND seq<=? AND superseded_at IS NULL", (now, path, rej0))
+            if still:
+                marks = ",".join("?" * len(still))
+                conn.execute(f"UPDATE rejections SET superseded_at=NULL WHERE seq IN ({marks})",
+                             tuple(still))
         return report
 
     def _representatives_loader(self) -> Callable[[str], list[tuple[str, Structure | None]]]:
@@ -433,7 +450,8 @@ class Campaign:
         return (layer[0], dup)
 
     @staticmethod
-    def _record_rejection(conn, kind: str, rej: Rejection, now: str) -> None:
+    def _record_rejection(conn, kind: str, rej: Rejection, now: str) -> int:
+        """Store a rejection once; returns its row's seq (new, or the same one seen before)."""
         # "IS" rather than the UNIQUE constraint: SQLite treats NULL lines as distinct, so
         # a whole-file rejection would otherwise be stored again on every run.
         line = None if rej.line is None else str(rej.line)
@@ -444,6 +462,9 @@ class Campaign:
             (kind, rej.path, line, rej.value, rej.reason, now,
              kind, rej.path, line, rej.value, rej.reason),
         )
+        return int(conn.execute(
+            "SELECT seq FROM rejections WHERE kind=? AND path=? AND line IS ? AND value=? "
+            "AND reason=?", (kind, rej.path, line, rej.value, rej.reason)).fetchone()[0])
 
     def candidate_ids(self) -> list[str]:
         return [r[0] for r in self._conn.execute("SELECT id FROM candidates ORDER BY seq")]
@@ -598,12 +619,25 @@ class Campaign:
             self._conn,
         ).set_index("id")
 
-    def rejections(self, kind: str | None = None) -> list[Rejection]:
-        sql = "SELECT path, line, value, reason FROM rejections"
+    def rejections(self, kind: str | None = None, *,
+                   include_superseded: bool = False) -> list[Rejection]:
+        """Rejected entries, oldest first.
+
+        Parameters
+        ----------
+        kind
+            ``"candidate"`` or ``"result"``; both when None.
+        include_superseded
+            Also those of candidate files read again since, where the entry no longer
+            failed (the user fixed it); they are kept, not deleted.
+        """
+        sql = "SELECT path, line, value, reason FROM rejections WHERE 1=1"
         args: tuple[str, ...] = ()
         if kind is not None:
-            sql += " WHERE kind=?"
+            sql += " AND kind=?"
             args = (kind,)
+        if not include_superseded:
+            sql += " AND superseded_at IS NULL"
         return [Rejection(p, int(line) if line is not None and line.isdigit() else line, v, r)
                 for p, line, v, r in self._conn.execute(sql + " ORDER BY seq", args)]
 
@@ -631,7 +665,7 @@ class Campaign:
             positives=count("SELECT COUNT(*) FROM results WHERE active=1 AND spillage >= ?",
                             self.threshold),
             threshold=self.threshold,
-            rejections=count("SELECT COUNT(*) FROM rejections"),
+            rejections=count("SELECT COUNT(*) FROM rejections WHERE superseded_at IS NULL"),
             rounds=count("SELECT COUNT(*) FROM rounds"),
             pending=count("SELECT COUNT(*) FROM proposals WHERE status='pending'"),
             models=count("SELECT COUNT(*) FROM models"),

@@ -99,6 +99,27 @@ def test_reader_rejections_are_kept(campaign):
     assert rej in campaign.rejections()
 
 
+def test_a_fixed_file_read_again_supersedes_its_old_rejections(campaign, tmp_path):
+    from prescreen.io.structures import iter_candidates
+
+    wish, other = tmp_path / "wish.csv", tmp_path / "other.csv"
+    wish.write_text("id,formula\nw1,MoS2\nw2,Jk2Se3\nw3,Qq2\n")
+    other.write_text("id,formula\no1,Zz3\n")
+    campaign.add_candidates(iter_candidates([wish, other]))
+    assert campaign.status().rejections == 3
+    wish.write_text("id,formula\nw1,MoS2\nw2,Bi2Se3\nw3,Qq2\n")  # w2 fixed, w3 not
+    campaign.add_candidates(iter_candidates(wish))
+    current = campaign.rejections()
+    assert sorted(r.value for r in current) == ["Qq2", "Zz3"]  # other.csv was not read
+    assert campaign.status().rejections == 2
+    kept = campaign.rejections(include_superseded=True)
+    assert sorted(r.value for r in kept) == ["Jk2Se3", "Qq2", "Zz3"]  # nothing deleted
+    assert "w2" in campaign.candidate_ids()
+    wish.write_text("id,formula\nw1,MoS2\nw2,Bi2Se3\nw3,Jk2Se3\n")  # the old error is back
+    campaign.add_candidates(iter_candidates(wish))
+    assert sorted(r.value for r in campaign.rejections()) == ["Jk2Se3", "Zz3"]
+
+
 def test_results_ingest_valid_rows_land_unknown_rejected(campaign):
     rep = campaign.ingest_results(([result("mos2", 0.01), result("ghost", 0.9, line=3)], []))
     assert rep.added == 1

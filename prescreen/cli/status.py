@@ -10,7 +10,9 @@ __all__ = ["add_arguments", "run"]
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("campaign", help="campaign folder")
     parser.add_argument("--rejections", action="store_true",
-                        help="list every rejected entry with its file, line and reason")
+                        help="list every rejected entry with its file, line and reason "
+                        "(of each candidate file as last read: entries fixed since are kept "
+                        "in the store but not listed)")
     parser.add_argument("--flagged", action="store_true",
                         help="list every candidate that is not a plain monolayer (not 2D, "
                         "ambiguous, formula only), a duplicate, or hazard-flagged, with why")
