@@ -28,10 +28,12 @@ LOCK_FILE = ".lock"
 def folder_lock(folder: str | Path, what: str = "run") -> Iterator[Path]:
     """Hold ``<folder>/.lock`` exclusively for the duration of the block.
 
-    A POSIX record lock (``lockf``): it belongs to this process only, so forked or
-    spawned workers neither inherit nor keep it, and the kernel releases it when the
-    process ends, however it ends (a stale lock file is harmless). A second holder in the
-    *same* process is not refused: POSIX record locks are per process.
+    A BSD ``flock`` on an open file of its own: the kernel releases it when the holder
+    closes it or its process ends, however it ends (a stale lock file is harmless). A
+    second holder is refused even in the same process (nesting is a bug, not a no-op), and
+    closing some other handle on the lock file does not release it. Forked children share
+    the open file and so the lock until they end (ours die with their parent); spawned
+    workers start a new program and do not hold it.
 
     Parameters
     ----------
@@ -57,7 +59,7 @@ def folder_lock(folder: str | Path, what: str = "run") -> Iterator[Path]:
     path = folder / LOCK_FILE
     fh = open(path, "w")
     try:
-        fcntl.lockf(fh, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        fcntl.flock(fh, fcntl.LOCK_EX | fcntl.LOCK_NB)
     except OSError:
         fh.close()
         raise InputError(f"another {what} is using this folder", path=folder,

@@ -585,10 +585,24 @@ def pipeline_stage(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
 
 
 def _pipeline(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Path | None,
-              seed: int, *, workers: int, relax_timeout_s: float = 3600.0,
-              label_timeout_s: float = 1800.0, kpt_density: float = RELAX_KPT_DENSITY,
-              pack_every: int = 10, label: bool = True,
-              progress: bool = True) -> tuple[int, list[dict[str, Any]]]:
+              seed: int, *, label: bool = True, **options: Any) -> tuple[int, list[dict[str, Any]]]:
+    """:func:`_pipeline_body`, holding the labeller's own lock on ``<work>/labels`` too.
+
+    The caller holds ``<work>/.lock``; the labels folder has the lock that
+    :func:`prescreen.physics.labeller.run_labelling` takes, so that no labelling run
+    (e.g. ``benchmarks/label.py --out`` pointed there) writes it during a build.
+    """
+    if not label:
+        return _pipeline_body(pool, ids, work, out, seed, label=False, **options)
+    with folder_lock(work / "labels", "labelling run"):
+        return _pipeline_body(pool, ids, work, out, seed, label=True, **options)
+
+
+def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Path | None,
+                   seed: int, *, workers: int, relax_timeout_s: float = 3600.0,
+                   label_timeout_s: float = 1800.0, kpt_density: float = RELAX_KPT_DENSITY,
+                   pack_every: int = 10, label: bool = True,
+                   progress: bool = True) -> tuple[int, list[dict[str, Any]]]:
     """The scheduler behind both stages; returns (new labels, all relaxation records).
 
     Job kinds, in order of priority: the label of a finished relaxation, the Z2

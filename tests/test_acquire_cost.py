@@ -228,3 +228,12 @@ def test_valence_electrons_match_mendeleev(symbol):
 def test_unknown_element():
     with pytest.raises(InputError, match="unknown element"):
         valence_electrons("Xx")
+
+
+def test_an_exact_fit_keeps_the_assumed_spread():
+    # five coefficients, five records, no penalty: zero residuals say nothing of the spread
+    fitted = CostModel().fit(_records(5, seed=11), ridge=0.0)
+    assert fitted.log_sigma == CostModel().log_sigma
+    assert fitted.coef_cov is None and fitted.dof == float("inf")
+    pred, low, high = fitted.predict_interval(_records(3, seed=12))
+    assert np.all(low < pred) and np.all(pred < high)

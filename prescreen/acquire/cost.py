@@ -253,7 +253,10 @@ class CostModel:
         Minimises ``||y - c0 - L b||^2 + ridge ||b - b0||^2`` with ``y = log core_hours``
         (the SOC factor and multiplier are kept fixed and absorbed into ``c0``). The
         residual spread uses ``n - p_eff`` degrees of freedom, with ``p_eff`` the trace
-        of the hat matrix; with fewer than 3 records the default spread is kept.
+        of the hat matrix; with fewer than 3 records, or fewer than one degree of freedom
+        left (an exact fit), the assumed spread is kept and no coefficient uncertainty is
+        recorded. Edit the coefficients of a saved model by hand only with
+        ``coef_cov`` removed: it describes the fitted ones.
         """
         if "core_hours" not in records.columns:
             raise InputError("recorded wall times missing", path=path, value=list(records.columns),
@@ -280,10 +283,10 @@ class CostModel:
         exps = {t: float(b0[j] + sol[j + 1]) for j, t in enumerate(COST_TERMS)}
         resid = r - A @ sol
         sigma, dof, cov = self.log_sigma, float("inf"), None
-        if n >= 3:
-            Ginv = np.linalg.pinv(G)
-            hat = A @ Ginv @ A.T
-            dof = max(n - float(np.trace(hat)), 1.0)
+        Ginv = np.linalg.pinv(G)
+        dof_fit = n - float(np.trace(A @ Ginv @ A.T))
+        if n >= 3 and dof_fit >= 1.0:  # else the residuals cannot tell a spread: keep it
+            dof = dof_fit
             sigma = float(np.sqrt(np.sum(resid**2) / dof))
             # Var(coefficients) / sigma^2 of the ridge estimate G^-1 A^T r
             cov = Ginv @ (A.T @ A) @ Ginv

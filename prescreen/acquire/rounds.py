@@ -999,8 +999,13 @@ def replay_labelled(
                      n_initial=n_initial, batch_budget=budget,
                      n_rounds=n_rounds, seeds=seeds, name=name, progress=progress)
               for name in (*strategies, "random_selection")]
+    filled = int((~known).sum())
     protocol = (f"{len(seeds)} campaigns per strategy (seeds), each starting from {n_initial} "
                 f"rows at random, then up to {n_rounds} rounds of {budget:.3g} core-hours "
-                "(a tenth of the recorded cost of all rows)")
+                "(a tenth of the total cost"
+                + (f", with the median cost for the {filled} rows that recorded none" if filled
+                   else "") + "); the strategies saw each row's recorded cost, not a "
+                "prediction of it, so the core-hour curve of a cost-aware strategy is "
+                "optimistic")
     return ReplayCurves(curves=pd.concat(curves, ignore_index=True), y=table.y, cost=cost,
                         protocol=protocol)

@@ -393,7 +393,9 @@ def _run_locked(all_jobs: list[tuple[str, Any]], out_dir: Path, settings: LabelS
                                                        else STARTUP_GRACE_S):
                     slot.process.kill()
                     slot.process.join()
-                    fail(slot, f"Timeout: no result within {timeout_s:g} s")
+                    fail(slot, f"Timeout: no result within {timeout_s:g} s" if slot.running
+                         else f"WorkerDidNotStart: the worker did not start the job within "
+                              f"{timeout_s + STARTUP_GRACE_S:g} s")
                     slots[i] = start_slot()
                 elif not slot.process.is_alive():
                     fail(slot, f"WorkerDied: worker process ended (exit code "

@@ -322,7 +322,8 @@ def budget_overrun_probability(cost: Any, low: Any, high: Any, budget: float, *,
     Each candidate's cost is log-normal with median ``cost`` and the central ``level``
     interval ``(low, high)`` (the cost model's interval,
     :meth:`prescreen.acquire.cost.CostModel.predict_interval`, is Student-t in log space
-    after a fit: matching its width with a normal is a little conservative); the
+    after a fit: a normal of the same central width has lighter tails, so with few
+    fitted records the chance of a large overrun is somewhat understated); the
     log-errors are
     independent, or (``correlated``) one common error scales every candidate. Monte
     Carlo with a fixed seed. NaN when there is nothing to sum.
