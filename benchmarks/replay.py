@@ -124,35 +124,12 @@ def cost_descriptors(table, structures):
     return pd.DataFrame(rows, index=table.index)
 
 
-def out_of_fold_cost(descriptors, core_hours, seed: int) -> tuple[np.ndarray, str]:
-    """Cost predicted for each row by a CostModel fitted on the other folds."""
-    from sklearn.model_selection import KFold
-
-    from prescreen.acquire.cost import CostModel
-
-    desc = descriptors.copy()
-    ok = desc.notna().all(axis=1).to_numpy() & np.isfinite(core_hours) & (core_hours > 0)
-    if ok.sum() < 10:
-        return core_hours.copy(), "recorded core-hours (too few rows to fit the cost model)"
-    desc = desc.fillna(desc.median())
-    rec = desc.assign(core_hours=core_hours)
-    pred = np.empty(len(desc))
-    for train, test in KFold(5, shuffle=True, random_state=seed).split(desc):
-        train = train[ok[train]]
-        model = CostModel.for_code("lcao").fit(rec.iloc[train])
-        pred[test] = model.predict(desc.iloc[test])
-    full = CostModel.for_code("lcao").fit(rec[ok])
-    exps = ", ".join(f"{k}^{v:.2f}" for k, v in full.exponents.items())
-    r = np.corrcoef(np.log(pred[ok]), np.log(core_hours[ok]))[0, 1]
-    return pred, (f"out-of-fold CostModel (fit on all: {exps}, log-sigma {full.log_sigma:.2f}; "
-                  f"out-of-fold log-log r = {r:.2f})")
-
-
 def load_open_data(path: Path, seed: int, min_gap_eV: float | None = None):
     """X (ours), X (magpie), y, recorded cost, predicted cost, formulas, notes."""
     import pandas as pd
 
     from prescreen import SPILLAGE_THRESHOLD
+    from prescreen.acquire.cost import out_of_fold_costs
     from prescreen.baselines import magpie_features
     from prescreen.featurise import featurise
     from prescreen.prototypes import structure_from_row
@@ -173,7 +150,7 @@ def load_open_data(path: Path, seed: int, min_gap_eV: float | None = None):
     magpie = magpie_features(list(formulas))
     y = hits(table, min_gap_eV)
     cost = table["core_hours"].to_numpy(dtype=float)
-    pred, cost_note = out_of_fold_cost(cost_descriptors(table, structures), cost, seed)
+    pred, cost_note = out_of_fold_costs(cost_descriptors(table, structures), cost, seed=seed)
     rule = f"spillage >= {SPILLAGE_THRESHOLD}" + (
         "" if min_gap_eV is None else f" and band gap with SOC >= {min_gap_eV:g} eV")
     notes = [f"data: {path}: {len(y)} labelled rows, {y.sum()} positives "

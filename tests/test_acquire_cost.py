@@ -237,3 +237,19 @@ def test_an_exact_fit_keeps_the_assumed_spread():
     assert fitted.coef_cov is None and fitted.dof == float("inf")
     pred, low, high = fitted.predict_interval(_records(3, seed=12))
     assert np.all(low < pred) and np.all(pred < high)
+
+
+def test_out_of_fold_costs_never_use_a_rows_own_cost():
+    from prescreen.acquire.cost import out_of_fold_costs
+
+    rec = _records(40, seed=21)
+    desc = rec[list(COST_TERMS)]
+    pred, note = out_of_fold_costs(desc, rec["core_hours"].to_numpy(), seed=3)
+    assert "out-of-fold" in note and pred.shape == (40,)
+    changed = rec["core_hours"].to_numpy().copy()
+    changed[7] *= 1000.0  # a wild wall time for row 7 only
+    again, _ = out_of_fold_costs(desc, changed, seed=3)
+    assert again[7] == pytest.approx(pred[7], rel=1e-12)  # its own prediction did not move
+    assert not np.allclose(again, pred)  # the rows it helped predict did
+    few, note = out_of_fold_costs(desc.iloc[:5], rec["core_hours"].to_numpy()[:5])
+    assert "too few rows" in note
