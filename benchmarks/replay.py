@@ -204,6 +204,7 @@ def main(argv: list[str] | None = None) -> int:
     from prescreen.acquire.replay import plot_discovery, replay, summarise
     from prescreen.acquire.rounds import MIN_REPLAY_POSITIVES as MIN_POSITIVES
     from prescreen.acquire.rounds import MIN_REPLAY_ROWS as MIN_LABELLED
+    from prescreen.acquire.rounds import leaf_rows
     from prescreen.model import SpillageClassifier
 
     seed0 = 0
@@ -231,8 +232,14 @@ def main(argv: list[str] | None = None) -> int:
     print(f"  campaign: {args.n_initial} random evaluations, then rounds of {budget:.2f} core-hours "
           f"(~{args.batch_runs:g} median evaluations), until {args.until:.0%} of positives; seeds {seeds}")
 
+    # leaves sized for the table, as the report's replay does: LightGBM's default of 10 rows
+    # per leaf cannot split the first rounds' 10-30 rows, leaving a constant model
+    leaf = leaf_rows(len(y))
+    print(f"  model: SpillageClassifier, {args.n_models} members, min_child_samples {leaf}")
+
     def ours(seed: int):
-        return SpillageClassifier(n_models=args.n_models, random_state=seed, n_jobs=1)
+        return SpillageClassifier(n_models=args.n_models, random_state=seed, n_jobs=1,
+                                  min_child_samples=leaf)
 
     common = dict(n_initial=args.n_initial, batch_budget=budget, until=args.until, seeds=seeds,
                   predicted_cost=pred, progress=True)
