@@ -289,8 +289,8 @@ class CostModel:
             dof = dof_fit
             sigma = float(np.sqrt(np.sum(resid**2) / dof))
             # Var(coefficients) / sigma^2 of the ridge estimate G^-1 A^T r
-            cov = Ginv @ (A.T @ A) @ Ginv
-            cov = tuple(tuple(float(v) for v in row) for row in 0.5 * (cov + cov.T))
+            V = Ginv @ (A.T @ A) @ Ginv
+            cov = _read_cov(0.5 * (V + V.T))
         return replace(self, intercept=float(sol[0]), exponents=exps, log_sigma=sigma,
                        n_fitted=int(n), coef_cov=cov, dof=float(dof))
 
@@ -395,7 +395,7 @@ def out_of_fold_costs(descriptors: pd.DataFrame, core_hours: Any, *, seed: int =
 
 
 def _read_cov(value: Any) -> tuple | None:
-    """``coef_cov`` from JSON: None, or a square matrix of 1 + len(COST_TERMS) rows."""
+    """``coef_cov`` as stored: None, or a square matrix of 1 + len(COST_TERMS) rows."""
     if value is None:
         return None
     C = np.asarray(value, dtype=float)

@@ -986,6 +986,7 @@ def replay_labelled(
     """
     import pandas as pd
 
+    from prescreen.acquire.cost import COST_TERMS, descriptors_for_structure, out_of_fold_costs
     from prescreen.acquire.replay import replay
     from prescreen.report import ReplayCurves
 
@@ -1001,13 +1002,11 @@ def replay_labelled(
     def factory(seed: int) -> SpillageClassifier:
         return _classifier(n_models, seed, n)
 
-    from prescreen.acquire.cost import COST_TERMS, descriptors_for_structure, out_of_fold_costs
-
     # what a cost-aware strategy sees: a prediction, fitted without the row's own cost
     desc = pd.DataFrame([descriptors_for_structure(st) if st is not None else {}
                          for st in (table.structures or [None] * n)],
                         columns=list(COST_TERMS))
-    predicted, how = out_of_fold_costs(desc, np.where(known, cost, np.nan), seed=seeds[0])
+    predicted, how = out_of_fold_costs(desc, table.core_hours, seed=seeds[0])
     n_initial, budget = max(2, n // 10), float(cost.sum()) / 10
     curves = [replay(X, table.y, cost, table.formulas, strategy_by_name(name), factory,
                      n_initial=n_initial, batch_budget=budget, predicted_cost=predicted,
