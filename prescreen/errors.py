@@ -92,6 +92,18 @@ class LabellingError(PrescreenError):
     """A DFT labelling calculation failed; the message says which structure and why."""
 
 
+class NoDirectGap(LabellingError):
+    """The occupied and empty bands with spin-orbit coupling touch at some k point, so the
+    occupied states, and a Z2 invariant of them, are not defined there.
+
+    ``gap_eV`` is the smallest direct gap found (eV).
+    """
+
+    def __init__(self, message: str, gap_eV: float) -> None:
+        super().__init__(message)
+        self.gap_eV = float(gap_eV)
+
+
 class PrescreenWarning(UserWarning):
     """Something the user should know about that does not stop the work."""
 

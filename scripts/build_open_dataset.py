@@ -431,6 +431,7 @@ def _z2_one(ident: str, payload: dict[str, Any], result_path: str) -> None:
     From parities when the layer has an inversion centre, else from Wilson loops
     (:func:`prescreen.invariants.choose_method`).
     """
+    from prescreen.errors import NoDirectGap
     from prescreen.invariants import choose_method
     from prescreen.physics.dft import LabelSettings
     from prescreen.physics.parity import z2_from_parities
@@ -452,6 +453,9 @@ def _z2_one(ident: str, payload: dict[str, Any], result_path: str) -> None:
             rec |= {"status": "ok", "z2": w.z2, "wilson_loops": len(w.k2), "nk1": w.nk1,
                     "min_link": w.min_link, "direct_gap_soc_eV": w.direct_gap_soc_eV,
                     "kmesh": list(w.kmesh)}
+    except NoDirectGap as exc:  # a metal after all: the invariant is not defined
+        rec |= {"status": "no_direct_gap", "reason": str(exc),
+                "direct_gap_soc_eV": exc.gap_eV}
     except Exception as exc:  # recorded, not raised: one failure must not stop the run
         rec |= {"status": "failed", "reason": f"{type(exc).__name__}: {exc}"}
     rec["wall_s"] = round(time.perf_counter() - t0, 2)
@@ -474,13 +478,17 @@ def _z2_done(z2_log: Path) -> set[str]:
 def _z2_candidate(relax_rec: dict[str, Any], label: Any) -> dict[str, Any] | None:
     """Whether a label earns a Z2 job; a record when it cannot have one.
 
-    Returns None when the structure is a positive with a band gap with SOC (a Z2 job is
-    due), and ``{"status": "skipped"}`` for everything else (not positive, or no gap).
+    Returns None when the structure is a positive whose occupied states with SOC are
+    separated from the empty ones at every k of the labelling mesh (a direct gap, which
+    a band-inverted semimetal has too), or whose label predates the stored direct gap (the
+    Z2 job checks the gap itself): a Z2 job is due. ``{"status": "skipped"}`` for
+    everything else (not positive, or the direct gap closes).
     """
     from prescreen.physics.dft import METAL_GAP_EV, prepare_monolayer
 
+    direct = label.direct_gap_soc_eV  # NaN in labels recorded before it was stored
     if not (label.ok and label.spillage >= POSITIVE_THRESHOLD
-            and label.gap_soc_eV >= METAL_GAP_EV):
+            and (label.gap_soc_eV >= METAL_GAP_EV or not direct < METAL_GAP_EV)):
         return {"id": label.id, "status": "skipped"}
     try:
         prepare_monolayer(structure_from_row(relax_rec))
@@ -647,7 +655,8 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
             return f"relax {rec.get('status')}"
         if kind == "z2":
             _append_jsonl(z2_log, rec)
-            return f"Z2 {rec.get('z2')}" if rec.get("status") == "ok" else "Z2 failed"
+            return {"ok": f"Z2 {rec.get('z2')}", "no_direct_gap": "Z2 undefined (no direct gap)"
+                    }.get(rec.get("status"), "Z2 failed")
         if "settings" not in rec:  # the child left no record: timeout or crash
             rec = LabelRecord.failed(ident, str(rows.loc[ident, "reduced_formula"]), settings,
                                      rec["reason"], rec["wall_s"]).as_dict()
@@ -755,11 +764,24 @@ def _label_records(work: Path) -> list[Any]:
 
 
 # --- pack ---------------------------------------------------------------------------
-def _z2_columns(z2: dict[str, dict[str, Any]], ident: str) -> dict[str, Any]:
+def _z2_columns(z2: dict[str, dict[str, Any]], label: Any) -> dict[str, Any]:
     """``z2`` (0, 1 or None), ``z2_method`` and ``z2_status`` of one labelled structure."""
-    rec = z2.get(ident)
+    from prescreen.physics.dft import METAL_GAP_EV
+
+    rec = z2.get(label.id)
     if rec is None:
-        return {"z2": None, "z2_method": "", "z2_status": "not computed (not a gapped positive)"}
+        if label.spillage < POSITIVE_THRESHOLD:
+            why = "not computed (not a positive)"
+        elif label.direct_gap_soc_eV < METAL_GAP_EV:
+            why = (f"not defined (direct gap with SOC {label.direct_gap_soc_eV:.3f} eV on the "
+                   "labelling mesh: the bands touch)")
+        else:
+            why = "pending (next run)"
+        return {"z2": None, "z2_method": "", "z2_status": why}
+    if rec.get("status") == "no_direct_gap":
+        return {"z2": None, "z2_method": rec.get("method", ""),
+                "z2_status": f"not defined (direct gap with SOC {rec['direct_gap_soc_eV']:.3f} "
+                             f"eV on the {rec.get('method', '')} mesh: the bands touch)"}
     if rec.get("status") == "ok":
         # records from before the method was recorded all came from parities
         return {"z2": int(rec["z2"]), "z2_method": rec.get("method", "parity"),
@@ -804,11 +826,12 @@ def _labelled_table(pool: "pd.DataFrame", relax: Sequence[dict[str, Any]],
             "kpts": np.asarray(rec.kpts, dtype=np.float32).ravel().tolist(),
             "settings": json.dumps(rec.settings, sort_keys=True, default=str),
             "versions": json.dumps(rec.versions, sort_keys=True),
-            **_z2_columns(z2, rec.id),
+            "direct_gap_soc_eV": float(rec.direct_gap_soc_eV),
+            **_z2_columns(z2, rec),
         })
     cols = ["id", "prototype", "family", "reduced_formula", "elements", "n_atoms", "spillage",
-            "high_spillage", "k_max", "gap_nosoc_eV", "gap_soc_eV", "is_metal", "magmom_muB",
-            "kmesh", "wall_s", "core_hours", "relax_wall_s", "residual_fmax_eV_per_A", "a_A",
+            "high_spillage", "k_max", "gap_nosoc_eV", "gap_soc_eV", "direct_gap_soc_eV",
+            "is_metal", "magmom_muB", "kmesh", "wall_s", "core_hours", "relax_wall_s", "residual_fmax_eV_per_A", "a_A",
             "b_A", "gamma_deg", "lattice", "species", "frac_coords", "gamma_k", "kpts",
             "settings", "versions", "z2", "z2_method", "z2_status"]
     df = pd.DataFrame(rows, columns=cols)
@@ -869,10 +892,14 @@ def datasheet(pool: "pd.DataFrame", labelled: "pd.DataFrame", relax: "pd.DataFra
     computed = positive[positive["z2_status"] == "computed"] if n_lab else positive
     by_method = computed["z2_method"].value_counts().to_dict() if n_lab else {}
     pending = int(positive["z2_status"].str.startswith("pending").sum()) if n_lab else 0
+    undefined = int(positive["z2_status"].str.startswith("not defined").sum()) if n_lab else 0
+    z2_semimetal = int((computed["is_metal"]).sum()) if n_lab else 0
     z2_text = (f"computed for {len(computed)} ({by_method.get('parity', 0)} from parities, "
-               f"{by_method.get('wilson', 0)} from Wilson loops), of which "
-               f"{_count((computed['z2'] == 1).sum(), 'has', 'have')} Z2 = 1"
-               + (f"; {pending} wait for Wilson loops at the next run" if pending else "")
+               f"{by_method.get('wilson', 0)} from Wilson loops; {z2_semimetal} of them "
+               f"semimetals with a direct gap), of which "
+               f"{_count((computed['z2'] == 1).sum(), 'has', 'have')} Z2 = 1; not defined "
+               f"for {undefined} (the bands touch)"
+               + (f"; {pending} wait for the next run" if pending else "")
                if n_lab else "none yet")
     status = relax["status"].value_counts().to_dict() if len(relax) else {}
     core_h = float(labelled["core_hours"].sum()) if n_lab else 0.0
@@ -916,7 +943,7 @@ numbers by hand (the integrity test checks the file's hash).*
 |---|---|
 | `{POOL_PARQUET}` | the unlabelled pool, one row per candidate: `id`, `prototype`, `family`, `reduced_formula`, `formula`, `elements` (space-separated), `n_elements`, `n_atoms`, `decoration` (JSON, site role -> element), `a_A`, `b_A`, `gamma_deg`, `lattice` (9 floats, row vectors, angstrom), `species`, `frac_coords` (3 per atom) |
 | `{POOL_XYZ}` | the same starting geometries as compressed extended XYZ (`id`, `prototype` per frame; positions printed to 8 decimals, the Parquet file keeps full double precision) |
-| `{LABELLED_PARQUET}` | relaxed and labelled monolayers: pool columns, `spillage` (max over k of gamma(k), electrons), `high_spillage` (spillage >= {POSITIVE_THRESHOLD}), `k_max`, `gap_nosoc_eV`, `gap_soc_eV`, `is_metal`, `magmom_muB`, `kmesh`, `wall_s`, `core_hours`, `relax_wall_s`, `residual_fmax_eV_per_A`, relaxed `lattice`/`species`/`frac_coords`, `gamma_k` and `kpts` (the whole gamma(k) on the mesh), `settings`, `versions`, `z2` (0 or 1, empty where not computed), `z2_method` (`parity` or `wilson`) and `z2_status` |
+| `{LABELLED_PARQUET}` | relaxed and labelled monolayers: pool columns, `spillage` (max over k of gamma(k), electrons), `high_spillage` (spillage >= {POSITIVE_THRESHOLD}), `k_max`, `gap_nosoc_eV`, `gap_soc_eV`, `direct_gap_soc_eV` (smallest direct gap with SOC on the mesh; empty for labels from before it was stored), `is_metal`, `magmom_muB`, `kmesh`, `wall_s`, `core_hours`, `relax_wall_s`, `residual_fmax_eV_per_A`, relaxed `lattice`/`species`/`frac_coords`, `gamma_k` and `kpts` (the whole gamma(k) on the mesh), `settings`, `versions`, `z2` (0 or 1, empty where not computed), `z2_method` (`parity` or `wilson`) and `z2_status` |
 | `{LABELLED_XYZ}` | relaxed labelled structures as compressed extended XYZ (`id`, `spillage` per frame) |
 | `{RELAX_PARQUET}` | every relaxation attempted, with `status` (ok, not_converged, fell_apart, failed), `reason`, residual force and the labelling outcome |
 | `{MANIFEST}` | SHA-256 and size of every file above and of this datasheet |
@@ -933,7 +960,7 @@ numbers by hand (the integrity test checks the file's hash).*
 - Labelled: **{n_lab}**; positives at spillage >= {POSITIVE_THRESHOLD}: {n_pos}
   (positive rate {_rate(n_pos, n_lab)}); {n_pos_gapped} of the positives have a band gap
   with spin-orbit coupling, the others are metals.
-- Z2 of the positives with a band gap with SOC: {z2_text}.
+- Z2 of the positives: {z2_text}.
 - Compute: {core_h:.2f} core-hours of labelling and {relax_h:.2f} core-hours of
   relaxation (wall time of single-core jobs, on a shared machine); median per
   structure: {_median(relax["wall_s"])} s to relax, {_median(labelled["wall_s"])} s to label.
@@ -977,8 +1004,11 @@ python scripts/build_open_dataset.py --seed {seed} --workers 2    # or: make dat
    contain K), Fermi-Dirac smearing, spin-orbit coupling added non-self-consistently,
    spillage of Liu and Vanderbilt, Phys. Rev. B 90, 125133 (2014), with occupations
    from the Fermi level at each k. Spin-paired (non-magnetic) ground states.
-5. **Z2**, for positives with a band gap with spin-orbit coupling, at the same level of
-   theory. With an inversion centre (within {SYMPREC_A} A, then made exact):
+5. **Z2**, for positives whose occupied states with spin-orbit coupling are separated
+   from the empty ones at every k (a direct gap: insulators, and band-inverted semimetals
+   whose indirect gap is closed; before 2026-12-02 only those with an indirect gap were
+   tried, and the Z2 job of a positive labelled before then checks the direct gap
+   itself), at the same level of theory. With an inversion centre (within {SYMPREC_A} A, then made exact):
    `prescreen.physics.parity.z2_from_parities` (a symmetry-reduced ground state on an
    even mesh, then the states at the four TRIMs without symmetry; Z2 values recorded
    before 2026-12-02 came from one unreduced run on that mesh: the route changed, not the

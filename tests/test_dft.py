@@ -29,6 +29,7 @@ from prescreen.physics.dft import (
     LabelSettings,
     band_gap,
     choose_kpts,
+    direct_band_gap,
     honeycomb_monolayer,
     is_hexagonal,
     label_structure,
@@ -76,11 +77,15 @@ def test_spillage_of_reference_monolayers(name, topological, gamma_range, k_expe
     if k_expected is not None:
         assert any(_same_k(rec.k_max, k) for k in k_expected), rec.k_max
     assert not rec.is_metal and rec.gap_soc_eV > 0.0
+    assert rec.direct_gap_soc_eV >= rec.gap_soc_eV - 1e-9  # min over k >= the indirect gap
+    if name == "MoS2-2H":  # a direct gap at K (Mak et al., PRL 105, 136805 (2010)), on the mesh
+        assert rec.direct_gap_soc_eV == pytest.approx(rec.gap_soc_eV, abs=1e-6)
     assert rec.gamma.shape == (36,) and rec.kpts.shape == (36, 3)
     assert np.all(rec.gamma >= 0.0) and rec.gamma.max() == rec.spillage
     assert rec.settings["kmesh"] == [6, 6, 1] and rec.versions["gpaw"] != "not installed"
     back = LabelRecord.from_dict(json.loads(json.dumps(rec.as_dict())))
     assert back.spillage == rec.spillage and np.array_equal(back.gamma, rec.gamma)
+    assert back.direct_gap_soc_eV == rec.direct_gap_soc_eV
 
 
 @pytest.mark.dft
@@ -192,6 +197,31 @@ def test_bulk_input_is_refused_with_the_gap_found():
 def test_band_gap(eigs, n, expected):
     gap, metal = band_gap(np.array(eigs), n)
     assert gap == pytest.approx(expected[0]) and metal is expected[1]
+
+
+def test_direct_gap_of_insulators_matches_ase():
+    # ASE's ase.dft.bandgap.bandgap(direct=True) is the reference for gapped spectra:
+    # random bands with N states below a Fermi level at 0 and the rest above it.
+    from ase.dft.bandgap import bandgap
+
+    rng = np.random.default_rng(7)
+    for n in (2, 4, 6):
+        below = -rng.uniform(0.05, 3.0, size=(12, n))
+        above = rng.uniform(0.05, 3.0, size=(12, 8 - n))
+        eigs = np.sort(np.hstack([below, above]), axis=1)
+        ref, _, _ = bandgap(eigenvalues=eigs[None], efermi=0.0, direct=True)  # (spin, k, n)
+        assert direct_band_gap(eigs, n) == pytest.approx(ref)
+        assert direct_band_gap(eigs, n) >= band_gap(eigs, n)[0]
+
+
+def test_direct_gap_stays_open_in_a_band_inverted_semimetal():
+    # Band N - 1 tops out at +0.3 at k0 and band N bottoms out at -0.2 at k1: the bands
+    # overlap in energy (no indirect gap, a metal) but are apart at every k
+    # (definition, common practice).
+    eigs = np.array([[-1.0, 0.3, 0.8], [-1.0, -0.5, -0.2], [-1.0, 0.0, 0.5]])
+    assert band_gap(eigs, 2) == (0.0, True)
+    assert direct_band_gap(eigs, 2) == pytest.approx(0.3)  # 0.5 - 0.0 at the third k
+    assert direct_band_gap(eigs, 1.5) == 0.0  # no set of occupied states
 
 
 @pytest.mark.parametrize(

@@ -12,7 +12,9 @@ import gzip
 import hashlib
 import io
 import json
+import math
 import re
+from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
@@ -45,8 +47,8 @@ GAP_ATOL_EV = 0.02
 
 LABELLED_COLUMNS = [
     "id", "prototype", "family", "reduced_formula", "elements", "n_atoms", "spillage",
-    "high_spillage", "k_max", "gap_nosoc_eV", "gap_soc_eV", "is_metal", "magmom_muB",
-    "kmesh", "wall_s", "core_hours", "relax_wall_s", "residual_fmax_eV_per_A", "a_A",
+    "high_spillage", "k_max", "gap_nosoc_eV", "gap_soc_eV", "direct_gap_soc_eV", "is_metal",
+    "magmom_muB", "kmesh", "wall_s", "core_hours", "relax_wall_s", "residual_fmax_eV_per_A", "a_A",
     "b_A", "gamma_deg", "lattice", "species", "frac_coords", "gamma_k", "kpts",
     "settings", "versions", "z2", "z2_method", "z2_status",
 ]
@@ -163,12 +165,16 @@ def test_labelled_schema_counts_and_ranges(labelled, pool, manifest):
     for row in labelled.to_dict("records"):
         ok, why = check_intact_monolayer(structure_from_row(row))
         assert ok, (row["id"], why)
-    # Z2 from parities: 0 or 1 where computed, and only for gapped positives
+    # the smallest direct gap is at least the indirect one (definition), where recorded
+    direct = labelled["direct_gap_soc_eV"].dropna()
+    assert (direct >= labelled.loc[direct.index, "gap_soc_eV"] - 1e-9).all()
+    # Z2: 0 or 1 where computed, and only for positives whose bands are apart at every k
     computed = labelled["z2_status"] == "computed"
     assert labelled.loc[computed, "z2"].isin([0, 1]).all()
     assert labelled.loc[computed, "z2_method"].isin(["parity", "wilson"]).all()
     assert labelled.loc[~computed, "z2"].isna().all()
-    assert (labelled.loc[computed, "high_spillage"] & ~labelled.loc[computed, "is_metal"]).all()
+    assert labelled.loc[computed, "high_spillage"].all()
+    assert not (labelled.loc[computed, "direct_gap_soc_eV"] < 0.02).any()  # METAL_GAP_EV
 
 
 def test_relaxation_log_is_consistent(relaxation, labelled):
@@ -510,6 +516,68 @@ def test_a_layer_skipped_for_want_of_inversion_gets_wilson_loops_on_resume(tmp_p
     z2 = {r["id"]: r for r in driver._read_jsonl(log)}
     assert z2[two_h]["method"] == "wilson" and z2[two_h]["status"] == "ok"
     assert z2[one_t] == old[0]
+
+
+def _fake_metallic_positive(direct_gap_eV):
+    """Stand-in for label_structure: a positive whose indirect gap is closed and whose
+    direct gap with SOC is ``direct_gap_eV`` (NaN: a label from before it was stored)."""
+    def label(structure, settings, *, id=None):
+        return replace(_fake_gapped_positive(structure, settings, id=id), gap_soc_eV=0.0,
+                       is_metal=True, direct_gap_soc_eV=direct_gap_eV)
+    return label
+
+
+@pytest.mark.parametrize("direct_gap_eV, computed", [
+    (0.05, True),       # a band-inverted semimetal: the occupied states are defined
+    (0.0, False),       # the bands touch: no invariant to compute
+    (math.nan, True),   # not recorded: the Z2 job checks the gap itself
+])
+def test_a_metallic_positive_gets_a_z2_job_when_its_bands_are_apart_at_every_k(
+        tmp_path, z2_pipeline, monkeypatch, direct_gap_eV, computed):
+    import prescreen.physics.dft as dft
+
+    driver, table, one_t, _ = z2_pipeline
+    monkeypatch.setattr(dft, "label_structure", _fake_metallic_positive(direct_gap_eV))
+    work = tmp_path / "work"
+    driver.pipeline_stage(table, [one_t], work, tmp_path / "out", 1, workers=1,
+                          progress=False)
+    z2 = {r["id"]: r for r in driver._read_jsonl(work / driver.Z2_LOG)}
+    assert (one_t in z2) is computed
+    packed = driver._labelled_table(table, driver._read_jsonl(work / "relax.jsonl"),
+                                    driver._label_records(work), z2).set_index("id")
+    status = packed.loc[one_t, "z2_status"]
+    if computed:
+        assert status == "computed" and packed.loc[one_t, "z2"] == 1
+    else:
+        assert status.startswith("not defined (direct gap with SOC 0.000 eV on the labelling")
+        assert pd.isna(packed.loc[one_t, "z2"])
+    assert packed.loc[one_t, "direct_gap_soc_eV"] == pytest.approx(direct_gap_eV, nan_ok=True)
+
+
+def test_a_z2_job_that_finds_the_bands_touching_is_recorded_and_not_rerun(
+        tmp_path, z2_pipeline, monkeypatch):
+    import prescreen.physics.dft as dft
+    import prescreen.physics.parity as parity
+    from prescreen.errors import NoDirectGap
+
+    def touching(structure, settings, *, id=None):
+        raise NoDirectGap(f"{id}: no direct gap with spin-orbit coupling at some k", 0.004)
+
+    driver, table, one_t, _ = z2_pipeline
+    monkeypatch.setattr(dft, "label_structure", _fake_metallic_positive(math.nan))
+    monkeypatch.setattr(parity, "z2_from_parities", touching)
+    work = tmp_path / "work"
+    driver.pipeline_stage(table, [one_t], work, tmp_path / "out", 1, workers=1,
+                          progress=False)
+    (rec,) = driver._read_jsonl(work / driver.Z2_LOG)
+    assert (rec["status"], rec["direct_gap_soc_eV"]) == ("no_direct_gap", 0.004)
+    packed = driver._labelled_table(table, driver._read_jsonl(work / "relax.jsonl"),
+                                    driver._label_records(work), {one_t: rec})
+    assert packed.loc[0, "z2_status"] == ("not defined (direct gap with SOC 0.004 eV on the "
+                                          "parity mesh: the bands touch)")
+    assert driver.pipeline_stage(table, [one_t], work, tmp_path / "out", 1,
+                                 progress=False) == 0
+    assert len(driver._read_jsonl(work / driver.Z2_LOG)) == 1
 
 
 def test_a_whole_last_record_without_its_newline_is_kept(tmp_path):

@@ -54,6 +54,7 @@ __all__ = [
     "choose_kpts",
     "is_hexagonal",
     "band_gap",
+    "direct_band_gap",
     "label_structure",
     "relax_monolayer",
     "honeycomb_monolayer",
@@ -213,6 +214,10 @@ class LabelRecord:
         Cores times wall time (hours); every calculation runs on one core.
     cpu_s
         CPU time (s) the calculation used; below ``wall_s`` when the core was shared.
+    direct_gap_soc_eV
+        Smallest direct gap with SOC on the mesh (:func:`direct_band_gap`, eV); positive
+        in a band-inverted semimetal too, where a Z2 invariant is still defined. NaN in
+        records written before it was stored, and when failed.
     gamma
         Shape (nk,), gamma(k) on the full mesh (electrons).
     kpts
@@ -240,6 +245,7 @@ class LabelRecord:
     status: str = "ok"
     error: str | None = None
     cpu_s: float = math.nan
+    direct_gap_soc_eV: float = math.nan
 
     def __post_init__(self) -> None:
         if self.status not in ("ok", "failed"):
@@ -290,13 +296,15 @@ class LabelRecord:
         """Inverse of :meth:`as_dict` (missing arrays become empty)."""
         names = [f.name for f in fields(cls)]
         required = [n for n in names
-                    if n not in ("gamma", "kpts", "status", "error", "cpu_s")]
+                    if n not in ("gamma", "kpts", "status", "error", "cpu_s",
+                                 "direct_gap_soc_eV")]
         missing = [n for n in required if n not in data]
         if missing:
             raise InputError("label record lacks keys", value=sorted(data),
                              expected=f"also {missing}")
         d = {n: data[n] for n in names if n in data}
-        for key in ("spillage", "gap_nosoc_eV", "gap_soc_eV", "magmom", "cpu_s"):
+        for key in ("spillage", "gap_nosoc_eV", "gap_soc_eV", "magmom", "cpu_s",
+                    "direct_gap_soc_eV"):
             d[key] = math.nan if d.get(key) is None else float(d[key])
         d["k_max"] = np.full(3, np.nan) if d["k_max"] is None else d["k_max"]
         d.setdefault("gamma", np.zeros(0))
@@ -498,6 +506,22 @@ def band_gap(eigenvalues: np.ndarray, n_electrons: float) -> tuple[float, bool]:
     return gap, False
 
 
+def direct_band_gap(eigenvalues: np.ndarray, n_electrons: float) -> float:
+    """Smallest direct gap on the mesh between the occupied and the empty states.
+
+    ``min_k (e[k, N] - e[k, N - 1])`` (eV) for ``N`` electrons, one per state (spinor
+    eigenvalues). The occupied states are separated from the empty ones at every k, and a
+    Z2 invariant of them is defined, when this is positive, even where the indirect gap
+    (:func:`band_gap`) is closed, as in a band-inverted semimetal. A non-integer or
+    out-of-range count gives 0.0: no set of occupied states exists then.
+    """
+    e = np.sort(np.asarray(eigenvalues, dtype=float), axis=1)
+    n = int(round(n_electrons))
+    if abs(n - n_electrons) > 1e-6 or n <= 0 or n >= e.shape[1]:
+        return 0.0
+    return float(np.min(e[:, n] - e[:, n - 1]))
+
+
 def _gpaw_calculator(settings: LabelSettings, kmesh: tuple[int, int, int],
                      txt: str | Path | None, magnetic: bool, **extra: Any) -> Any:
     from gpaw import GPAW, FermiDirac
@@ -616,6 +640,7 @@ def label_structure(structure: "Structure | Atoms",
     gamma = spillage_from_overlap(overlap, w_nosoc, w_soc)
     gap_nosoc, _ = band_gap(e_nosoc, n_electrons)
     gap_soc, metal = band_gap(e_soc, n_electrons)
+    direct_soc = direct_band_gap(e_soc, n_electrons)
     wall = time.perf_counter() - t0
     sdict = settings.as_dict()
     sdict.update(kmesh=list(kmesh), mode="lcao", nbands="nao",
@@ -626,7 +651,8 @@ def label_structure(structure: "Structure | Atoms",
                        k_max=kpts[k_arg], gap_nosoc_eV=gap_nosoc, gap_soc_eV=gap_soc,
                        is_metal=metal, magmom=magmom, settings=sdict,
                        versions=code_versions(), wall_s=wall, core_hours=wall / 3600.0,
-                       gamma=gamma, kpts=kpts, cpu_s=time.process_time() - c0)
+                       gamma=gamma, kpts=kpts, cpu_s=time.process_time() - c0,
+                       direct_gap_soc_eV=direct_soc)
 
 
 #: Relative step of the fine lattice scan around the coarse minimum (dimensionless;

@@ -49,7 +49,7 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from prescreen.errors import InputError, LabellingError
+from prescreen.errors import InputError, LabellingError, NoDirectGap
 from prescreen.physics.dft import (
     METAL_GAP_EV,
     LabelSettings,
@@ -341,9 +341,9 @@ def z2_from_parities(structure: "Structure | Atoms", settings: LabelSettings = L
     gap = float(min(np.min(e_mesh[:, n_occ] - e_mesh[:, n_occ - 1]),
                     np.min(e_trim[:, n_occ] - e_trim[:, n_occ - 1])))
     if gap < METAL_GAP_EV:
-        raise LabellingError(f"{name}: no direct gap with spin-orbit coupling at some k "
-                             f"(smallest {gap:.3f} eV < {METAL_GAP_EV} eV): the occupied "
-                             "states, and so the invariant, are not defined")
+        raise NoDirectGap(f"{name}: no direct gap with spin-orbit coupling at some k "
+                          f"(smallest {gap:.3f} eV < {METAL_GAP_EV} eV): the occupied "
+                          "states, and so the invariant, are not defined", gap)
     deltas, minus, worst = [], [], 0.0
     for trim in TRIMS:
         offset = np.abs(((kpts - np.asarray(trim)) + 0.5) % 1.0 - 0.5).sum(axis=1)

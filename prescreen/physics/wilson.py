@@ -48,7 +48,7 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from prescreen.errors import InputError, LabellingError, PrescreenError
+from prescreen.errors import InputError, LabellingError, NoDirectGap, PrescreenError
 from prescreen.physics.dft import (
     METAL_GAP_EV,
     LabelSettings,
@@ -329,10 +329,10 @@ def z2_from_wilson_loops(structure: "Structure | Atoms", settings: LabelSettings
                 raise LabellingError(f"{name}: GPAW non-self-consistent run failed: "
                                      f"{type(exc).__name__}: {exc}") from exc
             if gap < METAL_GAP_EV:
-                raise LabellingError(
+                raise NoDirectGap(
                     f"{name}: no direct gap with spin-orbit coupling on a Wilson loop "
                     f"(smallest {gap:.3f} eV < {METAL_GAP_EV} eV): the occupied states, and "
-                    "so the invariant, are not defined")
+                    "so the invariant, are not defined", gap)
             stats["gap"] = min(stats["gap"], gap)
             wcc = []
             for y, c, s in zip(np.atleast_1d(k2), coeffs, overlaps):
