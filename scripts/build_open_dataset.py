@@ -46,6 +46,7 @@ import math
 import multiprocessing as mp
 import os
 import platform
+import re
 import signal
 import sys
 import time
@@ -470,9 +471,24 @@ def _z2_one(ident: str, payload: dict[str, Any], result_path: str) -> None:
 Z2_RETRY_STATUSES = frozenset({"no_inversion"})
 
 
+#: Reason Wilson loops gave for an odd electron count before that was recorded as
+#: touching bands (``no_direct_gap``); such records are rerun, a quick refusal, to say so.
+_OLD_ODD_COUNT = re.compile(r"LabellingError: \S+: (\d+) valence electrons; a time-reversal-"
+                            r"symmetric insulator needs an even number")
+
+
+def _z2_rerun(rec: dict[str, Any]) -> bool:
+    """Whether a Z2 record must be computed again (see :data:`Z2_RETRY_STATUSES`)."""
+    if rec.get("status") in Z2_RETRY_STATUSES:
+        return True
+    old = _OLD_ODD_COUNT.fullmatch(str(rec.get("reason", "")))
+    return rec.get("status") == "failed" and old is not None and int(old.group(1)) % 2 == 1
+
+
 def _z2_done(z2_log: Path) -> set[str]:
     """IDs whose Z2 job needs no rerun."""
-    return {r["id"] for r in _read_jsonl(z2_log) if r.get("status") not in Z2_RETRY_STATUSES}
+    newest = {r["id"]: r for r in _read_jsonl(z2_log)}
+    return {i for i, r in newest.items() if not _z2_rerun(r)}
 
 
 def _z2_candidate(relax_rec: dict[str, Any], label: Any) -> dict[str, Any] | None:

@@ -580,6 +580,17 @@ def test_a_z2_job_that_finds_the_bands_touching_is_recorded_and_not_rerun(
     assert len(driver._read_jsonl(work / driver.Z2_LOG)) == 1
 
 
+def test_old_odd_count_failures_are_rerun_and_other_failures_are_not():
+    driver = _driver()
+    old = ("LabellingError: o2d-x: {} valence electrons; a time-reversal-symmetric insulator "
+           "needs an even number")
+    assert driver._z2_rerun({"status": "failed", "reason": old.format(25)})
+    assert not driver._z2_rerun({"status": "failed", "reason": old.format(24.5)})
+    assert not driver._z2_rerun({"status": "failed", "reason": "LabellingError: o2d-x: GPAW"})
+    assert not driver._z2_rerun({"status": "no_direct_gap", "reason": "odd"})
+    assert driver._z2_rerun({"status": "no_inversion"})
+
+
 def test_a_whole_last_record_without_its_newline_is_kept(tmp_path):
     driver = _driver()
     log = tmp_path / "relax.jsonl"
