@@ -92,7 +92,8 @@ CREATE TABLE IF NOT EXISTS results (
     source TEXT NOT NULL,
     ingested_at TEXT NOT NULL,
     active INTEGER NOT NULL DEFAULT 1,
-    gap_soc_eV REAL
+    gap_soc_eV REAL,
+    direct_gap_soc_eV REAL
 );
 CREATE INDEX IF NOT EXISTS results_candidate ON results(candidate_id, active);
 CREATE TABLE IF NOT EXISTS rounds (
@@ -162,7 +163,8 @@ class ResultIngestReport:
     unchanged: int = 0
     replaced: int = 0
     kept_existing: int = 0
-    #: Stored results without a band gap that a row with the same spillage completed.
+    #: Stored results without a band gap (indirect or direct) that a row with the same
+    #: spillage completed.
     gaps_added: int = 0
     rejections: list[Rejection] = field(default_factory=list)
 
@@ -228,6 +230,7 @@ class Campaign:
         """Add columns that later releases of the same store format introduced."""
         added = [("models", "settings", "TEXT NOT NULL DEFAULT '{}'"),
                  ("results", "gap_soc_eV", "REAL"),
+                 ("results", "direct_gap_soc_eV", "REAL"),
                  ("rejections", "superseded_at", "TEXT")]
         for table, column, kind in added:
             columns = {row[1] for row in self._conn.execute(f"PRAGMA table_info({table})")}
@@ -557,19 +560,27 @@ class Campaign:
                     report.rejections.append(rej)
                     continue
                 old = conn.execute(
-                    "SELECT seq, spillage, gap_soc_eV FROM results"
+                    "SELECT seq, spillage, gap_soc_eV, direct_gap_soc_eV FROM results"
                     " WHERE candidate_id=? AND active=1", (row.id,),
                 ).fetchone()
+                clash: list[tuple[str, Any, Any]] = []
                 if old is not None and old[1] == row.spillage:
                     # The same result. A missing gap is not a different value: a row
                     # without one changes nothing, and a row with one completes a stored
                     # result that had none (in place: nothing is lost).
-                    if row.gap_soc_eV is None or old[2] == row.gap_soc_eV:
+                    gaps = {"gap_soc_eV": (old[2], row.gap_soc_eV),
+                            "direct_gap_soc_eV": (old[3], row.direct_gap_soc_eV)}
+                    clash = [(n, was, new) for n, (was, new) in gaps.items()
+                             if was is not None and new is not None and was != new]
+                    fill = {n: new for n, (was, new) in gaps.items()
+                            if was is None and new is not None}
+                    if not clash and not fill:
                         report.unchanged += 1
                         continue
-                    if old[2] is None:
-                        conn.execute("UPDATE results SET gap_soc_eV=? WHERE seq=?",
-                                     (row.gap_soc_eV, old[0]))
+                    if not clash:
+                        conn.execute("UPDATE results SET "
+                                     + ", ".join(f"{n}=?" for n in fill) + " WHERE seq=?",
+                                     (*fill.values(), old[0]))
                         report.gaps_added += 1
                         continue
                 if old is not None:
@@ -579,11 +590,10 @@ class Campaign:
                     if on_conflict == "error":
                         rej = Rejection(
                             path=path, line=line, value=f"{row.id}={row.spillage!r}"
-                            + (f" (gap_soc_eV {row.gap_soc_eV!r})" if old[1] == row.spillage
-                               else ""),
+                            + (f" ({clash[0][0]} {clash[0][2]!r})" if clash else ""),
                             reason=("conflicts with the stored "
-                                    + (f"spillage {old[1]!r}" if old[1] != row.spillage
-                                       else f"gap_soc_eV {old[2]!r}")
+                                    + (f"{clash[0][0]} {clash[0][1]!r}" if clash
+                                       else f"spillage {old[1]!r}")
                                     + " for this ID; expected the same value, or choose "
                                     "on_conflict 'keep' or 'replace'"),
                         )
@@ -596,10 +606,11 @@ class Campaign:
                     report.added += 1
                 conn.execute(
                     "INSERT INTO results (candidate_id, spillage, functional, code, kmesh,"
-                    " core_hours, notes, source, ingested_at, gap_soc_eV)"
-                    " VALUES (?,?,?,?,?,?,?,?,?,?)",
+                    " core_hours, notes, source, ingested_at, gap_soc_eV, direct_gap_soc_eV)"
+                    " VALUES (?,?,?,?,?,?,?,?,?,?,?)",
                     (row.id, row.spillage, row.functional, row.code, row.kmesh,
-                     row.core_hours, row.notes, row.source, now, row.gap_soc_eV),
+                     row.core_hours, row.notes, row.source, now, row.gap_soc_eV,
+                     row.direct_gap_soc_eV),
                 )
                 conn.execute(
                     "UPDATE proposals SET status='done' WHERE candidate_id=? AND status='pending'",
@@ -615,7 +626,8 @@ class Campaign:
 
         return pd.read_sql_query(
             "SELECT candidate_id AS id, spillage, functional, code, kmesh, core_hours,"
-            " gap_soc_eV, notes, source, ingested_at FROM results WHERE active=1 ORDER BY seq",
+            " gap_soc_eV, direct_gap_soc_eV, notes, source, ingested_at"
+            " FROM results WHERE active=1 ORDER BY seq",
             self._conn,
         ).set_index("id")
 

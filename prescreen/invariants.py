@@ -157,11 +157,13 @@ def _write(path: Path, rows: dict[str, dict[str, str]]) -> None:
 
 
 def gapped_hits(campaign: "Campaign", ids: Iterable[str] | None = None) -> list[str]:
-    """Results at or above the campaign's threshold with a band gap with SOC.
+    """Results at or above the campaign's threshold whose Z2 invariant is defined.
 
-    ``ids`` restricts the search (default: every result). The gap must be recorded
-    (``gap_soc_eV``, which the built-in labeller fills) and at least
-    :data:`prescreen.physics.dft.METAL_GAP_EV`; a metal has no invariant of this kind.
+    That is, whose occupied states with SOC are apart from the empty ones at every k: a
+    recorded direct gap (``direct_gap_soc_eV``, which the built-in labeller fills) of at
+    least :data:`prescreen.physics.dft.METAL_GAP_EV`, which a band-inverted semimetal has
+    too; without one, a band gap (``gap_soc_eV``) of at least that much, since the direct
+    gap is never smaller. ``ids`` restricts the search (default: every result).
     """
     import pandas as pd
 
@@ -171,7 +173,9 @@ def gapped_hits(campaign: "Campaign", ids: Iterable[str] | None = None) -> list[
     if ids is not None:
         labels = labels.loc[labels.index.intersection(list(ids))]
     gap = pd.to_numeric(labels["gap_soc_eV"], errors="coerce")
-    keep = (labels["spillage"] >= campaign.threshold) & (gap >= METAL_GAP_EV)
+    direct = pd.to_numeric(labels["direct_gap_soc_eV"], errors="coerce")
+    apart = direct.where(direct.notna(), gap) >= METAL_GAP_EV
+    keep = (labels["spillage"] >= campaign.threshold) & apart
     return list(labels.index[keep])
 
 

@@ -173,6 +173,21 @@ def test_a_band_gap_completes_a_result_and_a_missing_one_changes_nothing(campaig
     assert campaign.labels().loc["mos2", "gap_soc_eV"] == 1.6
 
 
+def test_a_direct_gap_completes_a_result_and_a_different_one_conflicts(campaign):
+    from dataclasses import replace
+
+    campaign.ingest_results(([replace(result("mos2", 0.01), gap_soc_eV=1.6)], []))
+    rep = campaign.ingest_results(([replace(result("mos2", 0.01), gap_soc_eV=1.6,
+                                            direct_gap_soc_eV=1.7)], []))
+    assert (rep.gaps_added, rep.unchanged, rep.rejections) == (1, 0, [])
+    assert campaign.labels().loc["mos2", ["gap_soc_eV", "direct_gap_soc_eV"]].tolist() == [1.6, 1.7]
+    rep = campaign.ingest_results(([replace(result("mos2", 0.01), direct_gap_soc_eV=1.8)], []))
+    (rej,) = rep.rejections
+    assert "conflicts with the stored direct_gap_soc_eV 1.7" in rej.reason
+    assert rej.value == "mos2=0.01 (direct_gap_soc_eV 1.8)"
+    assert campaign.labels().loc["mos2", "direct_gap_soc_eV"] == 1.7
+
+
 def test_unknown_policy_is_an_input_error(campaign):
     with pytest.raises(InputError, match="unknown conflict policy"):
         campaign.ingest_results(([], []), on_conflict="average")
@@ -263,9 +278,14 @@ def _store_gap(camp):
     assert "gap_soc_eV" in camp.labels().columns
 
 
+def _store_direct_gap(camp):
+    assert "direct_gap_soc_eV" in camp.labels().columns
+
+
 @pytest.mark.parametrize(("table", "column", "check"), [
     ("models", "settings", _store_settings),  # models before they recorded their settings
     ("results", "gap_soc_eV", _store_gap),  # results before they could carry a gap
+    ("results", "direct_gap_soc_eV", _store_direct_gap),  # nor a direct gap
 ])
 def test_store_from_an_earlier_release_is_upgraded_on_open(campaign, table, column, check):
     path = campaign.path

@@ -37,9 +37,23 @@ def campaign(tmp_path):
     camp.close()
 
 
-def test_only_hits_with_a_recorded_gap_are_selected(campaign):
+def test_without_a_direct_gap_only_hits_with_a_recorded_band_gap_are_selected(campaign):
     assert gapped_hits(campaign) == ["c0"]
     assert gapped_hits(campaign, ["c1", "c2"]) == []
+
+
+def test_a_semimetal_hit_with_a_direct_gap_is_selected_and_touching_bands_are_not(campaign):
+    # A Z2 invariant needs the occupied bands apart from the empty ones at every k, not an
+    # indirect gap: band-inverted semimetals (e.g. 1T'-WTe2 in PBE; Qian et al., Science
+    # 346, 1344 (2014), from memory) have one.
+    structure = campaign.structure("c0")
+    campaign.add_candidates([Candidate(f"s{i}", "MoS2", f"gen:s{i}", structure.copy())
+                             for i in range(3)])
+    base = ResultRow(id="s0", spillage=0.9, gap_soc_eV=0.0, source="r.csv:2")
+    campaign.ingest_results(([replace(base, id="s0", direct_gap_soc_eV=0.05),
+                              replace(base, id="s1", direct_gap_soc_eV=0.0),
+                              replace(base, id="s2", spillage=0.2, direct_gap_soc_eV=0.3)], []))
+    assert gapped_hits(campaign) == ["c0", "s0"]
 
 
 def test_refusals_are_recorded_with_the_reason_and_unknown_ids_raise(campaign):
@@ -122,8 +136,9 @@ def test_label_with_z2_checks_the_new_gapped_hits(campaign, monkeypatch, capsys)
     campaign.close()
     assert main(["label", str(path), "c0", "c1", "c2", "--z2", "--no-progress"]) == 0
     out = capsys.readouterr().out
-    assert "Z2 of 1 hit(s) with a band gap with SOC" in out  # c0 only: c1 is a metal
-    assert "hits (spillage >= 0.5): 2 of 3; 1 with a band gap with SOC, 1 metals" in out
+    assert "Z2 of 1 hit(s) whose bands with SOC are apart at every k" in out  # c1: a metal
+    assert ("hits (spillage >= 0.5): 2 of 3; 1 with a band gap with SOC, 0 semimetals with a "
+            "direct gap at every k (Z2 defined for both), 1 metals") in out
     assert "c0: no invariant: c0: no direct gap with spin-orbit coupling (stand-in)" in out
     assert list(read_invariants(path / INVARIANTS_FILE)) == ["c0"]
 

@@ -157,6 +157,21 @@ def test_gap_column_is_read_and_checked(tmp_path):
     assert in_mev.line == 6 and in_mev.value == "150" and "meV" in in_mev.reason
 
 
+def test_direct_gap_column_is_read_and_never_below_the_band_gap(tmp_path):
+    # min over k of a direct gap cannot be below the band gap, its minimum over pairs of
+    # k points (definition, common practice)
+    path = tmp_path / "gaps.csv"
+    path.write_text("id,spillage,gap_soc_eV,Direct_Gap_SOC_eV\nA,0.7,0.0,0.05\n"
+                    "B,0.6,0.12,0.1\nC,0.1,0.3,0.3004\nD,0.2,,0.4\nE,0.3,0.1,-0.2\n")
+    rows, rejections = read_results(path)
+    assert [(r.id, r.gap_soc_eV, r.direct_gap_soc_eV) for r in rows] == [
+        ("A", 0.0, 0.05), ("C", 0.3, 0.3004), ("D", None, 0.4)]
+    below, negative = rejections
+    assert below.line == 3 and below.value == "0.1 < 0.12"
+    assert "direct_gap_soc_eV below gap_soc_eV" in below.reason
+    assert negative.line == 6 and "direct_gap_soc_eV is negative" in negative.reason
+
+
 @pytest.mark.parametrize(("content", "message", "value"), [
     ("id,spill\n", "no 'spillage' column", "id,spill"),  # refused even without rows
     ("id\tspillage\nMoS2\t0.1\n", "no 'id' column; the header is one field", "id\tspillage"),

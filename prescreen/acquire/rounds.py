@@ -935,6 +935,8 @@ def label_pending(
             code=f"GPAW {rec.versions.get('gpaw', '')}".strip(),
             kmesh="x".join(str(k) for k in kmesh) if kmesh else None,
             core_hours=float(rec.core_hours), gap_soc_eV=float(rec.gap_soc_eV),
+            direct_gap_soc_eV=(float(rec.direct_gap_soc_eV)
+                               if math.isfinite(rec.direct_gap_soc_eV) else None),
             notes="prescreen DFT labeller (LCAO, non-self-"
             "consistent spin-orbit coupling)", source=f"{out_dir / 'records.jsonl'}:{cid}",
         ))

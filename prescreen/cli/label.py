@@ -20,7 +20,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--z2", action="store_true",
                         help="then compute the Z2 invariant (parities at the TRIMs, or Wilson loops "
                         "without an inversion centre) of every "
-                        "new hit with a band gap with SOC; results in <campaign>/z2.csv")
+                        "new hit whose bands with SOC are apart at every k (insulators, and "
+                        "semimetals with a direct gap); results in <campaign>/z2.csv")
     parser.add_argument("--no-progress", action="store_true", help="hide progress bars")
 
 
@@ -49,10 +50,17 @@ def run(args: argparse.Namespace) -> int:
         if len(mine):
             from prescreen.invariants import gapped_hits
 
-            gapped = len(gapped_hits(campaign, mine.index))
+            import pandas as pd
+
+            from prescreen.physics.dft import METAL_GAP_EV
+
+            defined = len(gapped_hits(campaign, mine.index))
+            gapped = int((pd.to_numeric(hits["gap_soc_eV"], errors="coerce")
+                          >= METAL_GAP_EV).sum())
             print(f"hits (spillage >= {campaign.threshold:g}): {len(hits)} of {len(mine)}; "
-                  f"{gapped} with a band gap with SOC, {len(hits) - gapped} metals or "
-                  "semimetals (`prescreen train --min-gap` leaves those out of the positives)")
+                  f"{gapped} with a band gap with SOC, {defined - gapped} semimetals with a "
+                  f"direct gap at every k (Z2 defined for both), {len(hits) - defined} metals "
+                  "(`prescreen train --min-gap` counts only the first as positives)")
         if out.failures and not args.retry_failed:
             print("  (failed candidates stay pending; `prescreen label "
                   f"{args.campaign} --retry-failed` computes them again)")
@@ -63,9 +71,10 @@ def run(args: argparse.Namespace) -> int:
 
             hits = gapped_hits(campaign, wanted)
             if hits:
-                print(f"Z2 of {len(hits)} hit(s) with a band gap with SOC:")
+                print(f"Z2 of {len(hits)} hit(s) whose bands with SOC are apart at every k:")
                 print_outcomes(compute_invariants(campaign, hits, progress=not args.no_progress),
                                campaign.path / INVARIANTS_FILE)
             else:
-                print("no new hit with a band gap with SOC: no invariant to compute")
+                print("no new hit whose bands with SOC are apart at every k: no invariant "
+                      "to compute")
     return 0

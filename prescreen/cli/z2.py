@@ -54,8 +54,8 @@ def run(args: argparse.Namespace) -> int:
                     if row["status"] == "ok" or row["method"] == "wilson"}
             ids = [i for i in gapped_hits(campaign) if i not in done]
             if not ids:
-                print("nothing to compute: no labelled hit with a band gap with SOC lacks "
-                      "an invariant (name candidate IDs to compute others)")
+                print("nothing to compute: no labelled hit whose bands with SOC are apart "
+                      "at every k lacks an invariant (name candidate IDs to compute others)")
                 return 0
         outcomes = compute_invariants(campaign, ids, out=out, method=args.method,
                                       progress=not args.no_progress)

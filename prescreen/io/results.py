@@ -3,19 +3,23 @@
 Columns / keys (names matched ignoring case; ``k_mesh``/``k-mesh`` and
 ``core-hours`` are accepted spellings):
 
-=============  =========  =====================================================
-name           required   meaning
-=============  =========  =====================================================
-``id``         yes        candidate identifier (see :func:`prescreen.io.ids.validate_id`)
-``spillage``   yes        spin-orbit spillage, a finite number >= 0
-``functional`` no         exchange-correlation functional, e.g. ``PBE``
-``code``       no         DFT code that produced it
-``kmesh``      no         k-point mesh, three positive integers (``12x12x1``)
-``core_hours`` no         CPU cost, a finite number >= 0 (core hours)
-``gap_soc_eV`` no         band gap with spin-orbit coupling, eV (0 for a metal);
-                          lets a model require a gap (``min_gap_eV``)
-``notes``      no         free text
-=============  =========  =====================================================
+=====================  =========  =====================================================
+name                   required   meaning
+=====================  =========  =====================================================
+``id``                 yes        candidate identifier (see :func:`prescreen.io.ids.validate_id`)
+``spillage``           yes        spin-orbit spillage, a finite number >= 0
+``functional``         no         exchange-correlation functional, e.g. ``PBE``
+``code``               no         DFT code that produced it
+``kmesh``              no         k-point mesh, three positive integers (``12x12x1``)
+``core_hours``         no         CPU cost, a finite number >= 0 (core hours)
+``gap_soc_eV``         no         band gap with spin-orbit coupling, eV (0 for a metal);
+                                  lets a model require a gap (``min_gap_eV``)
+``direct_gap_soc_eV``  no         smallest direct gap with spin-orbit coupling over the k
+                                  points, eV (at least ``gap_soc_eV``); where it is open,
+                                  the occupied states and a Z2 invariant are defined, in a
+                                  band-inverted semimetal too
+``notes``              no         free text
+=====================  =========  =====================================================
 
 A JSON file holds a list of objects with these keys, or ``{"results": [...]}``.
 """
@@ -38,13 +42,13 @@ __all__ = ["RESULT_COLUMNS", "ResultRow", "read_results", "results_from_frame", 
 
 #: Canonical column names, in output order.
 RESULT_COLUMNS: tuple[str, ...] = ("id", "spillage", "functional", "code", "kmesh", "core_hours",
-                                   "gap_soc_eV", "notes")
+                                   "gap_soc_eV", "direct_gap_soc_eV", "notes")
 
 _ALIASES = {
     "id": "id", "spillage": "spillage", "functional": "functional", "code": "code",
     "kmesh": "kmesh", "k_mesh": "kmesh", "k-mesh": "kmesh",
     "core_hours": "core_hours", "core-hours": "core_hours", "notes": "notes",
-    "gap_soc_ev": "gap_soc_eV",
+    "gap_soc_ev": "gap_soc_eV", "direct_gap_soc_ev": "direct_gap_soc_eV",
 }
 _KMESH = re.compile(r"\s*(\d+)\s*[x×, ]\s*(\d+)\s*[x×, ]\s*(\d+)\s*")
 
@@ -67,6 +71,8 @@ class ResultRow:
         CPU cost of the calculation in core hours, or ``None``.
     gap_soc_eV
         Band gap with spin-orbit coupling (eV; 0 for a metal), or ``None``.
+    direct_gap_soc_eV
+        Smallest direct gap with spin-orbit coupling over k (eV), or ``None``.
     source
         ``"path:line"`` (CSV) or ``"path:[index]"`` (JSON) of the row.
     """
@@ -80,11 +86,12 @@ class ResultRow:
     notes: str | None = None
     source: str = ""
     gap_soc_eV: float | None = None
+    direct_gap_soc_eV: float | None = None
 
     def values(self) -> tuple[Any, ...]:
         """Everything except ``source``: two rows with equal values say the same thing."""
         return (self.id, self.spillage, self.functional, self.code, self.kmesh, self.core_hours,
-                self.notes, self.gap_soc_eV)
+                self.notes, self.gap_soc_eV, self.direct_gap_soc_eV)
 
 
 def _number(raw: Any, name: str, *, path: Path, line: int | str, required: bool) -> float | None:
@@ -111,6 +118,21 @@ def _number(raw: Any, name: str, *, path: Path, line: int | str, required: bool)
 MAX_GAP_EV: float = 20.0
 
 
+#: Rounding allowed when a direct gap is compared with the band gap, eV (values printed
+#: to 3 decimals; common practice).
+GAP_ROUNDING_EV: float = 1e-3
+
+
+def _gap(fields: dict[str, Any], name: str, *, path: Path, line: int | str) -> float | None:
+    """An optional gap column: a number >= 0 and at most :data:`MAX_GAP_EV`."""
+    gap = _number(fields.get(name), name, path=path, line=line, required=False)
+    if gap is not None and gap > MAX_GAP_EV:
+        raise InputError(f"{name} above {MAX_GAP_EV:g} eV", path=path, line=line,
+                         value=str(fields.get(name)),
+                         expected="a band gap in eV (was it given in meV?)")
+    return gap
+
+
 def _text(raw: Any) -> str | None:
     if raw is None:
         return None
@@ -122,11 +144,13 @@ def _row(fields: dict[str, Any], *, path: Path, line: int | str, source: str) ->
     ident = validate_id(str(fields.get("id") or ""), path=path, line=line)
     spillage = _number(fields.get("spillage"), "spillage", path=path, line=line, required=True)
     core_hours = _number(fields.get("core_hours"), "core_hours", path=path, line=line, required=False)
-    gap = _number(fields.get("gap_soc_eV"), "gap_soc_eV", path=path, line=line, required=False)
-    if gap is not None and gap > MAX_GAP_EV:
-        raise InputError(f"gap_soc_eV above {MAX_GAP_EV:g} eV", path=path, line=line,
-                         value=str(fields.get("gap_soc_eV")),
-                         expected="a band gap in eV (was it given in meV?)")
+    gap, direct = (_gap(fields, name, path=path, line=line)
+                   for name in ("gap_soc_eV", "direct_gap_soc_eV"))
+    if gap is not None and direct is not None and direct < gap - GAP_ROUNDING_EV:
+        raise InputError("direct_gap_soc_eV below gap_soc_eV", path=path, line=line,
+                         value=f"{fields.get('direct_gap_soc_eV')} < {fields.get('gap_soc_eV')}",
+                         expected="the smallest direct gap, which is at least the band gap "
+                                  "(its minimum over k)")
     kmesh = _text(fields.get("kmesh"))
     if kmesh is not None:
         match = _KMESH.fullmatch(kmesh)
@@ -137,7 +161,8 @@ def _row(fields: dict[str, Any], *, path: Path, line: int | str, source: str) ->
     assert spillage is not None
     return ResultRow(id=ident, spillage=spillage, functional=_text(fields.get("functional")),
                      code=_text(fields.get("code")), kmesh=kmesh, core_hours=core_hours,
-                     notes=_text(fields.get("notes")), source=source, gap_soc_eV=gap)
+                     notes=_text(fields.get("notes")), source=source, gap_soc_eV=gap,
+                     direct_gap_soc_eV=direct)
 
 
 def _canonical_names(names: Iterable[str], *, path: Path, line: int | str) -> tuple[dict[str, str], list[str]]:
