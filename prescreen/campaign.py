@@ -541,6 +541,8 @@ class Campaign:
                              value=type(rows_and_rejections).__name__,
                              expected="read_results(path), or results_from_frame(df) for a "
                                       "pandas table")
+        from prescreen.io.results import GAP_ROUNDING_EV
+
         rows, rejections = rows_and_rejections
         report = ResultIngestReport(rejections=list(rejections))
         now = _now()
@@ -574,6 +576,18 @@ class Campaign:
                              if was is not None and new is not None and was != new]
                     fill = {n: new for n, (was, new) in gaps.items()
                             if was is None and new is not None}
+                    merged = [new if was is None else was for was, new in gaps.values()]
+                    if (fill and not clash and None not in merged
+                            and merged[1] < merged[0] - GAP_ROUNDING_EV):
+                        rej = Rejection(
+                            path=path, line=line, value=f"{row.id}={row.spillage!r} "
+                            f"(gap_soc_eV {merged[0]!r}, direct_gap_soc_eV {merged[1]!r})",
+                            reason="the direct gap would fall below the band gap stored "
+                                   "with the other; expected a smallest direct gap of at "
+                                   "least the band gap")
+                        self._record_rejection(conn, "result", rej, now)
+                        report.rejections.append(rej)
+                        continue
                     if not clash and not fill:
                         report.unchanged += 1
                         continue

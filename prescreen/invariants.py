@@ -160,10 +160,10 @@ def gapped_hits(campaign: "Campaign", ids: Iterable[str] | None = None) -> list[
     """Results at or above the campaign's threshold whose Z2 invariant is defined.
 
     That is, whose occupied states with SOC are apart from the empty ones at every k: a
-    recorded direct gap (``direct_gap_soc_eV``, which the built-in labeller fills) of at
-    least :data:`prescreen.physics.dft.METAL_GAP_EV`, which a band-inverted semimetal has
-    too; without one, a band gap (``gap_soc_eV``) of at least that much, since the direct
-    gap is never smaller. ``ids`` restricts the search (default: every result).
+    band gap (``gap_soc_eV``) of at least :data:`prescreen.physics.dft.METAL_GAP_EV`, or a
+    direct gap (``direct_gap_soc_eV``, which the built-in labeller fills) of at least that
+    much, which a band-inverted semimetal has too (the direct gap is never the smaller, so
+    either suffices). ``ids`` restricts the search (default: every result).
     """
     import pandas as pd
 
@@ -174,7 +174,7 @@ def gapped_hits(campaign: "Campaign", ids: Iterable[str] | None = None) -> list[
         labels = labels.loc[labels.index.intersection(list(ids))]
     gap = pd.to_numeric(labels["gap_soc_eV"], errors="coerce")
     direct = pd.to_numeric(labels["direct_gap_soc_eV"], errors="coerce")
-    apart = direct.where(direct.notna(), gap) >= METAL_GAP_EV
+    apart = (gap >= METAL_GAP_EV) | (direct >= METAL_GAP_EV)
     keep = (labels["spillage"] >= campaign.threshold) & apart
     return list(labels.index[keep])
 

@@ -630,7 +630,7 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
     """The scheduler behind both stages; returns (new labels, all relaxation records).
 
     Job kinds, in order of priority: the label of a finished relaxation, the Z2
-    invariant of a new gapped positive (``<work>/z2.jsonl``; parities or Wilson loops),
+    invariant of a new positive whose bands with SOC are apart at every k (``<work>/z2.jsonl``; parities or Wilson loops),
     the next relaxation. ``label=False`` relaxes only.
     """
     from tqdm.auto import tqdm
@@ -794,6 +794,10 @@ def _z2_columns(z2: dict[str, dict[str, Any]], label: Any) -> dict[str, Any]:
         else:
             why = "pending (next run)"
         return {"z2": None, "z2_method": "", "z2_status": why}
+    if rec.get("status") == "no_direct_gap" and "an odd number" in rec.get("reason", ""):
+        return {"z2": None, "z2_method": rec.get("method", ""),
+                "z2_status": "not defined (an odd electron count: the last occupied state "
+                             "meets its Kramers partner at the TRIMs)"}
     if rec.get("status") == "no_direct_gap":
         return {"z2": None, "z2_method": rec.get("method", ""),
                 "z2_status": f"not defined (direct gap with SOC {rec['direct_gap_soc_eV']:.3f} "
@@ -909,12 +913,14 @@ def datasheet(pool: "pd.DataFrame", labelled: "pd.DataFrame", relax: "pd.DataFra
     by_method = computed["z2_method"].value_counts().to_dict() if n_lab else {}
     pending = int(positive["z2_status"].str.startswith("pending").sum()) if n_lab else 0
     undefined = int(positive["z2_status"].str.startswith("not defined").sum()) if n_lab else 0
+    z2_failed = int(positive["z2_status"].str.startswith("failed").sum()) if n_lab else 0
     z2_semimetal = int((computed["is_metal"]).sum()) if n_lab else 0
     z2_text = (f"computed for {len(computed)} ({by_method.get('parity', 0)} from parities, "
                f"{by_method.get('wilson', 0)} from Wilson loops; {z2_semimetal} of them "
                f"semimetals with a direct gap), of which "
                f"{_count((computed['z2'] == 1).sum(), 'has', 'have')} Z2 = 1; not defined "
-               f"for {undefined} (the bands touch)"
+               f"for {undefined} (the bands touch); failed for {z2_failed} (reasons in "
+               "`z2_status`)"
                + (f"; {pending} wait for the next run" if pending else "")
                if n_lab else "none yet")
     status = relax["status"].value_counts().to_dict() if len(relax) else {}

@@ -188,6 +188,18 @@ def test_a_direct_gap_completes_a_result_and_a_different_one_conflicts(campaign)
     assert campaign.labels().loc["mos2", "direct_gap_soc_eV"] == 1.7
 
 
+def test_a_direct_gap_below_the_stored_band_gap_is_refused(campaign):
+    from dataclasses import replace
+
+    campaign.ingest_results(([replace(result("mos2", 0.01), gap_soc_eV=0.3)], []))
+    rep = campaign.ingest_results(([replace(result("mos2", 0.01, line=3),
+                                            direct_gap_soc_eV=0.01)], []))
+    (rej,) = rep.rejections
+    assert (rej.line, rep.gaps_added) == (3, 0)
+    assert "direct gap would fall below the band gap" in rej.reason
+    assert pd.isna(campaign.labels().loc["mos2", "direct_gap_soc_eV"])
+
+
 def test_unknown_policy_is_an_input_error(campaign):
     with pytest.raises(InputError, match="unknown conflict policy"):
         campaign.ingest_results(([], []), on_conflict="average")
@@ -279,7 +291,9 @@ def _store_gap(camp):
 
 
 def _store_direct_gap(camp):
-    assert "direct_gap_soc_eV" in camp.labels().columns
+    camp.ingest_results(([ResultRow(id="mos2", spillage=0.01, gap_soc_eV=1.6,
+                                    direct_gap_soc_eV=1.7, source="r.csv:2")], []))
+    assert camp.labels().loc["mos2", ["gap_soc_eV", "direct_gap_soc_eV"]].tolist() == [1.6, 1.7]
 
 
 @pytest.mark.parametrize(("table", "column", "check"), [
@@ -292,6 +306,8 @@ def test_store_from_an_earlier_release_is_upgraded_on_open(campaign, table, colu
     campaign.close()
     conn = sqlite3.connect(path / DB_NAME)
     conn.executescript(f"ALTER TABLE {table} DROP COLUMN {column};")
+    if column == "gap_soc_eV":  # such stores had no direct gap either
+        conn.executescript("ALTER TABLE results DROP COLUMN direct_gap_soc_eV;")
     conn.close()
     with Campaign.open(path) as again:
         check(again)

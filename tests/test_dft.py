@@ -220,7 +220,7 @@ def test_direct_gap_stays_open_in_a_band_inverted_semimetal():
     # (definition, common practice).
     eigs = np.array([[-1.0, 0.3, 0.8], [-1.0, -0.5, -0.2], [-1.0, 0.0, 0.5]])
     assert band_gap(eigs, 2) == (0.0, True)
-    assert direct_band_gap(eigs, 2) == pytest.approx(0.3)  # 0.5 - 0.0 at the third k
+    assert direct_band_gap(eigs, 2) == pytest.approx(0.3)  # -0.2 - (-0.5) at the second k
     assert direct_band_gap(eigs, 1.5) == 0.0  # no set of occupied states
 
 

@@ -54,6 +54,12 @@ def test_a_semimetal_hit_with_a_direct_gap_is_selected_and_touching_bands_are_no
                               replace(base, id="s1", direct_gap_soc_eV=0.0),
                               replace(base, id="s2", spillage=0.2, direct_gap_soc_eV=0.3)], []))
     assert gapped_hits(campaign) == ["c0", "s0"]
+    # either gap open is enough: a band gap just above the cut with a direct gap rounded
+    # just below it still counts
+    campaign.add_candidates([Candidate("s3", "MoS2", "gen:s3", structure.copy())])
+    campaign.ingest_results(([replace(base, id="s3", gap_soc_eV=0.0205,
+                                      direct_gap_soc_eV=0.0198)], []))
+    assert gapped_hits(campaign) == ["c0", "s0", "s3"]
 
 
 def test_refusals_are_recorded_with_the_reason_and_unknown_ids_raise(campaign):
@@ -141,6 +147,37 @@ def test_label_with_z2_checks_the_new_gapped_hits(campaign, monkeypatch, capsys)
             "direct gap at every k (Z2 defined for both), 1 metals") in out
     assert "c0: no invariant: c0: no direct gap with spin-orbit coupling (stand-in)" in out
     assert list(read_invariants(path / INVARIANTS_FILE)) == ["c0"]
+
+
+def test_z2_without_ids_does_not_repeat_a_refusal_for_touching_bands(campaign, monkeypatch,
+                                                                     capsys):
+    # a semimetal hit with an inversion centre whose bands touch on the parity mesh:
+    # refused once, and `prescreen z2` with no IDs does not run it again
+    pytest.importorskip("gpaw")
+    from pymatgen.io.ase import AseAtomsAdaptor
+
+    from prescreen.cli.main import main
+    from prescreen.errors import NoDirectGap
+    from prescreen.physics import parity
+
+    asked = []
+
+    def touching(structure, settings, *, id=None, **kwargs):
+        asked.append(id)
+        raise NoDirectGap(f"{id}: no direct gap with spin-orbit coupling (stand-in)", 0.004)
+
+    monkeypatch.setattr(parity, "z2_from_parities", touching)
+    one_t = AseAtomsAdaptor.get_structure(mx2("MoS2", "1T", a=3.18, thickness=3.13, vacuum=8.0))
+    campaign.add_candidates([Candidate("s0", "MoS2", "gen:s0", one_t)])
+    campaign.ingest_results(([ResultRow(id="s0", spillage=0.9, gap_soc_eV=0.0,
+                                        direct_gap_soc_eV=0.05, source="r.csv:9")], []))
+    path = campaign.path
+    campaign.close()
+    for _ in range(2):
+        assert main(["z2", str(path), "s0", "--no-progress"] if not asked
+                    else ["z2", str(path), "--no-progress"]) == 0
+    assert asked == ["s0"]
+    assert read_invariants(path / INVARIANTS_FILE)["s0"]["status"] == "refused"
 
 
 def test_z2_without_ids_retries_refusals_of_the_parity_method_only(campaign, monkeypatch,

@@ -241,7 +241,7 @@ def rule_compute(structure, settings, *, id=None):
                        k_max=kpts[1], gap_nosoc_eV=1.0, gap_soc_eV=0.9, is_metal=False,
                        magmom=0.0, settings={**settings.as_dict(), "kmesh": [3, 3, 1]},
                        versions={"gpaw": "stand-in"}, wall_s=0.01, core_hours=0.01 / 3600,
-                       gamma=gamma, kpts=kpts)
+                       gamma=gamma, kpts=kpts, direct_gap_soc_eV=1.1)
 
 
 def test_label_pending_ingests_and_clears_pending(trained):
@@ -255,6 +255,8 @@ def test_label_pending_ingests_and_clears_pending(trained):
                                progress=False)
     assert (out.n_jobs, out.n_ok, out.n_ingested) == (2, 2, 2)
     assert set(pending[:2]) <= set(camp.labels().index)
+    stored = camp.labels().loc[pending[:2], ["gap_soc_eV", "direct_gap_soc_eV"]]
+    assert stored.to_numpy().tolist() == [[0.9, 1.1]] * 2  # the record's gaps, as computed
     assert not set(pending[:2]) & set(camp.pending_ids())
     # naming them again would recompute results that cannot be stored: refused up front
     with pytest.raises(InputError, match="already have a result"):

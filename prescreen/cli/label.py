@@ -48,18 +48,21 @@ def run(args: argparse.Namespace) -> int:
         mine = labels.loc[[c for c in wanted if c in labels.index]]
         hits = mine[mine["spillage"] >= campaign.threshold]
         if len(mine):
-            from prescreen.invariants import gapped_hits
-
             import pandas as pd
 
+            from prescreen.invariants import gapped_hits
             from prescreen.physics.dft import METAL_GAP_EV
 
-            defined = len(gapped_hits(campaign, mine.index))
-            gapped = int((pd.to_numeric(hits["gap_soc_eV"], errors="coerce")
-                          >= METAL_GAP_EV).sum())
+            defined = len(gapped_hits(campaign, hits.index))
+            gap = pd.to_numeric(hits["gap_soc_eV"], errors="coerce")
+            direct = pd.to_numeric(hits["direct_gap_soc_eV"], errors="coerce")
+            gapped = int((gap >= METAL_GAP_EV).sum())
+            unknown = int((gap.isna() & direct.isna()).sum())
             print(f"hits (spillage >= {campaign.threshold:g}): {len(hits)} of {len(mine)}; "
                   f"{gapped} with a band gap with SOC, {defined - gapped} semimetals with a "
-                  f"direct gap at every k (Z2 defined for both), {len(hits) - defined} metals "
+                  f"direct gap at every k (Z2 defined for both), "
+                  f"{len(hits) - defined - unknown} metals"
+                  + (f", {unknown} with no gap recorded" if unknown else "") + " "
                   "(`prescreen train --min-gap` counts only the first as positives)")
         if out.failures and not args.retry_failed:
             print("  (failed candidates stay pending; `prescreen label "

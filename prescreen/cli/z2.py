@@ -48,10 +48,12 @@ def run(args: argparse.Namespace) -> int:
         out = args.out or campaign.path / INVARIANTS_FILE
         ids = args.ids
         if not ids:
-            # an earlier refusal by the parity method alone (before Wilson loops) is
-            # retried; a result, or a refusal by Wilson loops, is not
+            # a refusal by the parity method for want of an inversion (from before
+            # Wilson loops, which need none) is retried; a result, or any other refusal
+            # (touching bands, an odd electron count), is not: it would come again
             done = {i for i, row in read_invariants(out).items()
-                    if row["status"] == "ok" or row["method"] == "wilson"}
+                    if row["status"] == "ok" or row["method"] == "wilson"
+                    or "inversion" not in row["reason"]}
             ids = [i for i in gapped_hits(campaign) if i not in done]
             if not ids:
                 print("nothing to compute: no labelled hit whose bands with SOC are apart "
