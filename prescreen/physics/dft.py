@@ -480,6 +480,17 @@ def choose_kpts(atoms: "Atoms", settings: LabelSettings) -> tuple[int, int, int]
     return (int(n[0]), int(n[1]), 1)
 
 
+def _sorted_with_count(eigenvalues: np.ndarray,
+                       n_electrons: float) -> tuple[np.ndarray, int | None]:
+    """Eigenvalues sorted at each k, and the occupied-state count (None when the count
+    is not an integer or leaves no occupied or no empty state)."""
+    e = np.sort(np.asarray(eigenvalues, dtype=float), axis=1)
+    n = int(round(n_electrons))
+    if abs(n - n_electrons) > 1e-6 or n <= 0 or n >= e.shape[1]:
+        return e, None
+    return e, n
+
+
 def band_gap(eigenvalues: np.ndarray, n_electrons: float) -> tuple[float, bool]:
     """Band gap on the mesh from spinor eigenvalues and the electron count.
 
@@ -496,9 +507,8 @@ def band_gap(eigenvalues: np.ndarray, n_electrons: float) -> tuple[float, bool]:
         ``gap = min_k e[k, N] - max_k e[k, N - 1]``; a non-integer count or a gap below
         :data:`METAL_GAP_EV` gives ``(0.0, True)``.
     """
-    e = np.sort(np.asarray(eigenvalues, dtype=float), axis=1)
-    n = int(round(n_electrons))
-    if abs(n - n_electrons) > 1e-6 or n <= 0 or n >= e.shape[1]:
+    e, n = _sorted_with_count(eigenvalues, n_electrons)
+    if n is None:
         return 0.0, True
     gap = float(e[:, n].min() - e[:, n - 1].max())
     if gap < METAL_GAP_EV:
@@ -515,11 +525,8 @@ def direct_band_gap(eigenvalues: np.ndarray, n_electrons: float) -> float:
     (:func:`band_gap`) is closed, as in a band-inverted semimetal. A non-integer or
     out-of-range count gives 0.0: no set of occupied states exists then.
     """
-    e = np.sort(np.asarray(eigenvalues, dtype=float), axis=1)
-    n = int(round(n_electrons))
-    if abs(n - n_electrons) > 1e-6 or n <= 0 or n >= e.shape[1]:
-        return 0.0
-    return float(np.min(e[:, n] - e[:, n - 1]))
+    e, n = _sorted_with_count(eigenvalues, n_electrons)
+    return 0.0 if n is None else float(np.min(e[:, n] - e[:, n - 1]))
 
 
 def _gpaw_calculator(settings: LabelSettings, kmesh: tuple[int, int, int],

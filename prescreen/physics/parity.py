@@ -59,6 +59,7 @@ from prescreen.physics.dft import (
     _run_in,
     choose_kpts,
     code_versions,
+    direct_band_gap,
     prepare_monolayer,
 )
 
@@ -338,8 +339,7 @@ def z2_from_parities(structure: "Structure | Atoms", settings: LabelSettings = L
     if kpts.shape != trims.shape or len(wfs_by_k) != len(trims):
         raise LabellingError(f"{name}: expected the four TRIMs without symmetry reduction, "
                              f"got {len(wfs_by_k)} states at {kpts.shape[0]} k points")
-    gap = float(min(np.min(e_mesh[:, n_occ] - e_mesh[:, n_occ - 1]),
-                    np.min(e_trim[:, n_occ] - e_trim[:, n_occ - 1])))
+    gap = min(direct_band_gap(e_mesh, n_occ), direct_band_gap(e_trim, n_occ))
     if gap < METAL_GAP_EV:
         raise NoDirectGap(f"{name}: no direct gap with spin-orbit coupling at some k "
                           f"(smallest {gap:.3f} eV < {METAL_GAP_EV} eV): the occupied "

@@ -58,6 +58,7 @@ from prescreen.physics.dft import (
     _run_in,
     choose_kpts,
     code_versions,
+    direct_band_gap,
     prepare_monolayer,
 )
 
@@ -242,8 +243,7 @@ def _line_states(calc: Any, k2: np.ndarray, nk1: int, n_occ: int, soc_scale: flo
             s_line.append(s)
         coeffs.append(np.array(c_line))
         overlaps.append(np.array(s_line))
-    gap = float(np.min(e_soc[:, n_occ] - e_soc[:, n_occ - 1]))
-    return coeffs, overlaps, _orbital_centres(nscf), gap
+    return coeffs, overlaps, _orbital_centres(nscf), direct_band_gap(e_soc, n_occ)
 
 
 def z2_from_wilson_loops(structure: "Structure | Atoms", settings: LabelSettings = LabelSettings(),
