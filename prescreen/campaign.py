@@ -7,6 +7,8 @@ A campaign is a folder::
         features/<schema>.parquet   cached descriptors, one file per feature-schema version
         rounds/round-NNN/      ready-to-run structures of each proposed batch
         models/                trained models (LightGBM text + JSON metadata)
+        labels/                the built-in labeller's settings.json and checkpointed records
+        z2.csv                 Z2 invariants of the hits (``prescreen z2``)
 
 The database uses SQLite's write-ahead log and one transaction per user action, so a
 process killed in the middle of an ingest leaves the store exactly as it was before.
@@ -36,6 +38,8 @@ if TYPE_CHECKING:  # pragma: no cover
     import pandas as pd
     from pymatgen.core import Structure
 
+    from prescreen.physics.dft import LabelSettings
+
 __all__ = [
     "Campaign",
     "CandidateIngestReport",
@@ -46,6 +50,8 @@ __all__ = [
 ]
 
 DB_NAME = "campaign.sqlite"
+#: Folder of the built-in labeller's checkpoints and settings (``prescreen label``).
+LABELS_DIR = "labels"
 #: Bump when the table layout changes; older stores are then refused with a clear error.
 STORE_FORMAT = 1
 
@@ -327,6 +333,54 @@ class Campaign:
     @property
     def threshold(self) -> float:
         return float(self.meta("threshold") or SPILLAGE_THRESHOLD)
+
+    @property
+    def labels_dir(self) -> Path:
+        """Checkpoint folder of the built-in labeller (``prescreen label``)."""
+        return self.path / LABELS_DIR
+
+    def label_settings(self, **asked: Any) -> "LabelSettings":
+        """The level of theory of this campaign's built-in labeller.
+
+        The first ``prescreen label`` run fixes it in ``labels/settings.json``; every later
+        calculation of the campaign (spillage, Z2) uses the same, so labels stay comparable
+        and a checkpointed run resumes. Before that it is the defaults of
+        :class:`~prescreen.physics.dft.LabelSettings` with ``asked`` applied.
+
+        Parameters
+        ----------
+        asked
+            :class:`~prescreen.physics.dft.LabelSettings` fields to set; None means "not
+            asked". Once the settings are fixed, a value that differs from them is an error.
+
+        Raises
+        ------
+        InputError
+            The settings file is damaged, a field is unknown or out of range, or a value
+            differs from the fixed settings.
+        """
+        from prescreen.physics.dft import LabelSettings
+        from prescreen.physics.labeller import SETTINGS_FILE
+
+        asked = {k: v for k, v in asked.items() if v is not None}
+        spath = self.labels_dir / SETTINGS_FILE
+        if not spath.exists():
+            return LabelSettings.from_dict(LabelSettings().as_dict() | asked)
+        try:
+            fixed = LabelSettings.from_dict(json.loads(spath.read_text()))
+        except json.JSONDecodeError as exc:
+            raise InputError("labeller settings file is not valid JSON", path=spath,
+                             line=exc.lineno, expected="JSON written by prescreen") from exc
+        wanted = LabelSettings.from_dict(fixed.as_dict() | asked)
+        for key in sorted(asked):
+            if getattr(wanted, key) != getattr(fixed, key):
+                raise InputError(
+                    f"this campaign's labels were computed with {key}={getattr(fixed, key)!r}; "
+                    "mixing levels of theory in one campaign makes its labels incomparable",
+                    path=spath, value=asked[key],
+                    expected=f"{getattr(fixed, key)!r} (or leave the option out; for another "
+                             "level of theory, start a new campaign)")
+        return fixed
 
     # ------------------------------------------------------------------ candidates
     def add_candidates(

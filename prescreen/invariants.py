@@ -217,7 +217,9 @@ def compute_invariants(campaign: "Campaign", ids: Iterable[str], *, out: str | P
     out
         The file to update (default ``<campaign>/z2.csv``); rows of other IDs are kept.
     settings
-        :class:`prescreen.physics.dft.LabelSettings` (default settings when None).
+        :class:`prescreen.physics.dft.LabelSettings`; None takes the campaign's
+        (:meth:`~prescreen.campaign.Campaign.label_settings`), so the invariant is at the
+        level of theory of the spillage it checks.
     method
         One of :data:`METHODS`.
     progress
@@ -233,7 +235,6 @@ def compute_invariants(campaign: "Campaign", ids: Iterable[str], *, out: str | P
     """
     from tqdm.auto import tqdm
 
-    from prescreen.physics.dft import LabelSettings
     from prescreen.physics.parity import z2_from_parities
     from prescreen.physics.wilson import z2_from_wilson_loops
 
@@ -251,7 +252,7 @@ def compute_invariants(campaign: "Campaign", ids: Iterable[str], *, out: str | P
                              expected=f"an ID of campaign {campaign.name!r}")
     path = Path(out) if out is not None else campaign.path / INVARIANTS_FILE
     table = read_invariants(path)
-    settings = settings or LabelSettings()
+    settings = settings or campaign.label_settings()
     outcomes = []
     for cid in tqdm(ids, desc="Z2 invariants", unit="structure", disable=not progress):
         structure = campaign.structure(cid)

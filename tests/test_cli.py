@@ -203,3 +203,17 @@ def test_label_with_z2_and_nothing_pending_points_to_z2(tmp_path, sources, capsy
     capsys.readouterr()
     assert main(["label", str(camp), "--z2"]) == 2
     assert f"run `prescreen z2 {camp}`" in capsys.readouterr().err
+
+
+def test_label_refuses_a_level_of_theory_other_than_the_campaigns(tmp_path, sources, capsys):
+    from prescreen.physics.dft import LabelSettings
+
+    camp = tmp_path / "camp"
+    assert main(["create", str(camp), str(sources), "--no-progress"]) == 0
+    capsys.readouterr()
+    (camp / "labels").mkdir()
+    (camp / "labels" / "settings.json").write_text(
+        json.dumps(LabelSettings(basis="szp(dzp)").as_dict()))  # as an earlier run left it
+    assert main(["label", str(camp), "--basis", "dzp"]) == 2
+    err = capsys.readouterr().err
+    assert "labels/settings.json" in err and "basis='szp(dzp)'" in err and "got 'dzp'" in err

@@ -264,6 +264,36 @@ def test_label_pending_ingests_and_clears_pending(trained):
                                progress=False)
 
 
+def test_the_first_label_run_fixes_the_campaigns_level_of_theory(fresh_round):
+    from prescreen.acquire.cost import kpoints_for_cell
+    from prescreen.physics.dft import LabelSettings
+
+    camp = fresh_round
+    assert camp.label_settings() == LabelSettings()  # nothing computed yet: the defaults
+    denser = camp.label_settings(kpt_density=7.0, smearing_eV=None)  # None: not asked
+    assert (denser.kpt_density, denser.smearing_eV) == (7.0, LabelSettings().smearing_eV)
+    first, second = camp.pending_ids()[:2]
+    rounds.label_pending(camp, ids=[first], compute=rule_compute, timeout_s=LONG,
+                         settings=denser, progress=False)
+    assert camp.label_settings() == denser and camp.label_settings(kpt_density=7) == denser
+    with pytest.raises(InputError, match=r"settings\.json: .*kpt_density=7\.0.* \(got 5\.0; "
+                       r"expected 7\.0"):
+        camp.label_settings(kpt_density=5.0)
+    # without settings a later run takes the fixed ones, and so does the record
+    rounds.label_pending(camp, ids=[second], compute=rule_compute, timeout_s=LONG,
+                         progress=False)
+    from prescreen.physics.labeller import load_records
+
+    assert {r.settings["kpt_density"] for r in load_records(camp.labels_dir)} == {7.0}
+    # costs count k-points on the campaign's mesh, in a cache of its own
+    assert rounds.cost_kpt_density(camp) == 7.0
+    ranking = rounds.rank(camp, progress=False)
+    cached = pd.read_parquet(camp.path / "features" / "cost-descriptors-1-k7.parquet")
+    s = camp.structure(first)
+    assert cached.loc[first, "n_kpoints"] == kpoints_for_cell(s, 7.0) > kpoints_for_cell(s, 5.0)
+    assert np.isfinite(ranking.loc[first, "cost_core_hours"])
+
+
 def failing_compute(structure, settings, *, id=None):
     """Stand-in for a calculation that dies (a timeout, say)."""
     raise RuntimeError("stand-in failure")

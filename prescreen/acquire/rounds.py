@@ -53,6 +53,7 @@ __all__ = [
     "cost_model",
     "cost_model_with_source",
     "cost_records",
+    "cost_kpt_density",
     "LabelOutcome",
     "label_pending",
     "replay_labelled",
@@ -445,11 +446,19 @@ def load_model(campaign: Campaign | None = None) -> tuple[SpillageClassifier, st
 MIN_COST_RECORDS = 5
 
 
+def cost_kpt_density(campaign: Campaign) -> float:
+    """k-point density (per inverse Angstrom) at which the campaign's cost descriptors
+    count k-points: that of its labeller (:meth:`Campaign.label_settings`), so a campaign
+    computed on a denser mesh gets proportionally larger predicted costs."""
+    return float(campaign.label_settings().kpt_density)
+
+
 def cost_records(campaign: Campaign, *, data_open: str | Path | None = None) -> pd.DataFrame:
     """Recorded core-hours with the cost descriptors of their structures.
 
-    Rows come from the campaign's results that carry ``core_hours`` and a structure,
-    and from the open dataset's labeller records.
+    Rows come from the campaign's results that carry ``core_hours`` and a structure
+    (k-points counted at the campaign's density, :func:`cost_kpt_density`), and from the
+    open dataset's labeller records (at the density they were computed with).
     """
     import pandas as pd
 
@@ -457,10 +466,12 @@ def cost_records(campaign: Campaign, *, data_open: str | Path | None = None) -> 
 
     rows = []
     labels = campaign.labels()
+    density = cost_kpt_density(campaign)
     for cid, hours in labels["core_hours"].dropna().items():
         structure = campaign.structure(cid)
         if structure is not None and hours > 0:
-            rows.append({**descriptors_for_structure(structure), "core_hours": float(hours),
+            rows.append({**descriptors_for_structure(structure, density),
+                         "core_hours": float(hours),
                          "origin": "campaign", "code": labels.loc[cid, "code"]})
     try:
         open_df = load_open_labelled(data_open)
@@ -539,6 +550,7 @@ def rank(campaign: Campaign, *, progress: bool = True) -> pd.DataFrame:
         says what the probability is the probability of (:func:`positive_rule`).
     """
     from prescreen.acquire.cost import descriptors_for_structure
+    from prescreen.physics.dft import DEFAULT_KPT_DENSITY
 
     if not campaign.candidate_ids():
         raise CampaignError(f"{campaign.path}: the campaign has no candidates yet; add some "
@@ -551,16 +563,20 @@ def rank(campaign: Campaign, *, progress: bool = True) -> pd.DataFrame:
     out["probability"] = mean
     out["uncertainty"] = std
     costs = cost_model(campaign)
+    density = cost_kpt_density(campaign)
 
     def describe(ids: list[str], formulas: list[str], structures: list[Any]) -> pd.DataFrame:
         import pandas as pd
 
-        return pd.DataFrame([descriptors_for_structure(st) if st is not None else {}
+        return pd.DataFrame([descriptors_for_structure(st, density) if st is not None else {}
                              for st in structures], columns=COST_DESCRIPTORS, dtype=float)
 
     # cached in the campaign like the features: unpacking thousands of structures each
-    # time would dominate a ranking
-    desc = campaign.features(describe, COST_DESCRIPTOR_CACHE)
+    # time would dominate a ranking; the name carries a density other than the default
+    cache = COST_DESCRIPTOR_CACHE
+    if density != DEFAULT_KPT_DENSITY:
+        cache += f"-k{density:g}"
+    desc = campaign.features(describe, cache)
     out["cost_core_hours"] = np.nan
     out["cost_low"] = np.nan
     out["cost_high"] = np.nan
@@ -863,7 +879,9 @@ def label_pending(
     workers, timeout_s
         Parallel single-core calculations and the wall-time limit per structure (s).
     settings
-        :class:`prescreen.physics.dft.LabelSettings` (default settings when None).
+        :class:`prescreen.physics.dft.LabelSettings`; None takes the campaign's
+        (:meth:`~prescreen.campaign.Campaign.label_settings`). Settings other than those
+        of the campaign's earlier labels are refused.
     compute
         Replacement for the DFT calculation (tests); see
         :func:`prescreen.physics.labeller.run_labelling`.
@@ -876,7 +894,6 @@ def label_pending(
 
     from prescreen.errors import PrescreenWarning
     from prescreen.io.results import ResultRow
-    from prescreen.physics.dft import LabelSettings
     from prescreen.physics.labeller import load_records, run_labelling
 
     if compute is None and importlib.util.find_spec("gpaw") is None:
@@ -888,7 +905,7 @@ def label_pending(
         warnings.warn(f"{workers} workers on {cores} cores: the calculations share cores, "
                       "run longer than their timeout allows and record inflated core-hours; "
                       f"use --workers {cores} or fewer", PrescreenWarning, stacklevel=2)
-    settings = settings or LabelSettings()
+    settings = settings or campaign.label_settings()
     wanted = list(ids) if ids is not None else campaign.pending_ids()
     proposed = campaign.proposals()
     if len(proposed):
@@ -915,7 +932,7 @@ def label_pending(
             raise InputError("candidate has no structure to compute", value=cid,
                              expected="a candidate read from a structure file")
         jobs.append((cid, structure))
-    out_dir = campaign.path / "labels"
+    out_dir = campaign.labels_dir
     kwargs = {"compute": compute} if compute is not None else {}
     summary = run_labelling(jobs, out_dir, settings=settings, workers=workers,
                             timeout_s=timeout_s, progress=progress, retry_failed=retry_failed,

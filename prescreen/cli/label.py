@@ -4,7 +4,11 @@ from __future__ import annotations
 
 import argparse
 
-__all__ = ["add_arguments", "run"]
+__all__ = ["add_arguments", "run", "BASES"]
+
+#: Basis sets available offline: gpaw-data ships only dzp files, and GPAW reduces them
+#: to single-zeta (polarised) sets on request.
+BASES = ("dzp", "szp(dzp)", "sz(dzp)")
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
@@ -22,6 +26,24 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         "without an inversion centre) of every "
                         "new hit whose bands with SOC are apart at every k (insulators, and "
                         "semimetals with a direct gap); results in <campaign>/z2.csv")
+    theory = parser.add_argument_group(
+        "level of theory", "fixed by the campaign's first `label` run (in "
+        "<campaign>/labels/settings.json) and used for every later spillage and Z2 "
+        "calculation of the campaign; defaults: PBE, LCAO dzp, 5 k-points per inverse "
+        "Angstrom, 0.01 eV Fermi-Dirac width, 15 Angstrom vacuum, spin-paired")
+    theory.add_argument("--kpt-density", type=float, metavar="PER_A",
+                        help="k-points per inverse Angstrom (|b| including 2 pi) of the mesh")
+    theory.add_argument("--basis", choices=BASES,
+                        help="GPAW LCAO basis set: the double-zeta polarised sets gpaw-data "
+                        "ships, or the smaller sets GPAW takes from them")
+    theory.add_argument("--smearing", type=float, metavar="EV",
+                        help="Fermi-Dirac width k_B T in eV")
+    theory.add_argument("--vacuum", type=float, metavar="A",
+                        help="vacuum between the layer and its image, in Angstrom")
+    theory.add_argument("--spin-polarised", action="store_const", const=True, default=None,
+                        help="collinear spin-polarised ground state from a ferromagnetic "
+                        "start, for magnetic candidates (Z2 then refuses: it needs "
+                        "time-reversal symmetry)")
     parser.add_argument("--no-progress", action="store_true", help="hide progress bars")
 
 
@@ -30,6 +52,9 @@ def run(args: argparse.Namespace) -> int:
     from prescreen.campaign import Campaign
 
     with Campaign.open(args.campaign) as campaign:
+        settings = campaign.label_settings(
+            kpt_density=args.kpt_density, basis=args.basis, smearing_eV=args.smearing,
+            vacuum_A=args.vacuum, spinpol=args.spin_polarised)
         wanted = args.ids or campaign.pending_ids()
         if not wanted and args.z2:
             from prescreen.errors import CampaignError
@@ -39,7 +64,7 @@ def run(args: argparse.Namespace) -> int:
                                 f"of the labelled hits run `prescreen z2 {args.campaign}`")
         out = label_pending(campaign, ids=args.ids or None, workers=args.workers,
                             timeout_s=args.timeout, progress=not args.no_progress,
-                            retry_failed=args.retry_failed)
+                            retry_failed=args.retry_failed, settings=settings)
         print(f"labelled {out.n_ok} of {out.n_jobs} ({out.core_hours:.3f} core-hours this "
               f"run); ingested {out.n_ingested} new results")
         for cid, reason in out.failures:
