@@ -96,12 +96,15 @@ class NoDirectGap(LabellingError):
     """The occupied and empty bands with spin-orbit coupling touch at some k point, so the
     occupied states, and a Z2 invariant of them, are not defined there.
 
-    ``gap_eV`` is the smallest direct gap found (eV).
+    ``gap_eV`` is the smallest direct gap found (eV). ``odd_count`` is True when the
+    cause is an odd number of valence electrons (the last occupied state meets its
+    Kramers partner at the time-reversal-invariant momenta) rather than a computed gap.
     """
 
-    def __init__(self, message: str, gap_eV: float) -> None:
+    def __init__(self, message: str, gap_eV: float, *, odd_count: bool = False) -> None:
         super().__init__(message)
         self.gap_eV = float(gap_eV)
+        self.odd_count = bool(odd_count)
 
 
 class PrescreenWarning(UserWarning):

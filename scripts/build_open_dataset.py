@@ -456,7 +456,7 @@ def _z2_one(ident: str, payload: dict[str, Any], result_path: str) -> None:
                     "kmesh": list(w.kmesh)}
     except NoDirectGap as exc:  # a metal after all: the invariant is not defined
         rec |= {"status": "no_direct_gap", "reason": str(exc),
-                "direct_gap_soc_eV": exc.gap_eV}
+                "direct_gap_soc_eV": exc.gap_eV, "odd_count": exc.odd_count}
     except Exception as exc:  # recorded, not raised: one failure must not stop the run
         rec |= {"status": "failed", "reason": f"{type(exc).__name__}: {exc}"}
     rec["wall_s"] = round(time.perf_counter() - t0, 2)
@@ -794,7 +794,9 @@ def _z2_columns(z2: dict[str, dict[str, Any]], label: Any) -> dict[str, Any]:
         else:
             why = "pending (next run)"
         return {"z2": None, "z2_method": "", "z2_status": why}
-    if rec.get("status") == "no_direct_gap" and "an odd number" in rec.get("reason", ""):
+    # records written before the flag existed say it only in their reason
+    odd = rec.get("odd_count", "an odd number" in rec.get("reason", ""))
+    if rec.get("status") == "no_direct_gap" and odd:
         return {"z2": None, "z2_method": rec.get("method", ""),
                 "z2_status": "not defined (an odd electron count: the last occupied state "
                              "meets its Kramers partner at the TRIMs)"}

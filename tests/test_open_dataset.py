@@ -570,11 +570,15 @@ def test_a_z2_job_that_finds_the_bands_touching_is_recorded_and_not_rerun(
     driver.pipeline_stage(table, [one_t], work, tmp_path / "out", 1, workers=1,
                           progress=False)
     (rec,) = driver._read_jsonl(work / driver.Z2_LOG)
-    assert (rec["status"], rec["direct_gap_soc_eV"]) == ("no_direct_gap", 0.004)
+    assert (rec["status"], rec["direct_gap_soc_eV"], rec["odd_count"]) == (
+        "no_direct_gap", 0.004, False)
     packed = driver._labelled_table(table, driver._read_jsonl(work / "relax.jsonl"),
                                     driver._label_records(work), {one_t: rec})
     assert packed.loc[0, "z2_status"] == ("not defined (direct gap with SOC 0.004 eV on the "
                                           "parity mesh: the bands touch)")
+    # the flag, not the wording, tells an odd electron count
+    odd = driver._z2_columns({one_t: rec | {"odd_count": True}}, packed.loc[0])
+    assert odd["z2_status"].startswith("not defined (an odd electron count")
     assert driver.pipeline_stage(table, [one_t], work, tmp_path / "out", 1,
                                  progress=False) == 0
     assert len(driver._read_jsonl(work / driver.Z2_LOG)) == 1

@@ -257,4 +257,4 @@ def test_an_odd_electron_count_is_reported_as_touching_bands():
                   pbc=True)
     with pytest.raises(NoDirectGap, match="1 valence electrons, an odd number") as err:
         z2_from_wilson_loops(layer, LabelSettings(kpts=(2, 2, 1)), id="H-square")
-    assert err.value.gap_eV == 0.0
+    assert err.value.gap_eV == 0.0 and err.value.odd_count

@@ -320,7 +320,7 @@ def z2_from_wilson_loops(structure: "Structure | Atoms", settings: LabelSettings
             raise NoDirectGap(f"{name}: {n_occ} valence electrons, an odd number: the highest "
                               "occupied state and its Kramers partner meet at the time-reversal-"
                               "invariant momenta, so the occupied states, and the invariant, are "
-                              "not defined", 0.0)
+                              "not defined", 0.0, odd_count=True)
 
         def centres(k2: np.ndarray, size: int) -> tuple[np.ndarray, float]:
             stats["runs"] += 1
