@@ -339,7 +339,7 @@ class Campaign:
         """Checkpoint folder of the built-in labeller (``prescreen label``)."""
         return self.path / LABELS_DIR
 
-    def label_settings(self, **asked: Any) -> "LabelSettings":
+    def label_settings(self, **asked: Any) -> LabelSettings:
         """The level of theory of this campaign's built-in labeller.
 
         The first ``prescreen label`` run fixes it in ``labels/settings.json``; every later
@@ -360,27 +360,80 @@ class Campaign:
             differs from the fixed settings.
         """
         from prescreen.physics.dft import LabelSettings
-        from prescreen.physics.labeller import SETTINGS_FILE
 
         asked = {k: v for k, v in asked.items() if v is not None}
-        spath = self.labels_dir / SETTINGS_FILE
-        if not spath.exists():
+        fixed = self._fixed_label_settings()
+        if fixed is None:
             return LabelSettings.from_dict(LabelSettings().as_dict() | asked)
-        try:
-            fixed = LabelSettings.from_dict(json.loads(spath.read_text()))
-        except json.JSONDecodeError as exc:
-            raise InputError("labeller settings file is not valid JSON", path=spath,
-                             line=exc.lineno, expected="JSON written by prescreen") from exc
         wanted = LabelSettings.from_dict(fixed.as_dict() | asked)
         for key in sorted(asked):
             if getattr(wanted, key) != getattr(fixed, key):
-                raise InputError(
-                    f"this campaign's labels were computed with {key}={getattr(fixed, key)!r}; "
-                    "mixing levels of theory in one campaign makes its labels incomparable",
-                    path=spath, value=asked[key],
-                    expected=f"{getattr(fixed, key)!r} (or leave the option out; for another "
-                             "level of theory, start a new campaign)")
+                raise self._other_settings(fixed, key, asked[key])
         return fixed
+
+    def check_label_settings(self, settings: LabelSettings) -> LabelSettings:
+        """``settings`` if they are this campaign's (or none are fixed yet).
+
+        Raises
+        ------
+        InputError
+            A field differs from the campaign's fixed settings (the first one is named).
+        """
+        from dataclasses import fields
+
+        fixed = self._fixed_label_settings()
+        if fixed is not None:
+            for f in fields(fixed):
+                if getattr(settings, f.name) != getattr(fixed, f.name):
+                    raise self._other_settings(fixed, f.name, getattr(settings, f.name))
+        return settings
+
+    def _fixed_label_settings(self) -> LabelSettings | None:
+        """The settings in ``labels/settings.json``, or None when there is none yet.
+
+        A file written before a field existed gains it with its default, the behaviour of
+        the release that wrote it (new fields default to the earlier behaviour).
+        """
+        import os
+
+        from prescreen.physics.dft import LabelSettings
+        from prescreen.physics.labeller import SETTINGS_FILE
+
+        spath = self.labels_dir / SETTINGS_FILE
+        if not spath.exists():
+            return None
+        expected = ("the settings.json written by `prescreen label` (restore it from a backup; "
+                    "each record in labels/records.jsonl repeats the settings it used)")
+        try:
+            raw = json.loads(spath.read_text())
+        except json.JSONDecodeError as exc:
+            raise InputError("labeller settings file is not valid JSON", path=spath,
+                             line=exc.lineno, expected=expected) from exc
+        if not isinstance(raw, dict):
+            raise InputError("labeller settings file does not hold a JSON object", path=spath,
+                             value=raw, expected=expected)
+        try:
+            fixed = LabelSettings.from_dict(raw)
+        except (InputError, TypeError) as exc:
+            why = exc.reason if isinstance(exc, InputError) else str(exc)
+            raise InputError(f"labeller settings file is damaged: {why}", path=spath,
+                             value=getattr(exc, "value", None), expected=expected) from exc
+        if fixed.as_dict() != raw:  # written before some fields existed: complete it
+            tmp = spath.with_suffix(".tmp")
+            tmp.write_text(json.dumps(fixed.as_dict(), indent=1))
+            os.replace(tmp, spath)
+        return fixed
+
+    def _other_settings(self, fixed: LabelSettings, key: str, value: Any) -> InputError:
+        from prescreen.physics.labeller import SETTINGS_FILE
+
+        used = "kpts" if key == "kpt_density" and fixed.kpts is not None else key
+        return InputError(
+            f"asked for {key}={value!r}, but this campaign's labels were computed with "
+            f"{used}={getattr(fixed, used)!r}; mixing levels of theory in one campaign makes "
+            "its labels incomparable", path=self.labels_dir / SETTINGS_FILE,
+            expected=f"{used}={getattr(fixed, used)!r} (or leave the option out; for another "
+                     "level of theory, start a new campaign)")
 
     # ------------------------------------------------------------------ candidates
     def add_candidates(

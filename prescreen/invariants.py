@@ -252,7 +252,8 @@ def compute_invariants(campaign: "Campaign", ids: Iterable[str], *, out: str | P
                              expected=f"an ID of campaign {campaign.name!r}")
     path = Path(out) if out is not None else campaign.path / INVARIANTS_FILE
     table = read_invariants(path)
-    settings = settings or campaign.label_settings()
+    settings = (campaign.check_label_settings(settings) if settings is not None
+                else campaign.label_settings())
     outcomes = []
     for cid in tqdm(ids, desc="Z2 invariants", unit="structure", disable=not progress):
         structure = campaign.structure(cid)

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import os
 import signal
 import sqlite3
@@ -322,3 +323,50 @@ def test_an_ase_atoms_candidate_is_stored_as_a_structure(campaign):
     stored = campaign.structure("ase-mos2")
     assert stored.composition.reduced_formula == "MoS2"
     np.testing.assert_allclose(stored.lattice.matrix, atoms.cell[:], atol=1e-12)
+
+
+# --- the labeller's level of theory ----------------------------------------------------
+def _fix_settings(camp: Campaign, text: str) -> Path:
+    """Write labels/settings.json as a run (or a damaged disk) left it."""
+    camp.labels_dir.mkdir(exist_ok=True)
+    path = camp.labels_dir / "settings.json"
+    path.write_text(text)
+    return path
+
+
+@pytest.mark.parametrize("text, message", [
+    ("null", "does not hold a JSON object"),
+    ("[]", "does not hold a JSON object"),
+    ('{"kpt_density": 5.0, "relax": true}', "damaged: unknown label settings"),
+    ('{"kpt_density": 0}', "damaged: LabelSettings.kpt_density out of range"),
+    ('{"kpt_density": 5.0', "not valid JSON"),
+])
+def test_a_damaged_settings_file_is_named_not_read_as_defaults(campaign, text, message):
+    path = _fix_settings(campaign, text)
+    with pytest.raises(InputError, match=message) as err:
+        campaign.label_settings()
+    assert str(err.value).startswith(str(path))
+
+
+def test_a_settings_file_from_before_a_field_existed_gains_its_default(campaign):
+    from prescreen.physics.dft import LabelSettings
+
+    old = LabelSettings(kpt_density=6.0).as_dict()
+    del old["soc_scale"]  # a field added later; its default is the earlier behaviour
+    path = _fix_settings(campaign, json.dumps(old))
+    assert campaign.label_settings() == LabelSettings(kpt_density=6.0)
+    assert json.loads(path.read_text()) == LabelSettings(kpt_density=6.0).as_dict()
+
+
+def test_other_settings_are_refused_by_name_including_an_explicit_mesh(campaign):
+    from prescreen.physics.dft import LabelSettings
+
+    fixed = LabelSettings(kpts=(12, 12, 1))
+    _fix_settings(campaign, json.dumps(fixed.as_dict()))
+    with pytest.raises(InputError, match=r"kpt_density=9\.0, but .* computed with kpts=\(12, 12"):
+        campaign.label_settings(kpt_density=9.0)  # the density was never used
+    assert campaign.check_label_settings(LabelSettings(kpts=(12, 12, 1))) == fixed
+    with pytest.raises(InputError, match=r"asked for kpts=None, but .* kpts=\(12, 12, 1\)"):
+        campaign.check_label_settings(LabelSettings())
+    with pytest.raises(InputError, match=r"smearing_eV=0\.05, but .* smearing_eV=0\.01"):
+        campaign.check_label_settings(LabelSettings(kpts=(12, 12, 1), smearing_eV=0.05))

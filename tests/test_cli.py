@@ -216,4 +216,4 @@ def test_label_refuses_a_level_of_theory_other_than_the_campaigns(tmp_path, sour
         json.dumps(LabelSettings(basis="szp(dzp)").as_dict()))  # as an earlier run left it
     assert main(["label", str(camp), "--basis", "dzp"]) == 2
     err = capsys.readouterr().err
-    assert "labels/settings.json" in err and "basis='szp(dzp)'" in err and "got 'dzp'" in err
+    assert "labels/settings.json: asked for basis='dzp', but" in err and "basis='szp(dzp)'" in err

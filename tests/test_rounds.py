@@ -276,8 +276,8 @@ def test_the_first_label_run_fixes_the_campaigns_level_of_theory(fresh_round):
     rounds.label_pending(camp, ids=[first], compute=rule_compute, timeout_s=LONG,
                          settings=denser, progress=False)
     assert camp.label_settings() == denser and camp.label_settings(kpt_density=7) == denser
-    with pytest.raises(InputError, match=r"settings\.json: .*kpt_density=7\.0.* \(got 5\.0; "
-                       r"expected 7\.0"):
+    with pytest.raises(InputError, match=r"settings\.json: asked for kpt_density=5\.0, but .*"
+                       r"computed with kpt_density=7\.0"):
         camp.label_settings(kpt_density=5.0)
     # without settings a later run takes the fixed ones, and so does the record
     rounds.label_pending(camp, ids=[second], compute=rule_compute, timeout_s=LONG,
@@ -286,12 +286,29 @@ def test_the_first_label_run_fixes_the_campaigns_level_of_theory(fresh_round):
 
     assert {r.settings["kpt_density"] for r in load_records(camp.labels_dir)} == {7.0}
     # costs count k-points on the campaign's mesh, in a cache of its own
-    assert rounds.cost_kpt_density(camp) == 7.0
+    assert rounds.cost_kpoints(camp) == {"kpoint_density": 7.0}
     ranking = rounds.rank(camp, progress=False)
     cached = pd.read_parquet(camp.path / "features" / "cost-descriptors-1-k7.parquet")
     s = camp.structure(first)
     assert cached.loc[first, "n_kpoints"] == kpoints_for_cell(s, 7.0) > kpoints_for_cell(s, 5.0)
     assert np.isfinite(ranking.loc[first, "cost_core_hours"])
+
+
+def test_an_explicit_mesh_is_what_the_costs_count(fresh_round):
+    from prescreen.physics.dft import LabelSettings
+
+    camp = fresh_round
+    rounds.label_pending(camp, ids=camp.pending_ids()[:1], compute=rule_compute,
+                         timeout_s=LONG, settings=LabelSettings(kpts=(12, 12, 1)),
+                         progress=False)
+    assert rounds.cost_kpoints(camp) == {"kmesh": (12, 12, 1)}
+    rounds.rank(camp, progress=False)
+    cached = pd.read_parquet(camp.path / "features" / "cost-descriptors-1-m12x12.parquet")
+    assert (cached["n_kpoints"] == 144).all()
+    # a later run asking for other settings is refused in the campaign's words
+    with pytest.raises(InputError, match="start a new campaign"):
+        rounds.label_pending(camp, ids=camp.pending_ids()[:1], compute=rule_compute,
+                             timeout_s=LONG, settings=LabelSettings(), progress=False)
 
 
 def failing_compute(structure, settings, *, id=None):

@@ -244,17 +244,21 @@ def test_point_orbital_links_follow_gpaws_own_overlaps(tmp_path):
 
 
 @pytest.mark.dft
-def test_an_odd_electron_count_is_reported_as_touching_bands():
+@pytest.mark.parametrize("route", ["wilson", "parity"])
+def test_an_odd_electron_count_is_reported_as_touching_bands(route):
     # With time-reversal symmetry every state at a TRIM has a Kramers partner of the same
     # energy (Kramers' theorem), so with one electron the occupied state meets an empty one
-    # there and no Z2 is defined. A square net of hydrogen atoms: one electron per cell.
+    # there and no Z2 is defined. A square net of hydrogen atoms: one electron per cell
+    # (and an inversion centre, so both routes apply).
     from ase import Atoms
 
     from prescreen.errors import NoDirectGap
+    from prescreen.physics.parity import z2_from_parities
     from prescreen.physics.wilson import z2_from_wilson_loops
 
+    compute = z2_from_wilson_loops if route == "wilson" else z2_from_parities
     layer = Atoms("H", positions=[[0, 0, 7.5]], cell=[[2.0, 0, 0], [0, 2.0, 0], [0, 0, 15]],
                   pbc=True)
     with pytest.raises(NoDirectGap, match="1 valence electrons, an odd number") as err:
-        z2_from_wilson_loops(layer, LabelSettings(kpts=(2, 2, 1)), id="H-square")
+        compute(layer, LabelSettings(kpts=(2, 2, 1)), id="H-square")
     assert err.value.gap_eV == 0.0 and err.value.odd_count

@@ -458,13 +458,18 @@ def valence_electrons(symbol: str) -> int:
     return int(count)
 
 
-def descriptors_for_structure(structure, kpoint_density: float = 5.0) -> dict[str, float]:
+def descriptors_for_structure(structure, kpoint_density: float = 5.0,
+                              kmesh: tuple[int, int, int] | None = None) -> dict[str, float]:
     """The :data:`COST_TERMS` of one structure (plus ``area`` in Angstrom^2).
 
     Parameters
     ----------
     structure : pymatgen Structure
         A monolayer with vacuum along its longest lattice vector.
+    kpoint_density
+        Points per inverse Angstrom of the mesh (:func:`kpoints_for_cell`).
+    kmesh
+        An explicit mesh ``(n1, n2, 1)`` instead: ``n_kpoints = n1 * n2``.
     """
     lengths = np.asarray(structure.lattice.abc)
     vac = int(np.argmax(lengths))
@@ -472,7 +477,8 @@ def descriptors_for_structure(structure, kpoint_density: float = 5.0) -> dict[st
     a, b = (m[i] for i in range(3) if i != vac)
     return {
         "n_electrons": float(sum(valence_electrons(site.specie.symbol) for site in structure)),
-        "n_kpoints": float(kpoints_for_cell(structure, kpoint_density)),
+        "n_kpoints": float(kpoints_for_cell(structure, kpoint_density) if kmesh is None
+                           else int(np.prod(kmesh))),
         "volume": float(structure.volume),
         "n_atoms": float(len(structure)),
         "area": float(np.linalg.norm(np.cross(a, b))),

@@ -53,7 +53,7 @@ __all__ = [
     "cost_model",
     "cost_model_with_source",
     "cost_records",
-    "cost_kpt_density",
+    "cost_kpoints",
     "LabelOutcome",
     "label_pending",
     "replay_labelled",
@@ -446,18 +446,32 @@ def load_model(campaign: Campaign | None = None) -> tuple[SpillageClassifier, st
 MIN_COST_RECORDS = 5
 
 
-def cost_kpt_density(campaign: Campaign) -> float:
-    """k-point density (per inverse Angstrom) at which the campaign's cost descriptors
-    count k-points: that of its labeller (:meth:`Campaign.label_settings`), so a campaign
-    computed on a denser mesh gets proportionally larger predicted costs."""
-    return float(campaign.label_settings().kpt_density)
+def cost_kpoints(campaign: Campaign) -> dict[str, Any]:
+    """How the campaign's cost descriptors count k-points: keyword arguments of
+    :func:`prescreen.acquire.cost.descriptors_for_structure` for the mesh of its labeller
+    (:meth:`Campaign.label_settings`: its explicit ``kpts``, else its density), so a
+    campaign computed on a denser mesh gets proportionally larger predicted costs."""
+    settings = campaign.label_settings()
+    if settings.kpts is not None:
+        return {"kmesh": settings.kpts}
+    return {"kpoint_density": float(settings.kpt_density)}
+
+
+def _cost_cache(kpoints: dict[str, Any]) -> str:
+    """Name of the cost-descriptor cache for a mesh (the default density keeps the base)."""
+    from prescreen.physics.dft import DEFAULT_KPT_DENSITY
+
+    if "kmesh" in kpoints:
+        return f"{COST_DESCRIPTOR_CACHE}-m{kpoints['kmesh'][0]}x{kpoints['kmesh'][1]}"
+    density = kpoints["kpoint_density"]
+    return COST_DESCRIPTOR_CACHE + ("" if density == DEFAULT_KPT_DENSITY else f"-k{density:g}")
 
 
 def cost_records(campaign: Campaign, *, data_open: str | Path | None = None) -> pd.DataFrame:
     """Recorded core-hours with the cost descriptors of their structures.
 
     Rows come from the campaign's results that carry ``core_hours`` and a structure
-    (k-points counted at the campaign's density, :func:`cost_kpt_density`), and from the
+    (k-points counted on the campaign's mesh, :func:`cost_kpoints`), and from the
     open dataset's labeller records (at the density they were computed with).
     """
     import pandas as pd
@@ -466,11 +480,11 @@ def cost_records(campaign: Campaign, *, data_open: str | Path | None = None) -> 
 
     rows = []
     labels = campaign.labels()
-    density = cost_kpt_density(campaign)
+    kpoints = cost_kpoints(campaign)
     for cid, hours in labels["core_hours"].dropna().items():
         structure = campaign.structure(cid)
         if structure is not None and hours > 0:
-            rows.append({**descriptors_for_structure(structure, density),
+            rows.append({**descriptors_for_structure(structure, **kpoints),
                          "core_hours": float(hours),
                          "origin": "campaign", "code": labels.loc[cid, "code"]})
     try:
@@ -550,7 +564,6 @@ def rank(campaign: Campaign, *, progress: bool = True) -> pd.DataFrame:
         says what the probability is the probability of (:func:`positive_rule`).
     """
     from prescreen.acquire.cost import descriptors_for_structure
-    from prescreen.physics.dft import DEFAULT_KPT_DENSITY
 
     if not campaign.candidate_ids():
         raise CampaignError(f"{campaign.path}: the campaign has no candidates yet; add some "
@@ -563,20 +576,17 @@ def rank(campaign: Campaign, *, progress: bool = True) -> pd.DataFrame:
     out["probability"] = mean
     out["uncertainty"] = std
     costs = cost_model(campaign)
-    density = cost_kpt_density(campaign)
+    kpoints = cost_kpoints(campaign)
 
     def describe(ids: list[str], formulas: list[str], structures: list[Any]) -> pd.DataFrame:
         import pandas as pd
 
-        return pd.DataFrame([descriptors_for_structure(st, density) if st is not None else {}
+        return pd.DataFrame([descriptors_for_structure(st, **kpoints) if st is not None else {}
                              for st in structures], columns=COST_DESCRIPTORS, dtype=float)
 
     # cached in the campaign like the features: unpacking thousands of structures each
-    # time would dominate a ranking; the name carries a density other than the default
-    cache = COST_DESCRIPTOR_CACHE
-    if density != DEFAULT_KPT_DENSITY:
-        cache += f"-k{density:g}"
-    desc = campaign.features(describe, cache)
+    # time would dominate a ranking; the name carries a mesh other than the default
+    desc = campaign.features(describe, _cost_cache(kpoints))
     out["cost_core_hours"] = np.nan
     out["cost_low"] = np.nan
     out["cost_high"] = np.nan
@@ -905,7 +915,8 @@ def label_pending(
         warnings.warn(f"{workers} workers on {cores} cores: the calculations share cores, "
                       "run longer than their timeout allows and record inflated core-hours; "
                       f"use --workers {cores} or fewer", PrescreenWarning, stacklevel=2)
-    settings = settings or campaign.label_settings()
+    settings = (campaign.check_label_settings(settings) if settings is not None
+                else campaign.label_settings())
     wanted = list(ids) if ids is not None else campaign.pending_ids()
     proposed = campaign.proposals()
     if len(proposed):
@@ -1021,9 +1032,12 @@ def replay_labelled(
     def factory(seed: int) -> SpillageClassifier:
         return _classifier(n_models, seed, n)
 
-    # what a cost-aware strategy sees: a prediction, fitted without the row's own cost
-    desc = pd.DataFrame([descriptors_for_structure(st) if st is not None else {}
-                         for st in (table.structures or [None] * n)],
+    # what a cost-aware strategy sees: a prediction, fitted without the row's own cost;
+    # k-points on the mesh each row was computed with (the campaign's, the open dataset's)
+    own = cost_kpoints(campaign)
+    desc = pd.DataFrame([descriptors_for_structure(st, **(own if o == "campaign" else {}))
+                         if st is not None else {}
+                         for st, o in zip(table.structures or [None] * n, table.origin)],
                         columns=list(COST_TERMS))
     predicted, how = out_of_fold_costs(desc, table.core_hours, seed=seeds[0])
     n_initial, budget = max(2, n // 10), float(cost.sum()) / 10

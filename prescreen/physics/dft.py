@@ -55,6 +55,7 @@ __all__ = [
     "is_hexagonal",
     "band_gap",
     "direct_band_gap",
+    "kramers_occupied",
     "label_structure",
     "relax_monolayer",
     "honeycomb_monolayer",
@@ -527,6 +528,32 @@ def direct_band_gap(eigenvalues: np.ndarray, n_electrons: float) -> float:
     """
     e, n = _sorted_with_count(eigenvalues, n_electrons)
     return 0.0 if n is None else float(np.min(e[:, n] - e[:, n - 1]))
+
+
+def kramers_occupied(name: str, n_electrons: float) -> int:
+    """The number of occupied spinor states of a time-reversal-symmetric layer.
+
+    Raises
+    ------
+    LabellingError
+        A non-integer electron count (no set of occupied states exists).
+    NoDirectGap
+        An odd count, with ``odd_count=True``: by Kramers' theorem the last occupied state
+        meets its partner at the time-reversal-invariant momenta, so the occupied states,
+        and a Z2 invariant of them, are not defined.
+    """
+    from prescreen.errors import NoDirectGap
+
+    n_occ = int(round(n_electrons))
+    if abs(n_occ - n_electrons) > 1e-6:
+        raise LabellingError(f"{name}: {n_electrons:g} valence electrons; a time-reversal-"
+                             "symmetric insulator needs an even number")
+    if n_occ % 2:
+        raise NoDirectGap(f"{name}: {n_occ} valence electrons, an odd number: the highest "
+                          "occupied state and its Kramers partner meet at the time-reversal-"
+                          "invariant momenta, so the occupied states, and the invariant, are "
+                          "not defined", 0.0, odd_count=True)
+    return n_occ
 
 
 def _gpaw_calculator(settings: LabelSettings, kmesh: tuple[int, int, int],

@@ -60,6 +60,7 @@ from prescreen.physics.dft import (
     choose_kpts,
     code_versions,
     direct_band_gap,
+    kramers_occupied,
     prepare_monolayer,
 )
 
@@ -317,7 +318,7 @@ def z2_from_parities(structure: "Structure | Atoms", settings: LabelSettings = L
             calc = _gpaw_calculator(settings, kmesh, folder / "gpaw-parity.txt", False)
             atoms.calc = calc
             atoms.get_potential_energy()
-            n_occ = int(round(calc.get_number_of_electrons()))
+            n_electrons = float(calc.get_number_of_electrons())
             # The gap over the whole mesh, SOC states unfolded from the reduced zone.
             e_mesh = soc_eigenstates(calc, scale=settings.soc_scale).eigenvalues()
             nscf = calc.fixed_density(kpts=trims, symmetry="off",
@@ -339,6 +340,7 @@ def z2_from_parities(structure: "Structure | Atoms", settings: LabelSettings = L
     if kpts.shape != trims.shape or len(wfs_by_k) != len(trims):
         raise LabellingError(f"{name}: expected the four TRIMs without symmetry reduction, "
                              f"got {len(wfs_by_k)} states at {kpts.shape[0]} k points")
+    n_occ = kramers_occupied(name, n_electrons)
     gap = min(direct_band_gap(e_mesh, n_occ), direct_band_gap(e_trim, n_occ))
     if gap < METAL_GAP_EV:
         raise NoDirectGap(f"{name}: no direct gap with spin-orbit coupling at some k "

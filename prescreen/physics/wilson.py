@@ -59,6 +59,7 @@ from prescreen.physics.dft import (
     choose_kpts,
     code_versions,
     direct_band_gap,
+    kramers_occupied,
     prepare_monolayer,
 )
 
@@ -312,15 +313,7 @@ def z2_from_wilson_loops(structure: "Structure | Atoms", settings: LabelSettings
         except Exception as exc:  # GPAW raises many types; keep the cause
             raise LabellingError(f"{name}: GPAW calculation failed: "
                                  f"{type(exc).__name__}: {exc}") from exc
-        n_occ = int(round(n_electrons))
-        if abs(n_occ - n_electrons) > 1e-6:
-            raise LabellingError(f"{name}: {n_electrons:g} valence electrons; a time-reversal-"
-                                 "symmetric insulator needs an even number")
-        if n_occ % 2:  # Kramers: the last occupied state meets its partner at each TRIM
-            raise NoDirectGap(f"{name}: {n_occ} valence electrons, an odd number: the highest "
-                              "occupied state and its Kramers partner meet at the time-reversal-"
-                              "invariant momenta, so the occupied states, and the invariant, are "
-                              "not defined", 0.0, odd_count=True)
+        n_occ = kramers_occupied(name, n_electrons)
 
         def centres(k2: np.ndarray, size: int) -> tuple[np.ndarray, float]:
             stats["runs"] += 1
