@@ -477,12 +477,25 @@ _OLD_ODD_COUNT = re.compile(r"LabellingError: \S+: (\d+) valence electrons; a ti
                             r"symmetric insulator needs an even number")
 
 
+#: Reason Wilson loops give when links stay far from unitary at the most points per loop;
+#: such records are rerun when :data:`prescreen.physics.wilson.MAX_NK1` has since grown.
+_COARSE_LOOPS = re.compile(r"LabellingError: \S+: Wilson-loop links far from unitary with "
+                           r"(\d+) points per loop .*")
+
+
 def _z2_rerun(rec: dict[str, Any]) -> bool:
     """Whether a Z2 record must be computed again (see :data:`Z2_RETRY_STATUSES`)."""
+    from prescreen.physics.wilson import MAX_NK1
+
     if rec.get("status") in Z2_RETRY_STATUSES:
         return True
-    old = _OLD_ODD_COUNT.fullmatch(str(rec.get("reason", "")))
-    return rec.get("status") == "failed" and old is not None and int(old.group(1)) % 2 == 1
+    if rec.get("status") != "failed":
+        return False
+    reason = str(rec.get("reason", ""))
+    old = _OLD_ODD_COUNT.fullmatch(reason)
+    coarse = _COARSE_LOOPS.fullmatch(reason)
+    return ((old is not None and int(old.group(1)) % 2 == 1)
+            or (coarse is not None and int(coarse.group(1)) < MAX_NK1))
 
 
 def _z2_done(z2_log: Path) -> set[str]:
