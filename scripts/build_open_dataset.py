@@ -140,7 +140,7 @@ LABELLED_XYZ = "labelled.extxyz.gz"
 RELAX_PARQUET = "relaxation.parquet"
 #: Checkpoint of the Z2 invariants (in the work folder), one JSON record per line.
 Z2_LOG = "z2.jsonl"
-#: A Z2 job may take this many times the labelling timeout: Wilson loops at up to 96 k
+#: A Z2 job may take this many times the labelling timeout: Wilson loops at up to 192 k
 #: per loop and parities on an even mesh cost several labels (chosen here).
 Z2_TIMEOUT_FACTOR = 3
 MANIFEST = "MANIFEST.json"
