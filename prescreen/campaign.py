@@ -371,6 +371,13 @@ class Campaign:
                 raise self._other_settings(fixed, key, asked[key])
         return fixed
 
+    @property
+    def label_settings_fixed(self) -> bool:
+        """Whether a ``prescreen label`` run has fixed the campaign's level of theory."""
+        from prescreen.physics.labeller import SETTINGS_FILE
+
+        return (self.labels_dir / SETTINGS_FILE).exists()
+
     def check_label_settings(self, settings: LabelSettings) -> LabelSettings:
         """``settings`` if they are this campaign's (or none are fixed yet).
 
@@ -400,7 +407,7 @@ class Campaign:
         from prescreen.physics.labeller import SETTINGS_FILE
 
         spath = self.labels_dir / SETTINGS_FILE
-        if not spath.exists():
+        if not self.label_settings_fixed:
             return None
         expected = ("the settings.json written by `prescreen label` (restore it from a backup; "
                     "each record in labels/records.jsonl repeats the settings it used)")

@@ -467,3 +467,24 @@ def test_the_importance_caption_says_correlation_and_ranks_the_spin_orbit_featur
     assert f"is {order.index(first_soc) + 1} of {len(order)}." in note
     assert "These are correlations the model learned from" in note
     assert note.strip() in " ".join(" ".join(parse(built["html"]).text).split())
+
+
+def test_the_cost_table_states_the_campaigns_level_of_theory(built, tmp_path):
+    from prescreen.physics.dft import LabelSettings
+
+    camp = built["campaign"]
+    assert not camp.label_settings_fixed  # results ingested, none computed here
+    text = "".join(parse(built["html"]).text)
+    assert LabelSettings().describe() + " (the defaults" in text
+    # once a run fixes other settings, the report states those
+    fixed = LabelSettings(kpt_density=7.0, basis="szp(dzp)")
+    camp.labels_dir.mkdir()
+    (camp.labels_dir / "settings.json").write_text(json.dumps(fixed.as_dict()))
+    try:
+        html = build_report(camp, out_path=tmp_path / "r.html").read_text(encoding="utf-8")
+    finally:
+        (camp.labels_dir / "settings.json").unlink()
+        camp.labels_dir.rmdir()
+    text = "".join(parse(html).text)
+    assert "GPAW LCAO szp(dzp) basis, a Gamma-centred k mesh of 7 points" in text
+    assert "(fixed by the campaign's first run of prescreen label)" in text

@@ -170,6 +170,18 @@ class LabelSettings:
         d["kpts"] = None if self.kpts is None else list(self.kpts)
         return d
 
+    def describe(self) -> str:
+        """The level of theory in words, e.g. for a report or a methods section."""
+        mesh = (f"a {self.kpts[0]}x{self.kpts[1]} Gamma-centred k mesh" if self.kpts is not None
+                else f"a Gamma-centred k mesh of {self.kpt_density:g} points per inverse "
+                     "Angstrom")
+        spin = (f"collinear spin-polarised from {self.initial_magmom_muB:g} Bohr magnetons per "
+                "atom" if self.spinpol else "spin-paired")
+        soc = ("spin-orbit coupling added non-self-consistently" if self.soc_scale == 1 else
+               f"spin-orbit coupling scaled by {self.soc_scale:g}, added non-self-consistently")
+        return (f"{self.xc}, GPAW LCAO {self.basis} basis, {mesh}, Fermi-Dirac width "
+                f"{self.smearing_eV:g} eV, {self.vacuum_A:g} Angstrom vacuum, {spin}, {soc}")
+
     @classmethod
     def from_dict(cls, data: dict[str, Any]) -> "LabelSettings":
         """Inverse of :meth:`as_dict`; unknown keys are an error."""
