@@ -217,3 +217,7 @@ def test_label_refuses_a_level_of_theory_other_than_the_campaigns(tmp_path, sour
     assert main(["label", str(camp), "--basis", "dzp"]) == 2
     err = capsys.readouterr().err
     assert "labels/settings.json: asked for basis='dzp', but" in err and "basis='szp(dzp)'" in err
+    assert main(["status", str(camp)]) == 0
+    out = capsys.readouterr().out
+    assert ("built-in labeller (fixed by its first run): "
+            + LabelSettings(basis="szp(dzp)").describe()) in out
