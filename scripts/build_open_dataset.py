@@ -477,15 +477,12 @@ _OLD_ODD_COUNT = re.compile(r"LabellingError: \S+: (\d+) valence electrons; a ti
                             r"symmetric insulator needs an even number")
 
 
-#: Reason Wilson loops give when links stay far from unitary at the most points per loop;
-#: such records are rerun when :data:`prescreen.physics.wilson.MAX_NK1` has since grown.
-_COARSE_LOOPS = re.compile(r"LabellingError: \S+: Wilson-loop links far from unitary with "
-                           r"(\d+) points per loop .*")
-
-
 def _z2_rerun(rec: dict[str, Any]) -> bool:
-    """Whether a Z2 record must be computed again (see :data:`Z2_RETRY_STATUSES`)."""
-    from prescreen.physics.wilson import MAX_NK1
+    """Whether a Z2 record must be computed again: a status of
+    :data:`Z2_RETRY_STATUSES`, an old odd-count failure, or coarse Wilson loops refused
+    below the current cap on points per loop
+    (:func:`prescreen.physics.wilson.refused_below_cap`)."""
+    from prescreen.physics.wilson import refused_below_cap
 
     if rec.get("status") in Z2_RETRY_STATUSES:
         return True
@@ -493,9 +490,7 @@ def _z2_rerun(rec: dict[str, Any]) -> bool:
         return False
     reason = str(rec.get("reason", ""))
     old = _OLD_ODD_COUNT.fullmatch(reason)
-    coarse = _COARSE_LOOPS.fullmatch(reason)
-    return ((old is not None and int(old.group(1)) % 2 == 1)
-            or (coarse is not None and int(coarse.group(1)) < MAX_NK1))
+    return (old is not None and int(old.group(1)) % 2 == 1) or refused_below_cap(reason)
 
 
 def _z2_done(z2_log: Path) -> set[str]:

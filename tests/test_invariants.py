@@ -207,3 +207,34 @@ def test_z2_without_ids_retries_refusals_of_the_parity_method_only(campaign, mon
     assert main(["z2", str(path), "--no-progress"]) == 0
     assert asked == ["c0"]  # a Wilson-loop refusal stands
     assert "nothing to compute" in capsys.readouterr().out
+
+
+def test_z2_without_ids_retries_loops_refused_below_todays_cap_once(campaign, monkeypatch,
+                                                                    capsys):
+    # a file from a release with a lower cap on points per Wilson loop: c0 refused at half
+    # of today's cap is computed again once; refused at the cap, it is not asked again
+    pytest.importorskip("gpaw")
+    from prescreen.cli.main import main
+    from prescreen.errors import LabellingError
+    from prescreen.physics import wilson
+
+    asked = []
+    coarse = ("{}: Wilson-loop links far from unitary with {} points per loop (smallest "
+              "singular value 0.76, expected >= 0.8): a sign of a nearly closed gap")
+
+    def refuse(structure, settings, *, id=None, **kwargs):
+        asked.append(id)
+        raise LabellingError(coarse.format(id, wilson.MAX_NK1))
+
+    monkeypatch.setattr(wilson, "z2_from_wilson_loops", refuse)
+    path = campaign.path
+    (path / INVARIANTS_FILE).write_text(
+        "id,formula,z2,delta,direct_gap_soc_eV,kmesh,inversion_centre,parity_error,wall_s,"
+        f"status,reason,method\nc0,MoS2,,,,,,,,refused,\"{coarse.format('c0', wilson.MAX_NK1 // 2)}\","
+        "wilson\n")
+    campaign.close()
+    assert main(["z2", str(path), "--no-progress"]) == 0
+    assert asked == ["c0"]
+    assert main(["z2", str(path), "--no-progress"]) == 0
+    assert asked == ["c0"]
+    assert "nothing to compute" in capsys.readouterr().out

@@ -101,7 +101,7 @@ def run(args: argparse.Namespace) -> int:
             if hits:
                 print(f"Z2 of {len(hits)} hit(s) whose bands with SOC are apart at every k:")
                 print_outcomes(compute_invariants(campaign, hits, progress=not args.no_progress),
-                               campaign.path / INVARIANTS_FILE)
+                               campaign.path / INVARIANTS_FILE, settings)
             else:
                 print("no new hit whose bands with SOC are apart at every k: no invariant "
                       "to compute")

@@ -12,8 +12,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("campaign", help="campaign folder")
     parser.add_argument("ids", nargs="*",
                         help="candidate IDs (default: every labelled hit with a band gap "
-                        "with SOC that has no invariant yet, or was refused by the parity "
-                        "method alone)")
+                        "with SOC that has no invariant yet, was refused by the parity "
+                        "method alone, or by Wilson loops with fewer points than now allowed)")
     parser.add_argument("--out", type=Path, default=None,
                         help="CSV to update (default <campaign>/z2.csv; rows of other IDs "
                         "are kept)")
@@ -24,17 +24,18 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--no-progress", action="store_true", help="hide progress bars")
 
 
-def print_outcomes(outcomes, path: Path) -> None:
-    """One line per candidate, where the file is, and the caution."""
+def print_outcomes(outcomes, path: Path, settings) -> None:
+    """One line per candidate, where the file is, and the caution (``settings``: the
+    campaign's :class:`~prescreen.physics.dft.LabelSettings`)."""
     computed = 0
     for outcome in outcomes:
         print(f"  {outcome.describe()}")
         computed += outcome.row.get("status") == "ok"
     print(f"written to {path}")
     if computed:
-        print("note: Z2 = 1 at this level of theory (PBE, LCAO, SOC added non-self-"
-              "consistently, spin-paired) is strong evidence, not proof; check the gap, the "
-              "functional and whether the layer is magnetic.")
+        print(f"note: Z2 = 1 at this level of theory ({settings.describe()}) is strong "
+              "evidence, not proof; check the gap, the functional and whether the layer is "
+              "magnetic.")
     else:
         print("no invariant was computed: every candidate was refused (reasons above)")
 
@@ -43,17 +44,20 @@ def run(args: argparse.Namespace) -> int:
     from prescreen.campaign import Campaign
     from prescreen.invariants import (INVARIANTS_FILE, compute_invariants, gapped_hits,
                                       read_invariants)
+    from prescreen.physics.wilson import refused_below_cap
 
     with Campaign.open(args.campaign) as campaign:
         out = args.out or campaign.path / INVARIANTS_FILE
         ids = args.ids
         if not ids:
-            # a refusal by the parity method for want of an inversion (from before
-            # Wilson loops, which need none) is retried; a result, or any other refusal
-            # (touching bands, an odd electron count), is not: it would come again
+            # retried: a refusal by the parity method for want of an inversion (from
+            # before Wilson loops, which need none), and coarse Wilson loops refused below
+            # today's cap on points per loop; a result, or any other refusal (touching
+            # bands, an odd electron count), is not: it would come again
             done = {i for i, row in read_invariants(out).items()
-                    if row["status"] == "ok" or row["method"] == "wilson"
-                    or "inversion" not in row["reason"]}
+                    if row["status"] == "ok"
+                    or not ((row["method"] != "wilson" and "inversion" in row["reason"])
+                            or refused_below_cap(row["reason"]))}
             ids = [i for i in gapped_hits(campaign) if i not in done]
             if not ids:
                 print("nothing to compute: no labelled hit whose bands with SOC are apart "
@@ -61,5 +65,6 @@ def run(args: argparse.Namespace) -> int:
                 return 0
         outcomes = compute_invariants(campaign, ids, out=out, method=args.method,
                                       progress=not args.no_progress)
-    print_outcomes(outcomes, out)
+        settings = campaign.label_settings()
+    print_outcomes(outcomes, out, settings)
     return 0

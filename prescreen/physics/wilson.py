@@ -41,6 +41,7 @@ time-reversal symmetry.
 
 from __future__ import annotations
 
+import re
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -68,7 +69,7 @@ if TYPE_CHECKING:  # pragma: no cover - typing only
     from pymatgen.core import Structure
 
 __all__ = ["MIN_LINK", "NK1", "MAX_NK1", "N_LINES", "WilsonZ2", "point_orbital_link", "loop_centres", "z2_from_wilson_loops",
-           "plot_flow"]
+           "plot_flow", "refused_below_cap"]
 
 #: k points per Wilson loop along k1 to start with; doubled while any link is further
 #: from unitary than :data:`MIN_LINK`, up to :data:`MAX_NK1`. Chosen here.
@@ -86,6 +87,16 @@ MAX_LINES: int = 65
 #: step (a nearly closed gap, or a coarse loop) and the loop is refined. Chosen here:
 #: exact grid overlaps of a hBN layer give about 0.96 at 16 points per loop.
 MIN_LINK: float = 0.8
+
+
+_COARSE_REFUSAL = re.compile(r"Wilson-loop links far from unitary with (\d+) points per loop")
+
+
+def refused_below_cap(reason: str) -> bool:
+    """Whether ``reason`` is a refusal for coarse loops made with fewer points per loop
+    than :data:`MAX_NK1` now allows (an earlier release's cap): computing again may work."""
+    found = _COARSE_REFUSAL.search(str(reason))
+    return found is not None and int(found.group(1)) < MAX_NK1
 
 
 class _CoarseLoops(Exception):
