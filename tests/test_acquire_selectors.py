@@ -68,6 +68,15 @@ def test_top_within_budget_first_fit(budget):
     assert cost[sel.indices].sum() <= budget
 
 
+def test_equal_scores_go_cheapest_first_then_in_pool_order():
+    # a tie (e.g. probabilities rounded by the calibrator) is broken toward the candidate
+    # that leaves more budget: hand-computed fills
+    scores = np.array([0.5, 0.5, 0.5, 0.2])
+    cost = np.array([4.0, 1.0, 1.0, 2.0])
+    assert top_within_budget(scores, cost, 2.0).indices.tolist() == [1, 2]
+    assert top_within_budget(scores, cost, 4.5).indices.tolist() == [1, 2, 3]  # not [0]
+
+
 @pytest.mark.parametrize(
     "scores, cost, budget, match",
     [

@@ -79,9 +79,12 @@ def _check(scores, cost, budget) -> tuple[np.ndarray, np.ndarray, float]:
     return s, c, float(budget)
 
 
-def _descending(values: np.ndarray) -> np.ndarray:
-    """Indices sorting ``values`` high to low; ties keep pool order."""
-    return np.argsort(-values, kind="stable")
+def _descending(values: np.ndarray, cost: np.ndarray | None = None) -> np.ndarray:
+    """Indices sorting ``values`` high to low; ties go to the cheaper candidate (with
+    ``cost``: the same value for less of the budget), then keep pool order."""
+    if cost is None:
+        return np.argsort(-values, kind="stable")
+    return np.lexsort((np.arange(values.shape[0]), cost, -values))
 
 
 def _first_fit(order: np.ndarray, cost: np.ndarray, budget: float) -> list[int]:
@@ -97,6 +100,8 @@ def _first_fit(order: np.ndarray, cost: np.ndarray, budget: float) -> list[int]:
 def top_within_budget(scores, cost, budget: float) -> Selection:
     """Take candidates in descending score while they fit the remaining budget.
 
+    Equal scores go cheapest first.
+
     Parameters
     ----------
     scores, cost : array_like, shape (n,)
@@ -105,7 +110,7 @@ def top_within_budget(scores, cost, budget: float) -> Selection:
         Core-hours available for the batch.
     """
     s, c, b = _check(scores, cost, budget)
-    order = _descending(s)
+    order = _descending(s, c)
     rank = np.empty(s.shape[0], dtype=int)
     rank[order] = np.arange(1, s.shape[0] + 1)
     picked = _first_fit(order, c, b)
@@ -137,7 +142,7 @@ def knapsack_greedy(values, cost, budget: float) -> Selection:
     rank = np.empty(v.shape[0], dtype=int)
     rank[order] = np.arange(1, v.shape[0] + 1)
     picked = _first_fit(order, c, b)
-    by_value = _descending(v)
+    by_value = _descending(v, c)
     value_rank = np.empty(v.shape[0], dtype=int)
     value_rank[by_value] = np.arange(1, v.shape[0] + 1)
     plain = _first_fit(by_value, c, b)
@@ -151,7 +156,7 @@ def knapsack_greedy(values, cost, budget: float) -> Selection:
                            tuple(f"{_ordinal(int(value_rank[i]))} by value (fills the budget "
                                  "better than value per core-hour)" for i in plain))
     if fits.size:
-        best = int(fits[_descending(v[fits])[0]])
+        best = int(fits[_descending(v[fits], c[fits])[0]])
         if v[best] > best_total:
             return Selection(np.asarray([best]), ("best single item within budget",))
     return choice
