@@ -395,11 +395,29 @@ class Campaign:
                     raise self._other_settings(fixed, f.name, getattr(settings, f.name))
         return settings
 
-    def _fixed_label_settings(self) -> LabelSettings | None:
+    def describe_label_settings(self) -> str:
+        """The built-in labeller's level of theory in words and whether a run fixed it,
+        for status lines and reports; a damaged settings file is described, not raised."""
+        try:
+            settings = self.label_settings()
+        except InputError as exc:
+            return f"unknown: {exc}"
+        return settings.describe() + (
+            " (fixed by the campaign's first run of prescreen label)" if self.label_settings_fixed
+            else " (the defaults: no built-in labelling in this campaign yet; the first run of "
+                 "prescreen label fixes them)")
+
+    def complete_label_settings(self) -> LabelSettings | None:
+        """Add to ``labels/settings.json`` the fields a later release introduced, with
+        their defaults (the behaviour of the release that wrote it), so the labeller accepts
+        the folder again; returns the fixed settings (None when there are none yet)."""
+        return self._fixed_label_settings(complete=True)
+
+    def _fixed_label_settings(self, *, complete: bool = False) -> LabelSettings | None:
         """The settings in ``labels/settings.json``, or None when there is none yet.
 
-        A file written before a field existed gains it with its default, the behaviour of
-        the release that wrote it (new fields default to the earlier behaviour).
+        A file written before a field existed reads with that field's default, the
+        behaviour of the release that wrote it; ``complete`` also writes it back.
         """
         import os
 
@@ -425,7 +443,7 @@ class Campaign:
             why = exc.reason if isinstance(exc, InputError) else str(exc)
             raise InputError(f"labeller settings file is damaged: {why}", path=spath,
                              value=getattr(exc, "value", None), expected=expected) from exc
-        if fixed.as_dict() != raw:  # written before some fields existed: complete it
+        if complete and fixed.as_dict() != raw:  # written before some fields existed
             tmp = spath.with_suffix(".tmp")
             tmp.write_text(json.dumps(fixed.as_dict(), indent=1))
             os.replace(tmp, spath)

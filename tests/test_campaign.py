@@ -355,6 +355,8 @@ def test_a_settings_file_from_before_a_field_existed_gains_its_default(campaign)
     del old["soc_scale"]  # a field added later; its default is the earlier behaviour
     path = _fix_settings(campaign, json.dumps(old))
     assert campaign.label_settings() == LabelSettings(kpt_density=6.0)
+    assert json.loads(path.read_text()) == old  # reading does not write
+    assert campaign.complete_label_settings() == LabelSettings(kpt_density=6.0)
     assert json.loads(path.read_text()) == LabelSettings(kpt_density=6.0).as_dict()
 
 

@@ -219,5 +219,11 @@ def test_label_refuses_a_level_of_theory_other_than_the_campaigns(tmp_path, sour
     assert "labels/settings.json: asked for basis='dzp', but" in err and "basis='szp(dzp)'" in err
     assert main(["status", str(camp)]) == 0
     out = capsys.readouterr().out
-    assert ("built-in labeller (fixed by its first run): "
-            + LabelSettings(basis="szp(dzp)").describe()) in out
+    assert ("built-in labeller: " + LabelSettings(basis="szp(dzp)").describe()
+            + " (fixed by the campaign's first run of prescreen label)") in out
+    # a damaged settings file is reported by status, which still lists what was asked
+    (camp / "labels" / "settings.json").write_text("{not json")
+    assert main(["status", str(camp), "--rejections"]) == 0
+    out = capsys.readouterr().out
+    assert "built-in labeller: unknown: " in out and "not valid JSON" in out
+    assert "Qq2" in out  # the rejections still follow

@@ -252,6 +252,20 @@ def test_settings_and_failed_record_round_trip():
     assert math.isnan(back.spillage) and back.gamma.shape == (0,)
 
 
+@pytest.mark.parametrize(("kwargs", "says", "never"), [
+    ({}, ["PBE", "dzp basis", "5 points per inverse Angstrom", "0.01 eV", "15 Angstrom",
+          "spin-paired", "added non-self-consistently"], ["scaled"]),
+    ({"kpts": (9, 9, 1), "spinpol": True}, ["9x9", "spin-polarised from 1 Bohr"],
+     ["points per inverse", "spin-paired"]),
+    ({"soc_scale": 0.0}, ["switched off"], ["added"]),
+    ({"soc_scale": 0.5}, ["scaled by 0.5"], ["switched off"]),
+])
+def test_settings_are_described_as_computed(kwargs, says, never):
+    text = LabelSettings(**kwargs).describe()
+    assert all(s in text for s in says) and not any(s in text for s in never)
+    assert "mesh" not in LabelSettings(**kwargs).describe(mesh=False)
+
+
 @pytest.mark.parametrize(("minimum", "n_extra", "edge"), [
     (1.00, 0, False),   # inside the scan: nothing added
     (1.12, 1, False),   # past the upper edge: one step more brackets it

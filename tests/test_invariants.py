@@ -219,19 +219,17 @@ def test_z2_without_ids_retries_loops_refused_below_todays_cap_once(campaign, mo
     from prescreen.physics import wilson
 
     asked = []
-    coarse = ("{}: Wilson-loop links far from unitary with {} points per loop (smallest "
-              "singular value 0.76, expected >= 0.8): a sign of a nearly closed gap")
 
     def refuse(structure, settings, *, id=None, **kwargs):
         asked.append(id)
-        raise LabellingError(coarse.format(id, wilson.MAX_NK1))
+        raise LabellingError(wilson.coarse_loops_reason(id, wilson.MAX_NK1, 0.76))
 
     monkeypatch.setattr(wilson, "z2_from_wilson_loops", refuse)
     path = campaign.path
     (path / INVARIANTS_FILE).write_text(
         "id,formula,z2,delta,direct_gap_soc_eV,kmesh,inversion_centre,parity_error,wall_s,"
-        f"status,reason,method\nc0,MoS2,,,,,,,,refused,\"{coarse.format('c0', wilson.MAX_NK1 // 2)}\","
-        "wilson\n")
+        "status,reason,method\nc0,MoS2,,,,,,,,refused,"
+        f"\"{wilson.coarse_loops_reason('c0', wilson.MAX_NK1 // 2, 0.76)}\",wilson\n")
     campaign.close()
     assert main(["z2", str(path), "--no-progress"]) == 0
     assert asked == ["c0"]

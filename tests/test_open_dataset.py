@@ -596,14 +596,15 @@ def test_old_odd_count_failures_are_rerun_and_other_failures_are_not():
 
 
 def test_loops_refused_below_the_current_point_cap_are_rerun_and_others_are_not():
-    from prescreen.physics.wilson import MAX_NK1
+    from prescreen.physics.wilson import MAX_NK1, coarse_loops_reason
 
     driver = _driver()
-    coarse = ("LabellingError: o2d-x: Wilson-loop links far from unitary with {} points per "
-              "loop (smallest singular value 0.76, expected >= 0.8): the occupied states turn "
-              "too fast for the step, a sign of a nearly closed gap; no invariant is given")
-    assert driver._z2_rerun({"status": "failed", "reason": coarse.format(MAX_NK1 // 2)})
-    assert not driver._z2_rerun({"status": "failed", "reason": coarse.format(MAX_NK1)})
+
+    def coarse(size):  # as the build records a LabellingError
+        return "LabellingError: " + coarse_loops_reason("o2d-x", size, 0.76)
+
+    assert driver._z2_rerun({"status": "failed", "reason": coarse(MAX_NK1 // 2)})
+    assert not driver._z2_rerun({"status": "failed", "reason": coarse(MAX_NK1)})
 
 
 def test_a_whole_last_record_without_its_newline_is_kept(tmp_path):

@@ -1,8 +1,9 @@
 """Selectors: pick a batch of candidates from their scores under a core-hour budget.
 
 Every selector takes scores (higher is better) and predicted costs (core-hours) and
-returns a :class:`Selection` whose total cost never exceeds the budget. Ties are broken
-by position in the pool (a stable sort), so a selector is deterministic for given input.
+returns a :class:`Selection` whose total cost never exceeds the budget. Equal scores go
+to the cheaper candidate (the same value for less of the budget), then by position in the
+pool, so a selector is deterministic for given input.
 
 - :func:`top_within_budget` - walk down the scores, take what still fits.
 - :func:`knapsack_greedy` - 0/1 knapsack maximising the summed score: greedy by
@@ -254,7 +255,7 @@ def diverse_within_budget(
             util = (1 - trade_off) * s_part + trade_off * _minmax(d)
             d_rank = np.empty(cand.size, dtype=int)
             d_rank[_descending(d)] = np.arange(1, cand.size + 1)
-        j = int(_descending(util)[0])
+        j = int(_descending(util, c[cand])[0])
         i = int(cand[j])
         s_rank = int(np.sum(s[cand] > s[i])) + 1
         note = f"score rank {s_rank} of the {cand.size} that still fit (1 = best)"
@@ -301,7 +302,7 @@ def clustered_within_budget(
     seed = int(rng.integers(0, 2**31 - 1))
     labels = KMeans(n_clusters=k, n_init=3, random_state=seed).fit_predict(Z) if k > 1 \
         else np.zeros(n, dtype=int)
-    members = {lab: [int(i) for i in _descending(s) if labels[i] == lab] for lab in range(k)}
+    members = {lab: [int(i) for i in _descending(s, c) if labels[i] == lab] for lab in range(k)}
     left = b
     picked: list[int] = []
     notes: list[str] = []

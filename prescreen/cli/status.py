@@ -47,9 +47,7 @@ def run(args: argparse.Namespace) -> int:
                 ("models", st.models),
                 ("rejected entries", st.rejections),
             ])
-            how = ("fixed by its first run" if campaign.label_settings_fixed
-                   else "defaults, not fixed yet")
-            print(f"built-in labeller ({how}): {campaign.label_settings().describe()}")
+            print(f"built-in labeller: {campaign.describe_label_settings()}")
         if args.rejections:
             for rej in campaign.rejections():
                 print(f"  {rej}")

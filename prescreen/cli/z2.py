@@ -33,9 +33,9 @@ def print_outcomes(outcomes, path: Path, settings) -> None:
         computed += outcome.row.get("status") == "ok"
     print(f"written to {path}")
     if computed:
-        print(f"note: Z2 = 1 at this level of theory ({settings.describe()}) is strong "
-              "evidence, not proof; check the gap, the functional and whether the layer is "
-              "magnetic.")
+        print(f"note: Z2 = 1 at this level of theory ({settings.describe(mesh=False)}; the "
+              "Z2 mesh is in the kmesh column) is strong evidence, not proof; check the gap, "
+              "the functional and whether the layer is magnetic.")
     else:
         print("no invariant was computed: every candidate was refused (reasons above)")
 

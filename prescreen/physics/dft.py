@@ -170,17 +170,30 @@ class LabelSettings:
         d["kpts"] = None if self.kpts is None else list(self.kpts)
         return d
 
-    def describe(self) -> str:
-        """The level of theory in words, e.g. for a report or a methods section."""
-        mesh = (f"a {self.kpts[0]}x{self.kpts[1]} Gamma-centred k mesh" if self.kpts is not None
-                else f"a Gamma-centred k mesh of {self.kpt_density:g} points per inverse "
-                     "Angstrom")
-        spin = (f"collinear spin-polarised from {self.initial_magmom_muB:g} Bohr magnetons per "
-                "atom" if self.spinpol else "spin-paired")
-        soc = ("spin-orbit coupling added non-self-consistently" if self.soc_scale == 1 else
-               f"spin-orbit coupling scaled by {self.soc_scale:g}, added non-self-consistently")
-        return (f"{self.xc}, GPAW LCAO {self.basis} basis, {mesh}, Fermi-Dirac width "
-                f"{self.smearing_eV:g} eV, {self.vacuum_A:g} Angstrom vacuum, {spin}, {soc}")
+    def describe(self, *, mesh: bool = True) -> str:
+        """The level of theory in words, e.g. for a report or a methods section.
+
+        ``mesh=False`` leaves out the k mesh (for a calculation on a mesh of its own, such
+        as the parity method's even mesh).
+        """
+        parts = [self.xc, f"GPAW LCAO {self.basis} basis"]
+        if mesh:
+            parts.append(f"a {self.kpts[0]}x{self.kpts[1]} Gamma-centred k mesh"
+                         if self.kpts is not None else
+                         f"a Gamma-centred k mesh of {self.kpt_density:g} points per inverse "
+                         "Angstrom")
+        parts += [f"Fermi-Dirac width {self.smearing_eV:g} eV",
+                  f"{self.vacuum_A:g} Angstrom vacuum",
+                  f"collinear spin-polarised from {self.initial_magmom_muB:g} Bohr magnetons "
+                  "per atom" if self.spinpol else "spin-paired"]
+        if self.soc_scale == 0:
+            parts.append("spin-orbit coupling switched off (soc_scale 0)")
+        elif self.soc_scale == 1:
+            parts.append("spin-orbit coupling added non-self-consistently")
+        else:
+            parts.append(f"spin-orbit coupling scaled by {self.soc_scale:g}, added "
+                         "non-self-consistently")
+        return ", ".join(parts)
 
     @classmethod
     def from_dict(cls, data: dict[str, Any]) -> "LabelSettings":

@@ -69,7 +69,7 @@ if TYPE_CHECKING:  # pragma: no cover - typing only
     from pymatgen.core import Structure
 
 __all__ = ["MIN_LINK", "NK1", "MAX_NK1", "N_LINES", "WilsonZ2", "point_orbital_link", "loop_centres", "z2_from_wilson_loops",
-           "plot_flow", "refused_below_cap"]
+           "plot_flow", "refused_below_cap", "coarse_loops_reason"]
 
 #: k points per Wilson loop along k1 to start with; doubled while any link is further
 #: from unitary than :data:`MIN_LINK`, up to :data:`MAX_NK1`. Chosen here.
@@ -90,6 +90,15 @@ MIN_LINK: float = 0.8
 
 
 _COARSE_REFUSAL = re.compile(r"Wilson-loop links far from unitary with (\d+) points per loop")
+
+
+def coarse_loops_reason(name: str, size: int, min_link: float) -> str:
+    """The refusal of loops whose links stay far from unitary at ``size`` points per loop
+    (the last doubling); :func:`refused_below_cap` recognises it."""
+    return (f"{name}: Wilson-loop links far from unitary with {size} points per loop "
+            f"(smallest singular value {min_link:.2f}, expected >= {MIN_LINK}): the occupied "
+            "states turn too fast for the step, a sign of a nearly closed gap; no invariant "
+            "is given")
 
 
 def refused_below_cap(reason: str) -> bool:
@@ -369,10 +378,7 @@ def z2_from_wilson_loops(structure: "Structure | Atoms", settings: LabelSettings
             except _CoarseLoops as coarse:
                 if 2 * size > max_nk1:
                     raise LabellingError(
-                        f"{name}: Wilson-loop links far from unitary with {size} points per "
-                        f"loop (smallest singular value {coarse.min_link:.2f}, expected >= "
-                        f"{MIN_LINK}): the occupied states turn too fast for the step, a sign "
-                        "of a nearly closed gap; no invariant is given") from None
+                        coarse_loops_reason(name, size, coarse.min_link)) from None
                 size *= 2
             except LabellingError:
                 raise

@@ -722,10 +722,6 @@ def collect(
     fitted, source = cost_model_with_source(campaign)
     cost_model = fitted.as_dict()
     cost_model["source"] = source
-    theory = campaign.label_settings().describe() + (
-        " (fixed by the campaign's first run of prescreen label)" if campaign.label_settings_fixed
-        else " (the defaults: no built-in labelling in this campaign yet; the first "
-             "run of prescreen label fixes them)")
     ceiling = _negative_ceiling(model, feats, labels, threshold,
                                 getattr(model, "min_gap_eV_", None))
     return ReportData(
@@ -742,7 +738,7 @@ def collect(
         positive_rule=positive_rule(threshold, getattr(model, "min_gap_eV_", None)),
         invariants=_invariants(campaign, labels),
         skill=None if validation is None else roc_auc_interval(validation.y, validation.p_oof),
-        negative_ceiling=ceiling, level_of_theory=theory,
+        negative_ceiling=ceiling, level_of_theory=campaign.describe_label_settings(),
         picks_at_or_below_negatives=(None if ceiling is None else
                                      sum(r.probability <= ceiling for r in rows)),
     )
