@@ -479,8 +479,9 @@ _OLD_ODD_COUNT = re.compile(r"LabellingError: \S+: (\d+) valence electrons; a ti
 
 def _z2_rerun(rec: dict[str, Any]) -> bool:
     """Whether a Z2 record must be computed again: a status of
-    :data:`Z2_RETRY_STATUSES`, an old odd-count failure, or coarse Wilson loops refused
-    below the current cap on points per loop
+    :data:`Z2_RETRY_STATUSES`, a worker that died, an old odd-count failure, or coarse
+    Wilson loops refused below the
+    current cap on points per loop
     (:func:`prescreen.physics.wilson.refused_below_cap`)."""
     from prescreen.physics.wilson import refused_below_cap
 
@@ -489,6 +490,8 @@ def _z2_rerun(rec: dict[str, Any]) -> bool:
     if rec.get("status") != "failed":
         return False
     reason = str(rec.get("reason", ""))
+    if reason.startswith("WorkerDied:"):  # killed, out of memory, or a broken import
+        return True
     old = _OLD_ODD_COUNT.fullmatch(reason)
     return (old is not None and int(old.group(1)) % 2 == 1) or refused_below_cap(reason)
 

@@ -593,6 +593,8 @@ def test_old_odd_count_failures_are_rerun_and_other_failures_are_not():
     assert not driver._z2_rerun({"status": "failed", "reason": "LabellingError: o2d-x: GPAW"})
     assert not driver._z2_rerun({"status": "no_direct_gap", "reason": "odd"})
     assert driver._z2_rerun({"status": "no_inversion"})
+    assert driver._z2_rerun({"status": "failed", "reason": "WorkerDied: worker process ended "
+                             "(exit code 1), e.g. killed or out of memory"})
 
 
 def test_loops_refused_below_the_current_point_cap_are_rerun_and_others_are_not():
