@@ -419,14 +419,12 @@ class Campaign:
         A file written before a field existed reads with that field's default, the
         behaviour of the release that wrote it; ``complete`` also writes it back.
         """
-        import os
-
         from prescreen.physics.dft import LabelSettings
-        from prescreen.physics.labeller import SETTINGS_FILE
+        from prescreen.physics.labeller import SETTINGS_FILE, write_settings
 
-        spath = self.labels_dir / SETTINGS_FILE
         if not self.label_settings_fixed:
             return None
+        spath = self.labels_dir / SETTINGS_FILE
         expected = ("the settings.json written by `prescreen label` (restore it from a backup; "
                     "each record in labels/records.jsonl repeats the settings it used)")
         try:
@@ -444,9 +442,7 @@ class Campaign:
             raise InputError(f"labeller settings file is damaged: {why}", path=spath,
                              value=getattr(exc, "value", None), expected=expected) from exc
         if complete and fixed.as_dict() != raw:  # written before some fields existed
-            tmp = spath.with_suffix(".tmp")
-            tmp.write_text(json.dumps(fixed.as_dict(), indent=1))
-            os.replace(tmp, spath)
+            write_settings(self.labels_dir, fixed)
         return fixed
 
     def _other_settings(self, fixed: LabelSettings, key: str, value: Any) -> InputError:

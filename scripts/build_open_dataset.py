@@ -480,8 +480,7 @@ _OLD_ODD_COUNT = re.compile(r"LabellingError: \S+: (\d+) valence electrons; a ti
 def _z2_rerun(rec: dict[str, Any]) -> bool:
     """Whether a Z2 record must be computed again: a status of
     :data:`Z2_RETRY_STATUSES`, a worker that died, an old odd-count failure, or coarse
-    Wilson loops refused below the
-    current cap on points per loop
+    Wilson loops refused below the current cap on points per loop
     (:func:`prescreen.physics.wilson.refused_below_cap`)."""
     from prescreen.physics.wilson import refused_below_cap
 

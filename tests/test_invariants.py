@@ -149,6 +149,19 @@ def test_label_with_z2_checks_the_new_gapped_hits(campaign, monkeypatch, capsys)
     assert list(read_invariants(path / INVARIANTS_FILE)) == ["c0"]
 
 
+def _refusing(monkeypatch, module, name, error):
+    """Replace ``module.name`` (a Z2 route) by a stand-in that raises ``error(id)``; returns
+    the IDs it was asked for, in order."""
+    asked = []
+
+    def refuse(structure, settings, *, id=None, **kwargs):
+        asked.append(id)
+        raise error(id)
+
+    monkeypatch.setattr(module, name, refuse)
+    return asked
+
+
 def test_z2_without_ids_does_not_repeat_a_refusal_for_touching_bands(campaign, monkeypatch,
                                                                      capsys):
     # a semimetal hit with an inversion centre whose bands touch on the parity mesh:
@@ -160,13 +173,8 @@ def test_z2_without_ids_does_not_repeat_a_refusal_for_touching_bands(campaign, m
     from prescreen.errors import NoDirectGap
     from prescreen.physics import parity
 
-    asked = []
-
-    def touching(structure, settings, *, id=None, **kwargs):
-        asked.append(id)
-        raise NoDirectGap(f"{id}: no direct gap with spin-orbit coupling (stand-in)", 0.004)
-
-    monkeypatch.setattr(parity, "z2_from_parities", touching)
+    asked = _refusing(monkeypatch, parity, "z2_from_parities", lambda id: NoDirectGap(
+        f"{id}: no direct gap with spin-orbit coupling (stand-in)", 0.004))
     one_t = AseAtomsAdaptor.get_structure(mx2("MoS2", "1T", a=3.18, thickness=3.13, vacuum=8.0))
     campaign.add_candidates([Candidate("s0", "MoS2", "gen:s0", one_t)])
     campaign.ingest_results(([ResultRow(id="s0", spillage=0.9, gap_soc_eV=0.0,
@@ -189,13 +197,8 @@ def test_z2_without_ids_retries_refusals_of_the_parity_method_only(campaign, mon
     from prescreen.errors import LabellingError
     from prescreen.physics import wilson
 
-    asked = []
-
-    def refuse(structure, settings, *, id=None, **kwargs):
-        asked.append(id)
-        raise LabellingError(f"{id}: no direct gap with spin-orbit coupling (stand-in)")
-
-    monkeypatch.setattr(wilson, "z2_from_wilson_loops", refuse)
+    asked = _refusing(monkeypatch, wilson, "z2_from_wilson_loops", lambda id: LabellingError(
+        f"{id}: no direct gap with spin-orbit coupling (stand-in)"))
     path = campaign.path
     (path / INVARIANTS_FILE).write_text(
         "id,formula,z2,delta,direct_gap_soc_eV,kmesh,inversion_centre,parity_error,wall_s,"
@@ -218,13 +221,8 @@ def test_z2_without_ids_retries_loops_refused_below_todays_cap_once(campaign, mo
     from prescreen.errors import LabellingError
     from prescreen.physics import wilson
 
-    asked = []
-
-    def refuse(structure, settings, *, id=None, **kwargs):
-        asked.append(id)
-        raise LabellingError(wilson.coarse_loops_reason(id, wilson.MAX_NK1, 0.76))
-
-    monkeypatch.setattr(wilson, "z2_from_wilson_loops", refuse)
+    asked = _refusing(monkeypatch, wilson, "z2_from_wilson_loops", lambda id: LabellingError(
+        wilson.coarse_loops_reason(id, wilson.MAX_NK1, 0.76)))
     path = campaign.path
     (path / INVARIANTS_FILE).write_text(
         "id,formula,z2,delta,direct_gap_soc_eV,kmesh,inversion_centre,parity_error,wall_s,"

@@ -40,24 +40,29 @@ def print_outcomes(outcomes, path: Path, settings) -> None:
         print("no invariant was computed: every candidate was refused (reasons above)")
 
 
+def _retry(row: dict[str, str]) -> bool:
+    """Whether ``prescreen z2`` without IDs computes a recorded refusal again: one by the
+    parity method for want of an inversion (from before Wilson loops, which need none), or
+    coarse Wilson loops refused below today's cap on points per loop. A result, or any
+    other refusal (touching bands, an odd electron count), would come again."""
+    from prescreen.physics.wilson import refused_below_cap
+
+    if row["status"] == "ok":
+        return False
+    return ((row["method"] != "wilson" and "inversion" in row["reason"])
+            or refused_below_cap(row["reason"]))
+
+
 def run(args: argparse.Namespace) -> int:
     from prescreen.campaign import Campaign
     from prescreen.invariants import (INVARIANTS_FILE, compute_invariants, gapped_hits,
                                       read_invariants)
-    from prescreen.physics.wilson import refused_below_cap
 
     with Campaign.open(args.campaign) as campaign:
         out = args.out or campaign.path / INVARIANTS_FILE
         ids = args.ids
         if not ids:
-            # retried: a refusal by the parity method for want of an inversion (from
-            # before Wilson loops, which need none), and coarse Wilson loops refused below
-            # today's cap on points per loop; a result, or any other refusal (touching
-            # bands, an odd electron count), is not: it would come again
-            done = {i for i, row in read_invariants(out).items()
-                    if row["status"] == "ok"
-                    or not ((row["method"] != "wilson" and "inversion" in row["reason"])
-                            or refused_below_cap(row["reason"]))}
+            done = {i for i, row in read_invariants(out).items() if not _retry(row)}
             ids = [i for i in gapped_hits(campaign) if i not in done]
             if not ids:
                 print("nothing to compute: no labelled hit whose bands with SOC are apart "

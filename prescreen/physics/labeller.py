@@ -49,6 +49,7 @@ if TYPE_CHECKING:  # pragma: no cover - typing only
 __all__ = [
     "RECORDS_FILE",
     "SETTINGS_FILE",
+    "write_settings",
     "ARRAYS_DIR",
     "LabelSummary",
     "RecordStore",
@@ -74,6 +75,14 @@ POLL_S: float = 0.2
 STARTUP_GRACE_S: float = 120.0
 
 Compute = Callable[..., LabelRecord]
+
+
+def write_settings(out_dir: str | Path, settings: LabelSettings) -> None:
+    """Write ``<out_dir>/settings.json`` atomically, as every labeller folder holds it."""
+    spath = Path(out_dir) / SETTINGS_FILE
+    tmp = spath.with_suffix(".tmp")
+    tmp.write_text(json.dumps(settings.as_dict(), indent=1))
+    os.replace(tmp, spath)
 
 
 @dataclass(frozen=True)
@@ -187,9 +196,7 @@ class RecordStore:
                     "output folder was labelled with other settings; use a new folder",
                     path=spath, value=have, expected=f"the same settings {wanted}")
         else:
-            tmp = spath.with_suffix(".tmp")
-            tmp.write_text(json.dumps(wanted, indent=1))
-            os.replace(tmp, spath)
+            write_settings(self.dir, settings)
         self._repair_tail()
 
     def _repair_tail(self) -> None:
