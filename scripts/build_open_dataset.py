@@ -821,6 +821,9 @@ def _z2_columns(z2: dict[str, dict[str, Any]], label: Any) -> dict[str, Any]:
     if rec.get("status") == "no_inversion":
         return {"z2": None, "z2_method": "", "z2_status": "pending (no inversion centre: "
                 "Wilson loops at the next run)"}
+    if _z2_rerun(rec):  # e.g. a worker that died, or loops refused below today's cap
+        return {"z2": None, "z2_method": rec.get("method", ""),
+                "z2_status": f"pending (rerun at the next run after: {rec.get('reason', '')})"}
     return {"z2": None, "z2_method": rec.get("method", ""),
             "z2_status": f"failed: {rec.get('reason', '')}"}
 

@@ -597,6 +597,25 @@ def test_old_odd_count_failures_are_rerun_and_other_failures_are_not():
                              "(exit code 1), e.g. killed or out of memory"})
 
 
+def test_the_datasheet_calls_a_failure_that_will_be_rerun_pending_and_others_failed(
+        tmp_path, z2_pipeline, monkeypatch):
+    import prescreen.physics.dft as dft
+
+    driver, table, one_t, _ = z2_pipeline
+    monkeypatch.setattr(dft, "label_structure", _fake_metallic_positive(math.nan))
+    work = tmp_path / "work"
+    driver.pipeline_stage(table, [one_t], work, tmp_path / "out", 1, workers=1,
+                          progress=False)
+    (label,) = driver._labelled_table(table, driver._read_jsonl(work / "relax.jsonl"),
+                                      driver._label_records(work), {}).itertuples()
+    died = {"id": one_t, "status": "failed", "method": "wilson",
+            "reason": "WorkerDied: worker process ended (exit code 1)"}
+    other = died | {"reason": "LabellingError: GPAW did not converge"}
+    assert driver._z2_columns({one_t: died}, label)["z2_status"].startswith("pending (rerun")
+    assert driver._z2_columns({one_t: other}, label)["z2_status"] == (
+        "failed: LabellingError: GPAW did not converge")
+
+
 def test_loops_refused_below_the_current_point_cap_are_rerun_and_others_are_not():
     from prescreen.physics.wilson import MAX_NK1, coarse_loops_reason
 
