@@ -62,6 +62,7 @@ if str(ROOT) not in sys.path:  # run as a plain script from a checkout
     sys.path.insert(0, str(ROOT))
 
 from prescreen.errors import InputError  # noqa: E402
+from prescreen.io.atomic import replacing, write_json, write_text  # noqa: E402
 from prescreen.process import die_with_parent, folder_lock  # noqa: E402
 from prescreen.physics.dft import MAX_SCAN_EXTENSIONS  # noqa: E402
 from prescreen.physics.parity import SYMPREC_A  # noqa: E402
@@ -176,9 +177,8 @@ def _versions() -> dict[str, str]:
 
 
 def _write_parquet(df: "pd.DataFrame", path: Path) -> None:
-    tmp = path.with_suffix(path.suffix + ".tmp")
-    df.to_parquet(tmp, index=False, compression="zstd")
-    os.replace(tmp, path)
+    with replacing(path) as tmp:
+        df.to_parquet(tmp, index=False, compression="zstd")
 
 
 def _write_extxyz_gz(structures: Iterable[tuple["Structure", dict[str, Any]]], path: Path) -> None:
@@ -194,18 +194,9 @@ def _write_extxyz_gz(structures: Iterable[tuple["Structure", dict[str, Any]]], p
         atoms.info = dict(info)
         frames.append(atoms)
     write(buf, frames, format="extxyz")
-    tmp = path.with_suffix(path.suffix + ".tmp")
-    with open(tmp, "wb") as raw, gzip.GzipFile(filename="", mode="wb", fileobj=raw,
-                                               mtime=0, compresslevel=9) as gz:
+    with replacing(path) as tmp, open(tmp, "wb") as raw, gzip.GzipFile(
+            filename="", mode="wb", fileobj=raw, mtime=0, compresslevel=9) as gz:
         gz.write(buf.getvalue().encode())
-    os.replace(tmp, path)
-
-
-def _write_text_atomic(path: Path, text: str) -> None:
-    """Write through a temporary file and rename: a kill leaves the old file or the new."""
-    tmp = path.with_name(path.name + ".tmp")
-    tmp.write_text(text, encoding="utf-8")
-    os.replace(tmp, path)
 
 
 def _read_jsonl(path: Path) -> list[dict[str, Any]]:
@@ -274,9 +265,8 @@ def build_pool(out: Path, seed: int, *, force: bool = False, progress: bool = Tr
     arrow = pa.Table.from_pandas(table, preserve_index=False)
     arrow = arrow.replace_schema_metadata({**(arrow.schema.metadata or {}),
                                            b"prescreen.seed": str(seed).encode()})
-    tmp = path.with_suffix(".parquet.tmp")
-    pq.write_table(arrow, tmp, compression="zstd")
-    os.replace(tmp, path)
+    with replacing(path) as tmp:
+        pq.write_table(arrow, tmp, compression="zstd")
     _write_extxyz_gz(((c.structure, {"id": c.id, "prototype": c.prototype}) for c in pool),
                      out / POOL_XYZ)
     print(f"pool: {len(table)} candidates, {table.groupby(['prototype', 'reduced_formula']).ngroups}"
@@ -382,10 +372,7 @@ def _relax_one(ident: str, row: dict[str, Any], kpt_density: float, result_path:
         rec.update(status="failed", reason=f"{type(exc).__name__}: {exc}",
                    traceback=traceback.format_exc(limit=3))
     rec["wall_s"] = round(time.perf_counter() - t0, 2)
-    tmp = result_path + ".tmp"
-    with open(tmp, "w", encoding="utf-8") as fh:
-        json.dump(rec, fh)
-    os.replace(tmp, result_path)
+    write_json(result_path, rec)
 
 
 class _Job(NamedTuple):
@@ -410,10 +397,7 @@ def _label_one(ident: str, payload: dict[str, Any], result_path: str) -> None:
     except Exception as exc:  # recorded, not raised: one failure must not stop the run
         rec = LabelRecord.failed(ident, str(payload.get("formula", "?")), settings,
                                  f"{type(exc).__name__}: {exc}", time.perf_counter() - t0)
-    tmp = result_path + ".tmp"
-    with open(tmp, "w", encoding="utf-8") as fh:
-        json.dump(rec.as_dict(), fh)
-    os.replace(tmp, result_path)
+    write_json(result_path, rec.as_dict())
 
 
 def _child(target: Any, parent: int, *args: Any) -> None:
@@ -460,10 +444,7 @@ def _z2_one(ident: str, payload: dict[str, Any], result_path: str) -> None:
     except Exception as exc:  # recorded, not raised: one failure must not stop the run
         rec |= {"status": "failed", "reason": f"{type(exc).__name__}: {exc}"}
     rec["wall_s"] = round(time.perf_counter() - t0, 2)
-    tmp = result_path + ".tmp"
-    with open(tmp, "w", encoding="utf-8") as fh:
-        json.dump(rec, fh)
-    os.replace(tmp, result_path)
+    write_json(result_path, rec)
 
 
 #: Z2 records that say only why no invariant was computed then; a later run computes it
@@ -1110,7 +1091,7 @@ def pack_stage(out: Path, work: Path, seed: int) -> dict[str, Any]:
     versions = _versions()
     if len(labelled):
         versions.update(json.loads(labelled["versions"].iloc[0]))
-    _write_text_atomic(out / DATASHEET, datasheet(pool, labelled, relax_df, seed, versions))
+    write_text(out / DATASHEET, datasheet(pool, labelled, relax_df, seed, versions))
     files = [POOL_PARQUET, POOL_XYZ, LABELLED_PARQUET, LABELLED_XYZ, RELAX_PARQUET, DATASHEET]
     manifest = {
         "licence": LICENCE,
@@ -1121,7 +1102,7 @@ def pack_stage(out: Path, work: Path, seed: int) -> dict[str, Any]:
                    "relaxations": int(len(relax_df))},
         "files": {f: {"sha256": _sha256(out / f), "bytes": (out / f).stat().st_size} for f in files},
     }
-    _write_text_atomic(out / MANIFEST, json.dumps(manifest, indent=2, sort_keys=True) + "\n")
+    write_text(out / MANIFEST, json.dumps(manifest, indent=2, sort_keys=True) + "\n")
     print(f"pack: {len(pool)} pool, {len(relax_df)} relaxations, {len(labelled)} labelled, "
           f"{manifest['counts']['positives']} positive")
     return manifest

@@ -37,6 +37,7 @@ from typing import TYPE_CHECKING, Any, Callable, Iterable
 import numpy as np
 
 from prescreen.errors import InputError
+from prescreen.io.atomic import replacing, write_json
 from prescreen.io.ids import validate_id
 from prescreen.process import die_with_parent, folder_lock
 from prescreen.physics.dft import LabelRecord, LabelSettings, label_structure
@@ -79,10 +80,7 @@ Compute = Callable[..., LabelRecord]
 
 def write_settings(out_dir: str | Path, settings: LabelSettings) -> None:
     """Write ``<out_dir>/settings.json`` atomically, as every labeller folder holds it."""
-    spath = Path(out_dir) / SETTINGS_FILE
-    tmp = spath.with_suffix(".tmp")
-    tmp.write_text(json.dumps(settings.as_dict(), indent=1))
-    os.replace(tmp, spath)
+    write_json(Path(out_dir) / SETTINGS_FILE, settings.as_dict(), indent=1)
 
 
 @dataclass(frozen=True)
@@ -215,10 +213,9 @@ class RecordStore:
 
     def append(self, rec: LabelRecord) -> None:
         if rec.ok:
-            target = self.dir / ARRAYS_DIR / f"{rec.id}.npz"
-            tmp = target.with_name(target.stem + ".tmp.npz")
-            np.savez(tmp, gamma=rec.gamma, kpts=rec.kpts)
-            os.replace(tmp, target)
+            with replacing(self.dir / ARRAYS_DIR / f"{rec.id}.npz") as tmp, \
+                    open(tmp, "wb") as fh:  # a file object: savez adds no ".npz" to it
+                np.savez(fh, gamma=rec.gamma, kpts=rec.kpts)
         line = json.dumps(rec.as_dict(arrays=False)) + "\n"
         with open(self.records, "a", encoding="utf-8") as fh:
             fh.write(line)
