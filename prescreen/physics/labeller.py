@@ -172,7 +172,8 @@ class RecordStore:
     """The append-only checkpoint of one output folder (one writer process at a time).
 
     Opening checks that the folder was made with the same ``settings`` (or records
-    them) and removes a line torn by a crash; :meth:`append` writes a record's arrays,
+    them; a file written before a field existed is read with that field's default and
+    completed) and removes a line torn by a crash; :meth:`append` writes a record's arrays,
     then its line, fsync'ed; :meth:`status` gives the newest status of every id.
     """
 
@@ -189,10 +190,18 @@ class RecordStore:
             except json.JSONDecodeError as exc:
                 raise InputError("settings file is not valid JSON", path=spath,
                                  line=exc.lineno, expected="JSON written by prescreen") from exc
-            if have != wanted:
+            try:  # a file from before a field existed reads with that field's default
+                same = LabelSettings.from_dict(have) == settings
+            except (InputError, TypeError, AttributeError) as exc:
+                raise InputError(f"settings file does not hold label settings: {exc}",
+                                 path=spath, value=have,
+                                 expected=f"the settings written by prescreen, {wanted}") from exc
+            if not same:
                 raise InputError(
                     "output folder was labelled with other settings; use a new folder",
                     path=spath, value=have, expected=f"the same settings {wanted}")
+            if have != wanted:
+                write_settings(self.dir, settings)  # complete it with the fields it lacks
         else:
             write_settings(self.dir, settings)
         self._repair_tail()
