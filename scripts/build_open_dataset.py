@@ -87,6 +87,7 @@ __all__ = [
     "RELAX_KPT_DENSITY",
     "RELAX_SMEARING_EV",
     "RELAX_SCALES",
+    "RELAX_SCAN_EXTENSIONS",
     "stratified_order",
     "build_pool",
     "relax_stage",
@@ -115,10 +116,15 @@ RELAX_PRE_KPT_DENSITY = 1.25
 #: (common practice for geometry; the labels keep 0.01 eV).
 RELAX_SMEARING_EV = 0.1
 
-#: In-plane scale factors tried by the relaxation. Starting lattices from summed
-#: covalent radii are off by -9 % to +14 % for known layers (tests/test_prototypes.py),
-#: so the scan spans +-10 %; a second attempt re-centres it when the first ends at an edge.
-RELAX_SCALES = (0.90, 0.95, 1.00, 1.05, 1.10)
+#: In-plane scale factors the relaxation's lattice scan starts from, and the most points
+#: it adds past an edge (one step of 0.05 each). Starting lattices from summed covalent
+#: radii are off by -9 % to +14 % for known layers (tests/test_prototypes.py); the
+#: extensions reach +-30 %. For an energy curve with one minimum this finds the same three
+#: bracketing points, and so the same lattice, as a start from 0.90-1.10, with up to two
+#: energies fewer (tests/test_dft.py). Relaxations before 2026-12-03 started from
+#: (0.90, 0.95, 1.00, 1.05, 1.10) with up to 3 extensions (column `lattice_scan`).
+RELAX_SCALES = (0.95, 1.00, 1.05)
+RELAX_SCAN_EXTENSIONS = 5
 
 #: Residual-force tolerance of the relaxations (eV/angstrom); common practice.
 RELAX_FMAX = 0.05
@@ -331,8 +337,9 @@ def _relax_one(ident: str, row: dict[str, Any], kpt_density: float, result_path:
     os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
     t0 = time.perf_counter()
     rec: dict[str, Any] = {"id": ident, "attempts": 0, "smearing_eV": RELAX_SMEARING_EV,
-                           "lattice_scan": f"coarse (extended by up to {MAX_SCAN_EXTENSIONS} "
-                                           f"points past an edge) + fine (step {REFINE_STEP})",
+                           "lattice_scan": f"coarse from {RELAX_SCALES} (extended by up to "
+                                           f"{RELAX_SCAN_EXTENSIONS} points past an edge) + fine "
+                                           f"(step {REFINE_STEP})",
                            "pre_relax_kpt_density": RELAX_PRE_KPT_DENSITY}
     try:
         settings = LabelSettings(kpt_density=kpt_density, smearing_eV=RELAX_SMEARING_EV)
@@ -348,7 +355,8 @@ def _relax_one(ident: str, row: dict[str, Any], kpt_density: float, result_path:
             try:
                 structure, residual, converged = relax_monolayer(
                     structure, settings, fmax=RELAX_FMAX, steps=RELAX_STEPS,
-                    scales=RELAX_SCALES, pre_relax_kpt_density=RELAX_PRE_KPT_DENSITY,
+                    scales=RELAX_SCALES, max_extensions=RELAX_SCAN_EXTENSIONS,
+                    pre_relax_kpt_density=RELAX_PRE_KPT_DENSITY,
                     check_layer=check)
             except LayerBroke as exc:  # no lattice scan for a layer that is gone
                 structure, broke = exc.structure, f"after the pre-relaxation: {exc.reason}"
@@ -1007,10 +1015,12 @@ python scripts/build_open_dataset.py --seed {seed} --workers 2    # or: make dat
    {RELAX_SMEARING_EV} eV (the first relaxations used 0.01 eV; the width of each is in
    `{RELAX_PARQUET}`, column `smearing_eV`); positions by BFGS to
    {RELAX_FMAX} eV/A (at most {RELAX_STEPS} steps), in-plane lattice by an isotropic
-   energy scan over scales {RELAX_SCALES} (extended by up to {MAX_SCAN_EXTENSIONS} more
-   points when the lowest energy lies at an edge) and a finer scan around its minimum,
-   each with a parabola fit (earlier relaxations used the coarse scan only, or no
-   extension; column `lattice_scan`; the in-plane cell shape
+   energy scan from scales {RELAX_SCALES} (extended in steps of 0.05 by up to
+   {RELAX_SCAN_EXTENSIONS} more points while the lowest energy lies at an edge) and a finer
+   scan around its minimum, each with a parabola fit (earlier relaxations started from
+   (0.9, 0.95, 1.0, 1.05, 1.1) with up to {MAX_SCAN_EXTENSIONS} extensions, and the first
+   ones used the coarse scan only, or no extension; column `lattice_scan`; the in-plane
+   cell shape
    is not optimised); up to {RELAX_ATTEMPTS} attempts. Structures that do not converge,
    or that are no longer one bonded, 2-periodic sheet with at least 8 A of vacuum
    (covalent radii x 1.25 bond test), are recorded in `{RELAX_PARQUET}` and left out;

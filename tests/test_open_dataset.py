@@ -238,8 +238,8 @@ def test_stratified_order_small_cells_first_and_prototypes_take_turns(pool):
     assert driver.stratified_order(pool, seed=1) == order  # same seed, same order
 
 
-def _fake_relax(structure, settings, *, fmax, steps, scales, pre_relax_kpt_density=None,
-                check_layer=None):
+def _fake_relax(structure, settings, *, fmax, steps, scales, max_extensions=3,
+                pre_relax_kpt_density=None, check_layer=None):
     """Stand-in for relax_monolayer: behaviour chosen by the first element."""
     import time as _time
 
