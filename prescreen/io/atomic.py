@@ -14,7 +14,7 @@ from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
 
-__all__ = ["replacing", "write_text", "write_json"]
+__all__ = ["replacing", "write_bytes", "write_text", "write_json"]
 
 
 @contextmanager
@@ -38,10 +38,15 @@ def replacing(path: str | Path) -> Iterator[Path]:
         tmp.unlink(missing_ok=True)
 
 
+def write_bytes(path: str | Path, data: bytes) -> None:
+    """Write ``data`` to ``path`` through a temporary file."""
+    with replacing(path) as tmp:
+        tmp.write_bytes(data)
+
+
 def write_text(path: str | Path, text: str) -> None:
     """Write ``text`` (UTF-8) to ``path`` through a temporary file."""
-    with replacing(path) as tmp:
-        tmp.write_text(text, encoding="utf-8")
+    write_bytes(path, text.encode("utf-8"))
 
 
 def write_json(path: str | Path, obj: Any, indent: int | None = None) -> None:
