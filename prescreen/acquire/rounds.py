@@ -47,6 +47,7 @@ __all__ = [
     "training_table",
     "positive_rule",
     "train",
+    "write_ranking",
     "load_model",
     "rank",
     "propose",
@@ -611,6 +612,23 @@ def rank(campaign: Campaign, *, progress: bool = True) -> pd.DataFrame:
 #: Grouped-CV ROC-AUC below which `rank` warns that the ranking is close to random
 #: (chosen here; 0.5 is random, and these folds are small).
 WEAK_MODEL_ROC_AUC = 0.65
+
+
+def write_ranking(table: pd.DataFrame, stem: str | Path) -> tuple[Path, Path]:
+    """Write a :func:`rank` table as ``<stem>.csv`` and ``<stem>.parquet``, each whole.
+
+    Returns
+    -------
+    (csv_path, parquet_path)
+    """
+    stem = Path(stem)
+    stem.parent.mkdir(parents=True, exist_ok=True)
+    paths = stem.with_suffix(".csv"), stem.with_suffix(".parquet")
+    with replacing(paths[0]) as tmp:
+        table.to_csv(tmp)
+    with replacing(paths[1]) as tmp:
+        table.to_parquet(tmp)
+    return paths
 
 
 def model_check(campaign: Campaign, version: str) -> dict[str, float]:
