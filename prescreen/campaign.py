@@ -33,6 +33,7 @@ from prescreen import SPILLAGE_THRESHOLD, __version__
 from prescreen.candidate import Candidate
 from prescreen.errors import CampaignError, InputError, Rejection
 from prescreen.hazards import hazard_text
+from prescreen.io.atomic import replacing
 
 if TYPE_CHECKING:  # pragma: no cover
     import pandas as pd
@@ -857,9 +858,8 @@ class Campaign:
             new.index = pd.Index(missing, name="id")
             cached = new if cached is None else pd.concat([cached, new])
             cache.parent.mkdir(exist_ok=True)
-            tmp = cache.with_suffix(".parquet.tmp")
-            cached.to_parquet(tmp)
-            tmp.replace(cache)
+            with replacing(cache) as tmp:
+                cached.to_parquet(tmp)
         if cached is None:  # nothing wanted and nothing cached yet
             return pd.DataFrame(index=pd.Index([], name="id"))
         return cached.loc[wanted]

@@ -116,9 +116,7 @@ def run_demo(out: Path, inputs: Path = EXAMPLES, *, progress: bool = True) -> di
 
         _step("ranking every candidate")
         ranking = rounds.rank(campaign, progress=progress)
-        ranking.to_csv(out / "ranking.csv")
-        ranking.to_parquet(out / "ranking.parquet")
-        written["ranking"] = out / "ranking.csv"
+        written["ranking"], _ = rounds.write_ranking(ranking, out / "ranking")
         print(ranking[["rank", "formula", "probability", "uncertainty", "cost_core_hours",
                        "flags"]].head(10).to_string(float_format=lambda v: f"{v:.2f}"))
 

@@ -17,13 +17,13 @@ from __future__ import annotations
 import csv
 import importlib.util
 import json
-import os
 from collections.abc import Iterable
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from prescreen.errors import InputError, LabellingError
+from prescreen.io.atomic import replacing, write_json
 
 if TYPE_CHECKING:  # pragma: no cover
     from prescreen.campaign import Campaign
@@ -140,20 +140,16 @@ def read_flow(invariants_path: str | Path, cid: str) -> Any:
 def _write_flow(invariants_path: Path, cid: str, result: Any) -> None:
     folder = invariants_path.parent / FLOWS_DIR
     folder.mkdir(parents=True, exist_ok=True)
-    tmp = folder / f"{cid}.json.tmp"
-    tmp.write_text(json.dumps(result.as_dict(), indent=1), encoding="utf-8")
-    os.replace(tmp, folder / f"{cid}.json")
+    write_json(folder / f"{cid}.json", result.as_dict(), indent=1)
 
 
 def _write(path: Path, rows: dict[str, dict[str, str]]) -> None:
     """Write all rows through a temporary file (a kill leaves the old file or the new)."""
     path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = path.with_name(path.name + ".tmp")
-    with open(tmp, "w", newline="", encoding="utf-8") as fh:
+    with replacing(path) as tmp, open(tmp, "w", newline="", encoding="utf-8") as fh:
         writer = csv.DictWriter(fh, fieldnames=list(COLUMNS), lineterminator="\n")
         writer.writeheader()
         writer.writerows(rows.values())
-    os.replace(tmp, path)
 
 
 def gapped_hits(campaign: "Campaign", ids: Iterable[str] | None = None) -> list[str]:

@@ -71,6 +71,7 @@ from sklearn.utils.multiclass import check_classification_targets
 from sklearn.utils.validation import check_is_fitted, validate_data
 
 from prescreen.errors import InputError, SchemaMismatchError
+from prescreen.io.atomic import write_bytes, write_text
 
 __all__ = [
     "SpillageClassifier",
@@ -422,7 +423,7 @@ class _BoostedEnsemble:
         for i, booster in enumerate(self.members_):
             name = f"member_{i:02d}.txt"
             text = booster.model_to_string(num_iteration=-1).encode()
-            (path / name).write_bytes(text)
+            write_bytes(path / name, text)
             member_files.append({"file": name, "sha256": _sha256_bytes(text)})
         written = {entry["file"] for entry in member_files}
         for stale in path.glob("member_*.txt"):  # members of an earlier, larger save
@@ -443,7 +444,7 @@ class _BoostedEnsemble:
             "package_versions": _package_versions(),
         } | extra
         text = json.dumps(meta, indent=2, sort_keys=True, allow_nan=False) + "\n"
-        (path / _METADATA).write_text(text, encoding="utf-8")
+        write_text(path / _METADATA, text)  # last: it names the members' hashes
 
     @classmethod
     def _read(cls, path: str | Path, expected_schema: str | None) -> tuple[Any, dict[str, Any], Path]:

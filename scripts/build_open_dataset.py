@@ -62,6 +62,7 @@ if str(ROOT) not in sys.path:  # run as a plain script from a checkout
     sys.path.insert(0, str(ROOT))
 
 from prescreen.errors import InputError  # noqa: E402
+from prescreen.io.atomic import replacing, write_json, write_text  # noqa: E402
 from prescreen.process import die_with_parent, folder_lock  # noqa: E402
 from prescreen.physics.dft import MAX_SCAN_EXTENSIONS  # noqa: E402
 from prescreen.physics.parity import SYMPREC_A  # noqa: E402
@@ -86,6 +87,7 @@ __all__ = [
     "RELAX_KPT_DENSITY",
     "RELAX_SMEARING_EV",
     "RELAX_SCALES",
+    "RELAX_SCAN_EXTENSIONS",
     "stratified_order",
     "build_pool",
     "relax_stage",
@@ -114,10 +116,15 @@ RELAX_PRE_KPT_DENSITY = 1.25
 #: (common practice for geometry; the labels keep 0.01 eV).
 RELAX_SMEARING_EV = 0.1
 
-#: In-plane scale factors tried by the relaxation. Starting lattices from summed
-#: covalent radii are off by -9 % to +14 % for known layers (tests/test_prototypes.py),
-#: so the scan spans +-10 %; a second attempt re-centres it when the first ends at an edge.
-RELAX_SCALES = (0.90, 0.95, 1.00, 1.05, 1.10)
+#: In-plane scale factors the relaxation's lattice scan starts from, and the most points
+#: it adds past an edge (one step of 0.05 each). Starting lattices from summed covalent
+#: radii are off by -9 % to +14 % for known layers (tests/test_prototypes.py); the
+#: extensions reach +-30 %. For an energy curve with one minimum this finds the same three
+#: bracketing points, and so the same lattice, as a start from 0.90-1.10, with up to two
+#: energies fewer (tests/test_dft.py). Relaxations before 2026-12-03 started from
+#: (0.90, 0.95, 1.00, 1.05, 1.10) with up to 3 extensions (column `lattice_scan`).
+RELAX_SCALES = (0.95, 1.00, 1.05)
+RELAX_SCAN_EXTENSIONS = 5
 
 #: Residual-force tolerance of the relaxations (eV/angstrom); common practice.
 RELAX_FMAX = 0.05
@@ -176,9 +183,8 @@ def _versions() -> dict[str, str]:
 
 
 def _write_parquet(df: "pd.DataFrame", path: Path) -> None:
-    tmp = path.with_suffix(path.suffix + ".tmp")
-    df.to_parquet(tmp, index=False, compression="zstd")
-    os.replace(tmp, path)
+    with replacing(path) as tmp:
+        df.to_parquet(tmp, index=False, compression="zstd")
 
 
 def _write_extxyz_gz(structures: Iterable[tuple["Structure", dict[str, Any]]], path: Path) -> None:
@@ -194,18 +200,9 @@ def _write_extxyz_gz(structures: Iterable[tuple["Structure", dict[str, Any]]], p
         atoms.info = dict(info)
         frames.append(atoms)
     write(buf, frames, format="extxyz")
-    tmp = path.with_suffix(path.suffix + ".tmp")
-    with open(tmp, "wb") as raw, gzip.GzipFile(filename="", mode="wb", fileobj=raw,
-                                               mtime=0, compresslevel=9) as gz:
+    with replacing(path) as tmp, open(tmp, "wb") as raw, gzip.GzipFile(
+            filename="", mode="wb", fileobj=raw, mtime=0, compresslevel=9) as gz:
         gz.write(buf.getvalue().encode())
-    os.replace(tmp, path)
-
-
-def _write_text_atomic(path: Path, text: str) -> None:
-    """Write through a temporary file and rename: a kill leaves the old file or the new."""
-    tmp = path.with_name(path.name + ".tmp")
-    tmp.write_text(text, encoding="utf-8")
-    os.replace(tmp, path)
 
 
 def _read_jsonl(path: Path) -> list[dict[str, Any]]:
@@ -274,9 +271,8 @@ def build_pool(out: Path, seed: int, *, force: bool = False, progress: bool = Tr
     arrow = pa.Table.from_pandas(table, preserve_index=False)
     arrow = arrow.replace_schema_metadata({**(arrow.schema.metadata or {}),
                                            b"prescreen.seed": str(seed).encode()})
-    tmp = path.with_suffix(".parquet.tmp")
-    pq.write_table(arrow, tmp, compression="zstd")
-    os.replace(tmp, path)
+    with replacing(path) as tmp:
+        pq.write_table(arrow, tmp, compression="zstd")
     _write_extxyz_gz(((c.structure, {"id": c.id, "prototype": c.prototype}) for c in pool),
                      out / POOL_XYZ)
     print(f"pool: {len(table)} candidates, {table.groupby(['prototype', 'reduced_formula']).ngroups}"
@@ -341,8 +337,9 @@ def _relax_one(ident: str, row: dict[str, Any], kpt_density: float, result_path:
     os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
     t0 = time.perf_counter()
     rec: dict[str, Any] = {"id": ident, "attempts": 0, "smearing_eV": RELAX_SMEARING_EV,
-                           "lattice_scan": f"coarse (extended by up to {MAX_SCAN_EXTENSIONS} "
-                                           f"points past an edge) + fine (step {REFINE_STEP})",
+                           "lattice_scan": f"coarse from {RELAX_SCALES} (extended by up to "
+                                           f"{RELAX_SCAN_EXTENSIONS} points past an edge) + fine "
+                                           f"(step {REFINE_STEP})",
                            "pre_relax_kpt_density": RELAX_PRE_KPT_DENSITY}
     try:
         settings = LabelSettings(kpt_density=kpt_density, smearing_eV=RELAX_SMEARING_EV)
@@ -358,7 +355,8 @@ def _relax_one(ident: str, row: dict[str, Any], kpt_density: float, result_path:
             try:
                 structure, residual, converged = relax_monolayer(
                     structure, settings, fmax=RELAX_FMAX, steps=RELAX_STEPS,
-                    scales=RELAX_SCALES, pre_relax_kpt_density=RELAX_PRE_KPT_DENSITY,
+                    scales=RELAX_SCALES, max_extensions=RELAX_SCAN_EXTENSIONS,
+                    pre_relax_kpt_density=RELAX_PRE_KPT_DENSITY,
                     check_layer=check)
             except LayerBroke as exc:  # no lattice scan for a layer that is gone
                 structure, broke = exc.structure, f"after the pre-relaxation: {exc.reason}"
@@ -382,10 +380,7 @@ def _relax_one(ident: str, row: dict[str, Any], kpt_density: float, result_path:
         rec.update(status="failed", reason=f"{type(exc).__name__}: {exc}",
                    traceback=traceback.format_exc(limit=3))
     rec["wall_s"] = round(time.perf_counter() - t0, 2)
-    tmp = result_path + ".tmp"
-    with open(tmp, "w", encoding="utf-8") as fh:
-        json.dump(rec, fh)
-    os.replace(tmp, result_path)
+    write_json(result_path, rec)
 
 
 class _Job(NamedTuple):
@@ -410,10 +405,7 @@ def _label_one(ident: str, payload: dict[str, Any], result_path: str) -> None:
     except Exception as exc:  # recorded, not raised: one failure must not stop the run
         rec = LabelRecord.failed(ident, str(payload.get("formula", "?")), settings,
                                  f"{type(exc).__name__}: {exc}", time.perf_counter() - t0)
-    tmp = result_path + ".tmp"
-    with open(tmp, "w", encoding="utf-8") as fh:
-        json.dump(rec.as_dict(), fh)
-    os.replace(tmp, result_path)
+    write_json(result_path, rec.as_dict())
 
 
 def _child(target: Any, parent: int, *args: Any) -> None:
@@ -460,10 +452,7 @@ def _z2_one(ident: str, payload: dict[str, Any], result_path: str) -> None:
     except Exception as exc:  # recorded, not raised: one failure must not stop the run
         rec |= {"status": "failed", "reason": f"{type(exc).__name__}: {exc}"}
     rec["wall_s"] = round(time.perf_counter() - t0, 2)
-    tmp = result_path + ".tmp"
-    with open(tmp, "w", encoding="utf-8") as fh:
-        json.dump(rec, fh)
-    os.replace(tmp, result_path)
+    write_json(result_path, rec)
 
 
 #: Z2 records that say only why no invariant was computed then; a later run computes it
@@ -821,6 +810,9 @@ def _z2_columns(z2: dict[str, dict[str, Any]], label: Any) -> dict[str, Any]:
     if rec.get("status") == "no_inversion":
         return {"z2": None, "z2_method": "", "z2_status": "pending (no inversion centre: "
                 "Wilson loops at the next run)"}
+    if _z2_rerun(rec):  # e.g. a worker that died, or loops refused below today's cap
+        return {"z2": None, "z2_method": rec.get("method", ""),
+                "z2_status": f"pending (rerun at the next run after: {rec.get('reason', '')})"}
     return {"z2": None, "z2_method": rec.get("method", ""),
             "z2_status": f"failed: {rec.get('reason', '')}"}
 
@@ -1023,10 +1015,12 @@ python scripts/build_open_dataset.py --seed {seed} --workers 2    # or: make dat
    {RELAX_SMEARING_EV} eV (the first relaxations used 0.01 eV; the width of each is in
    `{RELAX_PARQUET}`, column `smearing_eV`); positions by BFGS to
    {RELAX_FMAX} eV/A (at most {RELAX_STEPS} steps), in-plane lattice by an isotropic
-   energy scan over scales {RELAX_SCALES} (extended by up to {MAX_SCAN_EXTENSIONS} more
-   points when the lowest energy lies at an edge) and a finer scan around its minimum,
-   each with a parabola fit (earlier relaxations used the coarse scan only, or no
-   extension; column `lattice_scan`; the in-plane cell shape
+   energy scan from scales {RELAX_SCALES} (extended in steps of 0.05 by up to
+   {RELAX_SCAN_EXTENSIONS} more points while the lowest energy lies at an edge) and a finer
+   scan around its minimum, each with a parabola fit (earlier relaxations started from
+   (0.9, 0.95, 1.0, 1.05, 1.1) with up to {MAX_SCAN_EXTENSIONS} extensions, and the first
+   ones used the coarse scan only, or no extension; column `lattice_scan`; the in-plane
+   cell shape
    is not optimised); up to {RELAX_ATTEMPTS} attempts. Structures that do not converge,
    or that are no longer one bonded, 2-periodic sheet with at least 8 A of vacuum
    (covalent radii x 1.25 bond test), are recorded in `{RELAX_PARQUET}` and left out;
@@ -1107,7 +1101,7 @@ def pack_stage(out: Path, work: Path, seed: int) -> dict[str, Any]:
     versions = _versions()
     if len(labelled):
         versions.update(json.loads(labelled["versions"].iloc[0]))
-    _write_text_atomic(out / DATASHEET, datasheet(pool, labelled, relax_df, seed, versions))
+    write_text(out / DATASHEET, datasheet(pool, labelled, relax_df, seed, versions))
     files = [POOL_PARQUET, POOL_XYZ, LABELLED_PARQUET, LABELLED_XYZ, RELAX_PARQUET, DATASHEET]
     manifest = {
         "licence": LICENCE,
@@ -1118,7 +1112,7 @@ def pack_stage(out: Path, work: Path, seed: int) -> dict[str, Any]:
                    "relaxations": int(len(relax_df))},
         "files": {f: {"sha256": _sha256(out / f), "bytes": (out / f).stat().st_size} for f in files},
     }
-    _write_text_atomic(out / MANIFEST, json.dumps(manifest, indent=2, sort_keys=True) + "\n")
+    write_text(out / MANIFEST, json.dumps(manifest, indent=2, sort_keys=True) + "\n")
     print(f"pack: {len(pool)} pool, {len(relax_df)} relaxations, {len(labelled)} labelled, "
           f"{manifest['counts']['positives']} positive")
     return manifest

@@ -291,6 +291,31 @@ def test_lattice_scan_extends_past_an_edge_until_the_minimum_is_bracketed(minimu
         assert _parabola_minimum(xs, es) == pytest.approx(minimum, abs=1e-9)
 
 
+@pytest.mark.parametrize("minimum", [0.78, 0.86, 0.93, 0.99, 1.00, 1.04, 1.08, 1.13, 1.21])
+def test_a_narrow_scan_start_with_more_extensions_finds_the_wide_start_lattice(minimum):
+    """The open dataset's build starts from 0.95-1.05 with 5 extensions where it once
+    started from 0.90-1.10 with 3: for one minimum both must bracket it with the same three
+    points (so the same parabola), the narrow start never with more energies."""
+    from prescreen.physics.dft import _bracketed_scan, _parabola_minimum
+
+    def scan(scales, extensions):
+        calls = []
+
+        def energy(factors):  # an anharmonic well with its minimum at `minimum`
+            calls.extend(factors)
+            return np.array([(f / minimum - 1) ** 2 - 0.8 * (f / minimum - 1) ** 3
+                             for f in factors])
+
+        xs, es = _bracketed_scan(scales, energy, max_extensions=extensions)
+        j = int(np.argmin(es))
+        return xs[max(j - 1, 0):j + 2], _parabola_minimum(xs, es), len(calls)
+
+    wide = scan((0.90, 0.95, 1.00, 1.05, 1.10), 3)
+    narrow = scan((0.95, 1.00, 1.05), 5)
+    assert narrow[0] == pytest.approx(wide[0]) and narrow[1] == pytest.approx(wide[1])
+    assert narrow[2] <= wide[2]
+
+
 def test_a_failing_extension_point_ends_the_extension_at_the_edge():
     from prescreen.physics.dft import _bracketed_scan
 

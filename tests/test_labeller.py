@@ -13,6 +13,7 @@ import signal
 import subprocess
 import sys
 import time
+from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
@@ -227,6 +228,32 @@ def test_other_settings_in_the_same_folder_are_refused(tmp_path, log):
     with pytest.raises(InputError, match="labelled with other settings"):
         run_labelling(_jobs(["a"]), out, settings=LabelSettings(kpts=(6, 6, 1)),
                       compute=fake_compute, progress=False)
+
+
+def test_a_settings_file_from_before_a_field_existed_is_completed_not_refused(tmp_path, log):
+    out = tmp_path / "run"
+    run_labelling(_jobs(["a"]), out, settings=SETTINGS, compute=fake_compute, progress=False)
+    spath = out / "settings.json"
+    older = json.loads(spath.read_text())
+    del older["soc_scale"]  # as if written by a release without the field
+    spath.write_text(json.dumps(older))
+    run_labelling(_jobs(["a", "b"]), out, settings=SETTINGS, compute=fake_compute,
+                  progress=False)
+    assert json.loads(spath.read_text()) == SETTINGS.as_dict()
+    # the default the field takes must still match what is asked
+    spath.write_text(json.dumps(older))
+    with pytest.raises(InputError, match="labelled with other settings"):
+        run_labelling(_jobs(["a"]), out, settings=replace(SETTINGS, soc_scale=0.0),
+                      compute=fake_compute, progress=False)
+
+
+def test_a_settings_file_with_unknown_fields_is_named(tmp_path, log):
+    out = tmp_path / "run"
+    out.mkdir()
+    (out / "settings.json").write_text(json.dumps({"basis": "dzp", "ecut": 500}))
+    with pytest.raises(InputError, match=r"settings.json.*does not hold label settings"):
+        run_labelling(_jobs(["a"]), out, settings=SETTINGS, compute=fake_compute,
+                      progress=False)
 
 
 @pytest.mark.parametrize(

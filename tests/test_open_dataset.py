@@ -238,8 +238,8 @@ def test_stratified_order_small_cells_first_and_prototypes_take_turns(pool):
     assert driver.stratified_order(pool, seed=1) == order  # same seed, same order
 
 
-def _fake_relax(structure, settings, *, fmax, steps, scales, pre_relax_kpt_density=None,
-                check_layer=None):
+def _fake_relax(structure, settings, *, fmax, steps, scales, max_extensions=3,
+                pre_relax_kpt_density=None, check_layer=None):
     """Stand-in for relax_monolayer: behaviour chosen by the first element."""
     import time as _time
 
@@ -595,6 +595,25 @@ def test_old_odd_count_failures_are_rerun_and_other_failures_are_not():
     assert driver._z2_rerun({"status": "no_inversion"})
     assert driver._z2_rerun({"status": "failed", "reason": "WorkerDied: worker process ended "
                              "(exit code 1), e.g. killed or out of memory"})
+
+
+def test_the_datasheet_calls_a_failure_that_will_be_rerun_pending_and_others_failed(
+        tmp_path, z2_pipeline, monkeypatch):
+    import prescreen.physics.dft as dft
+
+    driver, table, one_t, _ = z2_pipeline
+    monkeypatch.setattr(dft, "label_structure", _fake_metallic_positive(math.nan))
+    work = tmp_path / "work"
+    driver.pipeline_stage(table, [one_t], work, tmp_path / "out", 1, workers=1,
+                          progress=False)
+    (label,) = driver._labelled_table(table, driver._read_jsonl(work / "relax.jsonl"),
+                                      driver._label_records(work), {}).itertuples()
+    died = {"id": one_t, "status": "failed", "method": "wilson",
+            "reason": "WorkerDied: worker process ended (exit code 1)"}
+    other = died | {"reason": "LabellingError: GPAW did not converge"}
+    assert driver._z2_columns({one_t: died}, label)["z2_status"].startswith("pending (rerun")
+    assert driver._z2_columns({one_t: other}, label)["z2_status"] == (
+        "failed: LabellingError: GPAW did not converge")
 
 
 def test_loops_refused_below_the_current_point_cap_are_rerun_and_others_are_not():

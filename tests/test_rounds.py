@@ -144,6 +144,20 @@ def test_same_seed_same_proposal_bit_for_bit(tmp_path):
     pd.testing.assert_frame_equal(run(), run(), check_exact=True)
 
 
+def test_a_ranking_is_written_as_csv_and_parquet_with_the_same_rows(trained, tmp_path):
+    import pandas as pd
+
+    camp, _ = trained
+    table = rounds.rank(camp, progress=False)
+    csv_path, parquet_path = rounds.write_ranking(table, tmp_path / "out" / "ranking")
+    from_csv = pd.read_csv(csv_path, index_col=0)
+    from_parquet = pd.read_parquet(parquet_path)
+    assert list(from_csv.index) == list(from_parquet.index) == list(table.index)
+    assert np.allclose(from_csv["probability"], table["probability"])
+    assert sorted(p.name for p in (tmp_path / "out").iterdir()) == ["ranking.csv",
+                                                                    "ranking.parquet"]
+
+
 def test_an_empty_campaign_is_a_clear_error_for_rank_and_propose(tmp_path):
     camp = _new_campaign(tmp_path / "empty")
     with pytest.raises(CampaignError, match="no candidates yet.*prescreen add"):

@@ -43,6 +43,7 @@ import pandas as pd
 from scipy import stats
 
 from prescreen.errors import InputError
+from prescreen.io.atomic import write_text
 
 __all__ = [
     "CostModel",
@@ -333,7 +334,7 @@ class CostModel:
 
     def save(self, path: str | Path) -> None:
         """Write the model as JSON."""
-        Path(path).write_text(json.dumps(self.as_dict(), indent=2, sort_keys=True) + "\n")
+        write_text(path, json.dumps(self.as_dict(), indent=2, sort_keys=True) + "\n")
 
     @classmethod
     def load(cls, path: str | Path) -> "CostModel":

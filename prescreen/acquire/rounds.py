@@ -26,6 +26,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from prescreen.errors import CampaignError, InputError
+from prescreen.io.atomic import replacing, write_text
 
 if TYPE_CHECKING:  # pragma: no cover
     import pandas as pd
@@ -46,6 +47,7 @@ __all__ = [
     "training_table",
     "positive_rule",
     "train",
+    "write_ranking",
     "load_model",
     "rank",
     "propose",
@@ -412,7 +414,8 @@ def train(
     model.save(path, feature_schema=schema_version(),
                training_data_hash=training_data_hash(table.X, table.y, table.weight),
                metrics=metrics, threshold=table.threshold, min_gap_eV=table.min_gap_eV)
-    cv.to_csv(path / "grouped_cv.csv")
+    with replacing(path / "grouped_cv.csv") as tmp:
+        cv.to_csv(tmp)
     campaign.record_model(version, path.relative_to(campaign.path),
                           feature_schema=schema_version(), training_rows=len(table),
                           metrics=metrics,
@@ -611,6 +614,23 @@ def rank(campaign: Campaign, *, progress: bool = True) -> pd.DataFrame:
 WEAK_MODEL_ROC_AUC = 0.65
 
 
+def write_ranking(table: pd.DataFrame, stem: str | Path) -> tuple[Path, Path]:
+    """Write a :func:`rank` table as ``<stem>.csv`` and ``<stem>.parquet``, each whole.
+
+    Returns
+    -------
+    (csv_path, parquet_path)
+    """
+    stem = Path(stem)
+    stem.parent.mkdir(parents=True, exist_ok=True)
+    paths = stem.with_suffix(".csv"), stem.with_suffix(".parquet")
+    with replacing(paths[0]) as tmp:
+        table.to_csv(tmp)
+    with replacing(paths[1]) as tmp:
+        table.to_parquet(tmp)
+    return paths
+
+
 def model_check(campaign: Campaign, version: str) -> dict[str, float]:
     """Grouped-CV ``cv_roc_auc`` (mean over folds) and ``cv_rows`` of model ``version``.
 
@@ -787,13 +807,16 @@ def propose(
     frames = []
     for cid in table.index:
         structure = campaign.structure(cid)
-        structure.to(filename=str(folder / "cif" / f"{cid}.cif"))
+        with replacing(folder / "cif" / f"{cid}.cif") as tmp:
+            structure.to(filename=str(tmp), fmt="cif")
         atoms = AseAtomsAdaptor.get_atoms(structure)
         atoms.info["id"] = cid
         frames.append(atoms)
-    write(folder / "batch.extxyz", frames, format="extxyz")
-    table.to_csv(folder / "proposals.csv")
-    (folder / "round.json").write_text(json.dumps({
+    with replacing(folder / "batch.extxyz") as tmp:
+        write(tmp, frames, format="extxyz")
+    with replacing(folder / "proposals.csv") as tmp:
+        table.to_csv(tmp)
+    write_text(folder / "round.json", json.dumps({
         "round": number, "strategy": proposal.strategy, "seed": seed, "model": version,
         "budget_core_hours": budget_core_hours, "total_cost_core_hours": proposal.total_cost,
         "expected_hits": proposal.expected_hits,

@@ -17,15 +17,13 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from prescreen.acquire.rounds import WEAK_MODEL_ROC_AUC, rank
+    from prescreen.acquire.rounds import WEAK_MODEL_ROC_AUC, rank, write_ranking
     from prescreen.campaign import Campaign
 
     with Campaign.open(args.campaign) as campaign:
         table = rank(campaign, progress=not args.no_progress)
         stem = args.out or campaign.path / "ranking"
-    stem.parent.mkdir(parents=True, exist_ok=True)
-    table.to_csv(stem.with_suffix(".csv"))
-    table.to_parquet(stem.with_suffix(".parquet"))
+    write_ranking(table, stem)
     shown = table.head(args.top)
     print(f"{'rank':>4}  {'id':<24} {'formula':<10} {'p':>5} {'spread':>6} {'core-h':>7}  flags")
     for cid, r in shown.iterrows():

@@ -1,7 +1,8 @@
 """prescreen.io: the only code that reads user files (candidates and DFT results).
 
 Import the submodules directly (``prescreen.io.structures``, ``prescreen.io.results``,
-``prescreen.io.ids``, ``prescreen.io.formulas``); this package module stays empty of
+``prescreen.io.ids``, ``prescreen.io.formulas``, and ``prescreen.io.atomic`` for writing
+files whole); this package module stays empty of
 heavy imports so that ``import prescreen.io`` is instant.
 """
 

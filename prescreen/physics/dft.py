@@ -226,7 +226,8 @@ class LabelRecord:
     gap_nosoc_eV, gap_soc_eV
         Band gaps (eV) without and with SOC on the mesh; 0 for metals.
     is_metal
-        True if the calculation with SOC has no gap (or an odd electron count).
+        True if the calculation with SOC has no gap of at least 0.02 eV, or a non-integer
+        electron count (a spin-paired odd count always lands here: Kramers pairs).
     magmom
         Total magnetic moment (Bohr magnetons per cell); 0 when spin-paired.
     settings

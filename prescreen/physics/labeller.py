@@ -37,6 +37,7 @@ from typing import TYPE_CHECKING, Any, Callable, Iterable
 import numpy as np
 
 from prescreen.errors import InputError
+from prescreen.io.atomic import replacing, write_json
 from prescreen.io.ids import validate_id
 from prescreen.process import die_with_parent, folder_lock
 from prescreen.physics.dft import LabelRecord, LabelSettings, label_structure
@@ -79,10 +80,7 @@ Compute = Callable[..., LabelRecord]
 
 def write_settings(out_dir: str | Path, settings: LabelSettings) -> None:
     """Write ``<out_dir>/settings.json`` atomically, as every labeller folder holds it."""
-    spath = Path(out_dir) / SETTINGS_FILE
-    tmp = spath.with_suffix(".tmp")
-    tmp.write_text(json.dumps(settings.as_dict(), indent=1))
-    os.replace(tmp, spath)
+    write_json(Path(out_dir) / SETTINGS_FILE, settings.as_dict(), indent=1)
 
 
 @dataclass(frozen=True)
@@ -174,7 +172,8 @@ class RecordStore:
     """The append-only checkpoint of one output folder (one writer process at a time).
 
     Opening checks that the folder was made with the same ``settings`` (or records
-    them) and removes a line torn by a crash; :meth:`append` writes a record's arrays,
+    them; a file written before a field existed is read with that field's default and
+    completed) and removes a line torn by a crash; :meth:`append` writes a record's arrays,
     then its line, fsync'ed; :meth:`status` gives the newest status of every id.
     """
 
@@ -191,10 +190,18 @@ class RecordStore:
             except json.JSONDecodeError as exc:
                 raise InputError("settings file is not valid JSON", path=spath,
                                  line=exc.lineno, expected="JSON written by prescreen") from exc
-            if have != wanted:
+            try:  # a file from before a field existed reads with that field's default
+                same = LabelSettings.from_dict(have) == settings
+            except (InputError, TypeError, AttributeError) as exc:
+                raise InputError(f"settings file does not hold label settings: {exc}",
+                                 path=spath, value=have,
+                                 expected=f"the settings written by prescreen, {wanted}") from exc
+            if not same:
                 raise InputError(
                     "output folder was labelled with other settings; use a new folder",
                     path=spath, value=have, expected=f"the same settings {wanted}")
+            if have != wanted:
+                write_settings(self.dir, settings)  # complete it with the fields it lacks
         else:
             write_settings(self.dir, settings)
         self._repair_tail()
@@ -215,10 +222,9 @@ class RecordStore:
 
     def append(self, rec: LabelRecord) -> None:
         if rec.ok:
-            target = self.dir / ARRAYS_DIR / f"{rec.id}.npz"
-            tmp = target.with_name(target.stem + ".tmp.npz")
-            np.savez(tmp, gamma=rec.gamma, kpts=rec.kpts)
-            os.replace(tmp, target)
+            with replacing(self.dir / ARRAYS_DIR / f"{rec.id}.npz") as tmp, \
+                    open(tmp, "wb") as fh:  # a file object: savez adds no ".npz" to it
+                np.savez(fh, gamma=rec.gamma, kpts=rec.kpts)
         line = json.dumps(rec.as_dict(arrays=False)) + "\n"
         with open(self.records, "a", encoding="utf-8") as fh:
             fh.write(line)

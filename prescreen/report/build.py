@@ -22,6 +22,7 @@ import numpy as np
 
 from prescreen.errors import CampaignError, InputError
 from prescreen.hazards import SAFETY_NOTE
+from prescreen.io.atomic import write_text
 from prescreen.invariants import INVARIANTS_FILE
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -791,9 +792,7 @@ def build_report(
                    validation=validation, use_open=use_open, progress=progress)
     out = Path(out_path)
     out.parent.mkdir(parents=True, exist_ok=True)
-    tmp = out.with_name(out.name + ".tmp")
-    tmp.write_text(render_html(data), encoding="utf-8")
-    tmp.replace(out)
+    write_text(out, render_html(data))
     return out
 
 
