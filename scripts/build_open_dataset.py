@@ -915,6 +915,16 @@ def _label_records(work: Path) -> list[Any]:
     return list(load_records(label_dir))
 
 
+def _superseded_label_hours(work: Path) -> float:
+    """Core-hours of successful label records that a newer record of the same id replaced."""
+    from prescreen.physics.labeller import record_lines
+
+    lines = record_lines(work / "labels")
+    newest = {d["id"]: i for i, d in enumerate(lines)}
+    return float(sum(d.get("core_hours", 0.0) for i, d in enumerate(lines)
+                     if d.get("status") == "ok" and newest[d["id"]] != i))
+
+
 # --- pack ---------------------------------------------------------------------------
 def _z2_columns(z2: dict[str, dict[str, Any]], label: Any) -> dict[str, Any]:
     """``z2`` (0, 1 or None), ``z2_method`` and ``z2_status`` of one labelled structure."""
@@ -1067,8 +1077,10 @@ def _rate(pos: int, n: int) -> str:
 
 
 def datasheet(pool: "pd.DataFrame", labelled: "pd.DataFrame", relax: "pd.DataFrame",
-              seed: int, versions: dict[str, str]) -> str:
-    """The text of ``data_open/README.md``; every number is computed from the tables."""
+              seed: int, versions: dict[str, str], superseded_h: float = 0.0) -> str:
+    """The text of ``data_open/README.md``; every number is computed from the tables
+    (``superseded_h``: core-hours of labels since replaced by a label of the refined
+    geometry, which the tables no longer hold)."""
     n_pool = len(pool)
     n_keys = pool.groupby(["prototype", "reduced_formula"]).ngroups
     n_lab = len(labelled)
@@ -1117,6 +1129,8 @@ def datasheet(pool: "pd.DataFrame", labelled: "pd.DataFrame", relax: "pd.DataFra
     resid = (f"{relax.loc[relax['status'] == 'ok', 'residual_fmax_eV_per_A'].max():.3f}"
              if status.get("ok") else "n/a")
     refined_text = _refined_text(relax, labelled)
+    superseded_text = (f" (and {superseded_h:.2f} more for labels since replaced by a label "
+                       "of the refined geometry)" if superseded_h > 0 else "")
     return f"""# data_open: generated monolayers with spin-orbit spillage labels
 
 Licence: **{LICENCE}** (Creative Commons Attribution 4.0 International,
@@ -1150,8 +1164,8 @@ numbers by hand (the integrity test checks the file's hash).*
   (positive rate {_rate(n_pos, n_lab)}); {n_pos_gapped} of the positives have a band gap
   with spin-orbit coupling, the others are metals.
 - Z2 of the positives: {z2_text}.
-- Compute: {core_h:.2f} core-hours of labelling and {relax_h:.2f} core-hours of
-  relaxation (wall time of single-core jobs, on a shared machine); median per
+- Compute: {core_h:.2f} core-hours of labelling{superseded_text} and {relax_h:.2f}
+  core-hours of relaxation (wall time of single-core jobs, on a shared machine); median per
   structure: {_median(relax["wall_s"])} s to relax, {_median(labelled["wall_s"])} s to label.
 
 ## How it was made
@@ -1268,7 +1282,8 @@ def pack_stage(out: Path, work: Path, seed: int) -> dict[str, Any]:
     versions = _versions()
     if len(labelled):
         versions.update(json.loads(labelled["versions"].iloc[0]))
-    write_text(out / DATASHEET, datasheet(pool, labelled, relax_df, seed, versions))
+    write_text(out / DATASHEET, datasheet(pool, labelled, relax_df, seed, versions,
+                                          superseded_h=_superseded_label_hours(work)))
     files = [POOL_PARQUET, POOL_XYZ, LABELLED_PARQUET, LABELLED_XYZ, RELAX_PARQUET, DATASHEET]
     manifest = {
         "licence": LICENCE,

@@ -414,6 +414,11 @@ def test_scan_only_relaxations_are_refined_and_relabelled_where_they_moved(tmp_p
     relax_df = driver._relax_table(driver._read_jsonl(log), load_records(work / "labels"))
     assert sorted(relax_df["id"]) == sorted(ids)
     assert set(relax_df["generation"]) == {2}
+    said = driver._refined_text(relax_df, None)
+    assert "2 of them have since been refined" in said  # Mo and W; Cr was made refined
+    assert "for 1 the refinement failed" in said and "wait for it" not in said
+    # the replaced label's compute is still counted
+    assert driver._superseded_label_hours(work) == pytest.approx(1 / 3600)
     # rerun: nothing is refined again
     before = log.read_text()
     driver.pipeline_stage(table, ids, work, tmp_path / "out", 7, workers=1, progress=False)
