@@ -1045,6 +1045,8 @@ def _refined_text(relax: "pd.DataFrame", labelled: "pd.DataFrame") -> str:
     old = int((ok["generation"] < RELAX_GENERATION).sum())
     refined = ok["lattice_scan"].str.contains("from the scan's result", regex=False)
     failed = ok["lattice_scan"].str.contains("(failed:", regex=False)
+    if not old and not refined.any():  # every relaxation made with the refinement
+        return ""
     text = (f"Relaxations before 2026-12-03 took the lattice from the scans alone (a coarse "
             f"scan, then a three-point finer one), biased toward the lattice at which the "
             f"positions were relaxed; {int((refined & ~failed).sum())} of them have since been "
