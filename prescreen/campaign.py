@@ -408,20 +408,15 @@ class Campaign:
             else " (the defaults: no built-in labelling in this campaign yet; the first run of "
                  "prescreen label fixes them)")
 
-    def complete_label_settings(self) -> LabelSettings | None:
-        """Add to ``labels/settings.json`` the fields a later release introduced, with
-        their defaults (the behaviour of the release that wrote it), so the labeller accepts
-        the folder again; returns the fixed settings (None when there are none yet)."""
-        return self._fixed_label_settings(complete=True)
-
-    def _fixed_label_settings(self, *, complete: bool = False) -> LabelSettings | None:
+    def _fixed_label_settings(self) -> LabelSettings | None:
         """The settings in ``labels/settings.json``, or None when there is none yet.
 
         A file written before a field existed reads with that field's default, the
-        behaviour of the release that wrote it; ``complete`` also writes it back.
+        behaviour of the release that wrote it (the labeller's
+        :class:`~prescreen.physics.labeller.RecordStore` writes the completed file back).
         """
         from prescreen.physics.dft import LabelSettings
-        from prescreen.physics.labeller import SETTINGS_FILE, write_settings
+        from prescreen.physics.labeller import SETTINGS_FILE
 
         if not self.label_settings_fixed:
             return None
@@ -442,8 +437,6 @@ class Campaign:
             why = exc.reason if isinstance(exc, InputError) else str(exc)
             raise InputError(f"labeller settings file is damaged: {why}", path=spath,
                              value=getattr(exc, "value", None), expected=expected) from exc
-        if complete and fixed.as_dict() != raw:  # written before some fields existed
-            write_settings(self.labels_dir, fixed)
         return fixed
 
     def _other_settings(self, fixed: LabelSettings, key: str, value: Any) -> InputError:

@@ -42,6 +42,7 @@ def write_search_dump(path: Path, n: int = SEARCH_SIZE, seed: int = SEARCH_SEED)
     from pymatgen.io.ase import AseAtomsAdaptor
 
     from prescreen.acquire.rounds import data_open_dir
+    from prescreen.io.atomic import replacing
     from prescreen.prototypes import structure_from_row
 
     folder = data_open_dir()
@@ -57,7 +58,8 @@ def write_search_dump(path: Path, n: int = SEARCH_SIZE, seed: int = SEARCH_SEED)
         atoms.info["id"] = "fgs-" + row["id"].split("-", 1)[1]
         frames.append(atoms)
     path.parent.mkdir(parents=True, exist_ok=True)
-    write(path, frames, format="extxyz")
+    with replacing(path) as tmp:
+        write(tmp, frames, format="extxyz")
     return len(frames)
 
 

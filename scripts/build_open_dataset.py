@@ -64,7 +64,7 @@ if str(ROOT) not in sys.path:  # run as a plain script from a checkout
 from prescreen.errors import InputError  # noqa: E402
 from prescreen.io.atomic import replacing, write_json, write_text  # noqa: E402
 from prescreen.process import die_with_parent, folder_lock  # noqa: E402
-from prescreen.physics.dft import MAX_SCAN_EXTENSIONS  # noqa: E402
+from prescreen.physics.dft import LATTICE_TOL, MAX_SCAN_EXTENSIONS, REFINE_STEP  # noqa: E402
 from prescreen.physics.parity import SYMPREC_A  # noqa: E402
 from prescreen.prototypes import (  # noqa: E402
     COVALENT_RADII_SOURCE,
@@ -130,6 +130,16 @@ RELAX_SCAN_EXTENSIONS = 5
 RELAX_FMAX = 0.05
 #: Largest number of BFGS steps per position relaxation.
 RELAX_STEPS = 60
+#: Relaxation protocol of new records. Generation 1 (records before 2026-12-03, which
+#: carry no ``generation``) took the lattice from scans with the positions held
+#: fractional, which biases it toward the lattice at which they were relaxed; generation
+#: 2 refines it to zero in-plane stress after the coarse scan (``relax_monolayer``, stage
+#: 3). A build refines generation-1 records first and labels again those that moved.
+RELAX_GENERATION = 2
+#: What the ``lattice_scan`` column says of a generation-2 relaxation.
+REFINEMENT_TEXT = (f"refinement to zero in-plane stress (central differences of "
+                   f"{REFINE_STEP}, stopped within {LATTICE_TOL})")
+
 #: Relaxation attempts per structure (a second one restarts from the first's result,
 #: which re-centres the lattice-constant scan when the first ended at its edge).
 RELAX_ATTEMPTS = 2
@@ -332,32 +342,35 @@ def _relax_one(ident: str, row: dict[str, Any], kpt_density: float, result_path:
     """Child process: relax one structure and write a JSON result file."""
     from pymatgen.io.ase import AseAtomsAdaptor
 
-    from prescreen.physics.dft import REFINE_STEP, LabelSettings, LayerBroke, relax_monolayer
+    from prescreen.physics.dft import LabelSettings, LayerBroke, relax_monolayer
 
     os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
     t0 = time.perf_counter()
     rec: dict[str, Any] = {"id": ident, "attempts": 0, "smearing_eV": RELAX_SMEARING_EV,
                            "lattice_scan": f"coarse from {RELAX_SCALES} (extended by up to "
-                                           f"{RELAX_SCAN_EXTENSIONS} points past an edge) + fine "
-                                           f"(step {REFINE_STEP})",
-                           "pre_relax_kpt_density": RELAX_PRE_KPT_DENSITY}
+                                           f"{RELAX_SCAN_EXTENSIONS} points past an edge) + "
+                                           f"{REFINEMENT_TEXT}",
+                           "pre_relax_kpt_density": RELAX_PRE_KPT_DENSITY,
+                           "generation": RELAX_GENERATION}
     try:
         settings = LabelSettings(kpt_density=kpt_density, smearing_eV=RELAX_SMEARING_EV)
         structure = structure_from_row(row)
         converged, residual = False, math.nan
         broke = ""
+        details: dict[str, Any] = {}
 
         def check(atoms: Any) -> str:
             return check_intact_monolayer(AseAtomsAdaptor.get_structure(atoms))[1]
 
         for attempt in range(1, RELAX_ATTEMPTS + 1):
             rec["attempts"] = attempt
+            details.clear()
             try:
                 structure, residual, converged = relax_monolayer(
                     structure, settings, fmax=RELAX_FMAX, steps=RELAX_STEPS,
                     scales=RELAX_SCALES, max_extensions=RELAX_SCAN_EXTENSIONS,
                     pre_relax_kpt_density=RELAX_PRE_KPT_DENSITY,
-                    check_layer=check)
+                    check_layer=check, details=details)
             except LayerBroke as exc:  # no lattice scan for a layer that is gone
                 structure, broke = exc.structure, f"after the pre-relaxation: {exc.reason}"
                 break
@@ -367,13 +380,13 @@ def _relax_one(ident: str, row: dict[str, Any], kpt_density: float, result_path:
         why = broke or why
         intact = intact and not broke
         rec.update(residual_fmax_eV_per_A=float(residual), converged=bool(converged),
-                   **structure_columns(structure))
+                   **structure_columns(structure), **_lattice_fields(details))
         if not intact:
             rec.update(status="fell_apart", reason=why)
         elif not converged:
             rec.update(status="not_converged",
-                       reason=f"residual force {residual:.3f} eV/A or lattice scan at its edge "
-                              f"after {RELAX_ATTEMPTS} attempts")
+                       reason=f"residual force {residual:.3f} eV/A, or the lattice not at zero "
+                              f"stress, after {RELAX_ATTEMPTS} attempts")
         else:
             rec.update(status="ok", reason="")
     except Exception as exc:  # recorded, not raised: one failure must not stop the run
@@ -381,6 +394,78 @@ def _relax_one(ident: str, row: dict[str, Any], kpt_density: float, result_path:
                    traceback=traceback.format_exc(limit=3))
     rec["wall_s"] = round(time.perf_counter() - t0, 2)
     write_json(result_path, rec)
+
+
+def _lattice_fields(details: dict[str, Any]) -> dict[str, Any]:
+    """The refinement's figures for a relaxation record (empty before stage 3 ran)."""
+    if "lattice_residual" not in details:
+        return {}
+    return {"lattice_residual": round(float(details["lattice_residual"]), 6),
+            "lattice_cycles": int(details["lattice_cycles"]),
+            "lattice_energies": int(details["lattice_energies"]),
+            "lattice_strain": [round(float(u), 6) for u in details["lattice_strain"]]}
+
+
+def _newest(records: Iterable[dict[str, Any]]) -> dict[str, dict[str, Any]]:
+    """The newest record of each id, in the order the ids first appeared."""
+    newest: dict[str, dict[str, Any]] = {}
+    for r in records:
+        newest[r["id"]] = r
+    return newest
+
+
+def _needs_refinement(rec: dict[str, Any]) -> bool:
+    """A successful relaxation of generation 1: its lattice came from scans alone."""
+    return rec.get("status") == "ok" and int(rec.get("generation", 1)) < RELAX_GENERATION
+
+
+def _refine_one(ident: str, payload: dict[str, Any], kpt_density: float,
+                result_path: str) -> None:
+    """Child process: refine a generation-1 relaxation to zero in-plane stress and, when
+    its lattice moved, label it again. Writes ``{"relax": ..., "label": ...}``: the new
+    relaxation record (the old one's fields, updated) and the new label record (None when
+    the lattice did not move, so the old label and geometry stand)."""
+    from prescreen.physics.dft import LabelRecord, LabelSettings, label_structure, relax_monolayer
+
+    os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+    t0 = time.perf_counter()
+    rec = {k: v for k, v in payload.items() if k != "formula"}
+    rec.update(generation=RELAX_GENERATION, scan_wall_s=payload.get("wall_s"),
+               lattice_scan=f"{payload.get('lattice_scan', 'coarse only')} + {REFINEMENT_TEXT} "
+                            "from the scan's result")
+    label = None
+    try:
+        settings = LabelSettings(kpt_density=kpt_density, smearing_eV=RELAX_SMEARING_EV)
+        details: dict[str, Any] = {}
+        structure, residual, converged = relax_monolayer(
+            structure_from_row(payload), settings, fmax=RELAX_FMAX, steps=RELAX_STEPS,
+            refine_only=True, details=details)
+        rec.update(_lattice_fields(details), refine_wall_s=round(time.perf_counter() - t0, 2))
+        if any(details["lattice_strain"]):  # moved: the new geometry, labelled again
+            intact, why = check_intact_monolayer(structure)
+            rec.update(residual_fmax_eV_per_A=float(residual), converged=bool(converged),
+                       smearing_eV=RELAX_SMEARING_EV, **structure_columns(structure))
+            if not intact:
+                rec.update(status="fell_apart", reason=f"during the refinement: {why}")
+            elif not converged:
+                rec.update(status="not_converged",
+                           reason=f"residual force {residual:.3f} eV/A, or the lattice not at "
+                                  "zero stress, after the refinement")
+            else:
+                t1 = time.perf_counter()
+                try:
+                    label = label_structure(structure, LabelSettings(), id=ident).as_dict()
+                except Exception as exc:  # recorded, not raised
+                    label = LabelRecord.failed(ident, str(payload.get("formula", "?")),
+                                               LabelSettings(), f"{type(exc).__name__}: {exc}",
+                                               time.perf_counter() - t1).as_dict()
+        # else: within the tolerance already; the labelled geometry stands
+    except Exception as exc:  # the scan's result stands; said in the record, not retried
+        rec["lattice_scan"] += f" (failed: {type(exc).__name__}: {exc})"
+        rec["refine_failed"] = True
+        rec["refine_wall_s"] = round(time.perf_counter() - t0, 2)
+    rec["wall_s"] = round(float(payload.get("wall_s") or 0.0) + rec["refine_wall_s"], 2)
+    write_json(result_path, {"relax": rec, "label": label})
 
 
 class _Job(NamedTuple):
@@ -487,7 +572,7 @@ def _z2_rerun(rec: dict[str, Any]) -> bool:
 def _z2_done(z2_log: Path) -> set[str]:
     """IDs whose Z2 job needs no rerun."""
     newest = {r["id"]: r for r in _read_jsonl(z2_log)}
-    return {i for i, r in newest.items() if not _z2_rerun(r)}
+    return {i for i, r in newest.items() if not _z2_rerun(r) and r.get("status") != "stale"}
 
 
 def _z2_candidate(relax_rec: dict[str, Any], label: Any) -> dict[str, Any] | None:
@@ -519,6 +604,8 @@ def _start(kind: str, ident: str, payload: dict[str, Any], tmpdir: Path,
     result.unlink(missing_ok=True)
     if kind == "relax":
         target, args = _relax_one, (ident, payload, kpt_density, str(result))
+    elif kind == "refine":
+        target, args = _refine_one, (ident, payload, kpt_density, str(result))
     elif kind == "z2":
         target, args = _z2_one, (ident, payload, str(result))
     else:
@@ -646,7 +733,7 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
     new_labels = changed = 0
     label_queue: list[dict[str, Any]] = []
     z2_queue: list[dict[str, Any]] = []
-    relax_by_id = {r["id"]: r for r in _read_jsonl(log) if r.get("status") == "ok"}
+    relax_by_id = {i: r for i, r in _newest(_read_jsonl(log)).items() if r.get("status") == "ok"}
 
     def consider_z2(done: Any) -> None:
         """Queue a Z2 job for a new label, or record why it gets none."""
@@ -668,8 +755,11 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
                 label_queue.append(rec)
                 bar.total += 1
             return f"relax {rec.get('status')}"
+        if kind == "refine":
+            return record_refinement(ident, rec)
         if kind == "z2":
             _append_jsonl(z2_log, rec)
+            z2_ever.add(ident)
             return {"ok": f"Z2 {rec.get('z2')}", "no_direct_gap": "Z2 undefined (no direct gap)"
                     }.get(rec.get("status"), "Z2 failed")
         if "settings" not in rec:  # the child left no record: timeout or crash
@@ -683,22 +773,57 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
             pack_stage(out, work, seed)
         return f"spillage {done.spillage:.3f}" if done.ok else "label failed"
 
+    def record_refinement(ident: str, result: dict[str, Any]) -> str:
+        """A refined generation-1 relaxation: its new label first (a crash before the
+        relaxation record is written then only repeats the job), then the record."""
+        old = relax_by_id.get(ident)
+        if "relax" not in result:  # the child left no result: the scan's lattice stands
+            rec = {**(old or {"id": ident}), "generation": RELAX_GENERATION,
+                   "refine_failed": True,
+                   "lattice_scan": f"{(old or {}).get('lattice_scan', 'coarse only')} + "
+                                   f"{REFINEMENT_TEXT} from the scan's result (failed: "
+                                   f"{result.get('reason', 'no result')})"}
+            _append_jsonl(log, rec)
+            return "refinement failed"
+        rec, new_label = result["relax"], result.get("label")
+        if rec.get("status") == "ok":
+            relax_by_id[ident] = rec
+        else:
+            relax_by_id.pop(ident, None)
+        if new_label is not None:
+            done = LabelRecord.from_dict(new_label)
+            store.append(done)
+            if ident in z2_ever:  # its invariant belongs to the old geometry
+                _append_jsonl(z2_log, {"id": ident, "status": "stale",
+                                       "reason": "the structure was refined and relabelled"})
+            if rec.get("status") == "ok":
+                consider_z2(done)
+        _append_jsonl(log, rec)
+        strain = 100 * max((abs(u) for u in rec.get("lattice_strain", [0.0])), default=0.0)
+        return (f"refined ({strain:.2f} %), " + (f"spillage {done.spillage:.3f}"
+                if new_label is not None and done.ok else
+                "label failed" if new_label is not None else "label kept")
+                if rec.get("status") == "ok" else f"refined: {rec.get('status')}")
+
     bar = tqdm(total=0, desc="relax + label" if label else "relaxing", unit="job",
                disable=not progress)
     # results that children wrote before the last run stopped
-    relaxed = {r["id"] for r in _read_jsonl(log)}
+    newest_relax = _newest(_read_jsonl(log))
+    relaxed = set(newest_relax)
     labelled = store.status() if store is not None else {}
     with_z2 = _z2_done(z2_log)
+    z2_ever = {r["id"] for r in _read_jsonl(z2_log)}
     for path in sorted(tmpdir.glob("*.json")):
         kind, _, ident = path.stem.partition("-")
         try:
             rec = json.loads(path.read_text(encoding="utf-8"))
         except (OSError, json.JSONDecodeError):
             rec = None
-        if kind in ("label", "z2") and store is None:
+        if kind in ("label", "z2", "refine") and store is None:
             continue  # a relax-only run leaves them for a run that labels
         if rec is not None and (
                 (kind == "relax" and ident not in relaxed)
+                or (kind == "refine" and _needs_refinement(newest_relax.get(ident, {})))
                 or (kind == "label" and ident not in labelled)
                 or (kind == "z2" and ident not in with_z2)):
             record(kind, ident, rec)
@@ -716,11 +841,18 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
                 consider_z2(done)
     done_ids = {r["id"] for r in relax}
     relax_queue = [i for i in ids if i not in done_ids]
-    bar.total = len(label_queue) + len(z2_queue) + len(relax_queue)
+    # generation-1 relaxations, in the order they were made (a relax-only run leaves them)
+    # (not those still waiting for a label or a Z2 job, whose result would belong to the
+    # old geometry: the next run refines them)
+    waiting = {r["id"] for r in label_queue} | {r["id"] for r in z2_queue}
+    refine_queue = [r for r in _newest(relax).values()
+                    if label and _needs_refinement(r) and r["id"] not in waiting]
+    bar.total = len(label_queue) + len(z2_queue) + len(refine_queue) + len(relax_queue)
     running: list[_Job] = []
     try:
-        while label_queue or z2_queue or relax_queue or running:
-            while len(running) < max(1, workers) and (label_queue or z2_queue or relax_queue):
+        while label_queue or z2_queue or refine_queue or relax_queue or running:
+            while len(running) < max(1, workers) and (label_queue or z2_queue or refine_queue
+                                                       or relax_queue):
                 if label_queue:
                     rec = label_queue.pop(0)
                     payload = {k: rec[k] for k in ("lattice", "species", "frac_coords")}
@@ -730,13 +862,18 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
                     rec = z2_queue.pop(0)
                     payload = {k: rec[k] for k in ("lattice", "species", "frac_coords")}
                     running.append(_start("z2", rec["id"], payload, tmpdir, kpt_density))
+                elif refine_queue:
+                    rec = refine_queue.pop(0)
+                    payload = {**rec, "formula": str(rows.loc[rec["id"], "reduced_formula"])}
+                    running.append(_start("refine", rec["id"], payload, tmpdir, kpt_density))
                 else:
                     ident = relax_queue.pop(0)
                     running.append(_start("relax", ident, _relax_payload(rows, ident), tmpdir,
                                           kpt_density))
             time.sleep(0.2)
             for job in list(running):
-                limit = {"relax": relax_timeout_s, "label": label_timeout_s,
+                limit = {"relax": relax_timeout_s, "refine": relax_timeout_s,
+                         "label": label_timeout_s,
                          "z2": Z2_TIMEOUT_FACTOR * label_timeout_s}[job.kind]
                 rec = _finished(job, limit)
                 if rec is None:
@@ -778,12 +915,24 @@ def _label_records(work: Path) -> list[Any]:
     return list(load_records(label_dir))
 
 
+def _superseded_label_hours(work: Path) -> float:
+    """Core-hours of successful label records that a newer record of the same id replaced."""
+    from prescreen.physics.labeller import record_lines
+
+    lines = record_lines(work / "labels")
+    newest = {d["id"]: i for i, d in enumerate(lines)}
+    return float(sum(d.get("core_hours", 0.0) for i, d in enumerate(lines)
+                     if d.get("status") == "ok" and newest[d["id"]] != i))
+
+
 # --- pack ---------------------------------------------------------------------------
 def _z2_columns(z2: dict[str, dict[str, Any]], label: Any) -> dict[str, Any]:
     """``z2`` (0, 1 or None), ``z2_method`` and ``z2_status`` of one labelled structure."""
     from prescreen.physics.dft import METAL_GAP_EV
 
     rec = z2.get(label.id)
+    if rec is not None and rec.get("status") == "stale":  # computed for an earlier geometry
+        rec = None
     if rec is None:
         if label.spillage < POSITIVE_THRESHOLD:
             why = "not computed (not a positive)"
@@ -824,8 +973,8 @@ def _labelled_table(pool: "pd.DataFrame", relax: Sequence[dict[str, Any]],
 
     z2 = z2 or {}
     meta = pool.set_index("id")
-    # the newest successful relaxation of each id (a later failed retry does not count)
-    relax_by_id = {r["id"]: r for r in relax if r.get("status") == "ok"}
+    # the newest relaxation of each id (a refinement supersedes the scan's result)
+    relax_by_id = {i: r for i, r in _newest(relax).items() if r.get("status") == "ok"}
     rows = []
     for rec in records:
         if not rec.ok or rec.id not in relax_by_id:
@@ -877,11 +1026,36 @@ def _relax_table(relax: Sequence[dict[str, Any]], records: Sequence[Any]) -> "pd
              "lattice_scan": str(r.get("lattice_scan", "coarse only")),
              # relaxations recorded before the coarse pre-relaxation used the scan's mesh
              "pre_relax_kpt_density": float(r.get("pre_relax_kpt_density", RELAX_KPT_DENSITY)),
+             "generation": int(r.get("generation", 1)),
+             "lattice_residual": float(r.get("lattice_residual", math.nan)),
+             "lattice_cycles": int(r.get("lattice_cycles", 0)),
              "label_status": label_status.get(r["id"], "not labelled")}
-            for r in relax]
+            for r in _newest(relax).values()]
     cols = ["id", "status", "reason", "converged", "residual_fmax_eV_per_A", "attempts",
-            "wall_s", "smearing_eV", "lattice_scan", "pre_relax_kpt_density", "label_status"]
+            "wall_s", "smearing_eV", "lattice_scan", "pre_relax_kpt_density", "generation",
+            "lattice_residual", "lattice_cycles", "label_status"]
     return pd.DataFrame(rows, columns=cols).sort_values("id").reset_index(drop=True)
+
+
+def _refined_text(relax: "pd.DataFrame", labelled: "pd.DataFrame") -> str:
+    """What the datasheet says of the lattice protocols of the kept relaxations."""
+    if not len(relax) or "generation" not in relax:
+        return ""
+    ok = relax[relax["status"] == "ok"]
+    old = int((ok["generation"] < RELAX_GENERATION).sum())
+    refined = ok["lattice_scan"].str.contains("from the scan's result", regex=False)
+    failed = ok["lattice_scan"].str.contains("(failed:", regex=False)
+    if not old and not refined.any():  # every relaxation made with the refinement
+        return ""
+    text = (f"Relaxations before 2026-12-03 took the lattice from the scans alone (a coarse "
+            f"scan, then a three-point finer one), biased toward the lattice at which the "
+            f"positions were relaxed; {int((refined & ~failed).sum())} of them have since been "
+            f"refined from their result, and labelled again where the lattice moved")
+    if failed.any():
+        text += f"; for {int(failed.sum())} the refinement failed and the scan's lattice stands"
+    if old:
+        text += f"; {old} still wait for it (generation 1)"
+    return text + "."
 
 
 def _md_table(header: Sequence[str], rows: Iterable[Sequence[Any]]) -> str:
@@ -905,8 +1079,10 @@ def _rate(pos: int, n: int) -> str:
 
 
 def datasheet(pool: "pd.DataFrame", labelled: "pd.DataFrame", relax: "pd.DataFrame",
-              seed: int, versions: dict[str, str]) -> str:
-    """The text of ``data_open/README.md``; every number is computed from the tables."""
+              seed: int, versions: dict[str, str], superseded_h: float = 0.0) -> str:
+    """The text of ``data_open/README.md``; every number is computed from the tables
+    (``superseded_h``: core-hours of labels since replaced by a label of the refined
+    geometry, which the tables no longer hold)."""
     n_pool = len(pool)
     n_keys = pool.groupby(["prototype", "reduced_formula"]).ngroups
     n_lab = len(labelled)
@@ -954,6 +1130,9 @@ def datasheet(pool: "pd.DataFrame", labelled: "pd.DataFrame", relax: "pd.DataFra
     status_text = ", ".join(f"{k}: {v}" for k, v in sorted(status.items())) or "none yet"
     resid = (f"{relax.loc[relax['status'] == 'ok', 'residual_fmax_eV_per_A'].max():.3f}"
              if status.get("ok") else "n/a")
+    refined_text = _refined_text(relax, labelled)
+    superseded_text = (f" (and {superseded_h:.2f} more for labels since replaced by a label "
+                       "of the refined geometry)" if superseded_h > 0 else "")
     return f"""# data_open: generated monolayers with spin-orbit spillage labels
 
 Licence: **{LICENCE}** (Creative Commons Attribution 4.0 International,
@@ -987,8 +1166,8 @@ numbers by hand (the integrity test checks the file's hash).*
   (positive rate {_rate(n_pos, n_lab)}); {n_pos_gapped} of the positives have a band gap
   with spin-orbit coupling, the others are metals.
 - Z2 of the positives: {z2_text}.
-- Compute: {core_h:.2f} core-hours of labelling and {relax_h:.2f} core-hours of
-  relaxation (wall time of single-core jobs, on a shared machine); median per
+- Compute: {core_h:.2f} core-hours of labelling{superseded_text} and {relax_h:.2f}
+  core-hours of relaxation (wall time of single-core jobs, on a shared machine); median per
   structure: {_median(relax["wall_s"])} s to relax, {_median(labelled["wall_s"])} s to label.
 
 ## How it was made
@@ -1014,14 +1193,17 @@ python scripts/build_open_dataset.py --seed {seed} --workers 2    # or: make dat
    loose pre-relaxation of later relaxations; column `pre_relax_kpt_density`), Fermi-Dirac width
    {RELAX_SMEARING_EV} eV (the first relaxations used 0.01 eV; the width of each is in
    `{RELAX_PARQUET}`, column `smearing_eV`); positions by BFGS to
-   {RELAX_FMAX} eV/A (at most {RELAX_STEPS} steps), in-plane lattice by an isotropic
-   energy scan from scales {RELAX_SCALES} (extended in steps of 0.05 by up to
-   {RELAX_SCAN_EXTENSIONS} more points while the lowest energy lies at an edge) and a finer
-   scan around its minimum, each with a parabola fit (earlier relaxations started from
-   (0.9, 0.95, 1.0, 1.05, 1.1) with up to {MAX_SCAN_EXTENSIONS} extensions, and the first
-   ones used the coarse scan only, or no extension; column `lattice_scan`; the in-plane
-   cell shape
-   is not optimised); up to {RELAX_ATTEMPTS} attempts. Structures that do not converge,
+   {RELAX_FMAX} eV/A (at most {RELAX_STEPS} steps); in-plane lattice first by an isotropic
+   energy scan from scales {RELAX_SCALES} with the positions held fractional (extended in
+   steps of 0.05 by up to {RELAX_SCAN_EXTENSIONS} more points while the lowest energy lies
+   at an edge; parabola fit), then, with the positions relaxed there, refined to zero
+   in-plane stress: GPAW's LCAO mode has no stress tensor, so the stress comes from central
+   differences of the energy (strain {REFINE_STEP}) at relaxed positions, and quasi-Newton
+   steps with a position relaxation after each stop when the estimated distance from zero
+   stress is below {LATTICE_TOL} (columns `generation` = {RELAX_GENERATION},
+   `lattice_residual`, `lattice_cycles`). Cells with unequal in-plane lengths refine
+   `a` and `b` separately, so their aspect ratio relaxes too; the angle between them
+   is kept. {refined_text} Up to {RELAX_ATTEMPTS} attempts. Structures that do not converge,
    or that are no longer one bonded, 2-periodic sheet with at least 8 A of vacuum
    (covalent radii x 1.25 bond test), are recorded in `{RELAX_PARQUET}` and left out;
    since 2026-12-02 the test also runs after the pre-relaxation, and a layer that fails
@@ -1066,8 +1248,9 @@ Versions: {ver}.
   appear or vanish with a better functional or basis.
 - Spin-paired calculations: magnetic ground states are not sought; labels of magnetic
   compounds describe the non-magnetic state.
-- The relaxation keeps the starting cell shape and optimises the in-plane lattice
-  isotropically; distorted phases (1T') keep their starting distortion pattern.
+- The relaxation keeps the angle between the in-plane lattice vectors, and hexagonal and
+  square cells stay so; distorted phases (1T') keep their starting distortion pattern.
+  Relaxations of generation 1 (column `generation`) have lattices from scans alone.
 - A high spillage is a strong hint of a band inversion, not a proof of a topological
   phase; confirm with an invariant.
 - The labelled subset is stratified over prototypes and elements but biased towards
@@ -1101,7 +1284,8 @@ def pack_stage(out: Path, work: Path, seed: int) -> dict[str, Any]:
     versions = _versions()
     if len(labelled):
         versions.update(json.loads(labelled["versions"].iloc[0]))
-    write_text(out / DATASHEET, datasheet(pool, labelled, relax_df, seed, versions))
+    write_text(out / DATASHEET, datasheet(pool, labelled, relax_df, seed, versions,
+                                          superseded_h=_superseded_label_hours(work)))
     files = [POOL_PARQUET, POOL_XYZ, LABELLED_PARQUET, LABELLED_XYZ, RELAX_PARQUET, DATASHEET]
     manifest = {
         "licence": LICENCE,

@@ -129,6 +129,8 @@ def test_summary_baseline_columns_and_plot(data, tmp_path):
     out = tmp_path / "curves.png"
     fig = plot_discovery(curves, y, cost, path=out)
     assert out.stat().st_size > 10_000
+    assert out.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (ISO/IEC 15948)
+    assert not list(tmp_path.glob("*.tmp"))  # written whole, then renamed
     assert "core-hours" in fig.axes[1].get_xlabel().lower()
     plt.close(fig)
 

@@ -239,7 +239,7 @@ def test_stratified_order_small_cells_first_and_prototypes_take_turns(pool):
 
 
 def _fake_relax(structure, settings, *, fmax, steps, scales, max_extensions=3,
-                pre_relax_kpt_density=None, check_layer=None):
+                pre_relax_kpt_density=None, check_layer=None, details=None):
     """Stand-in for relax_monolayer: behaviour chosen by the first element."""
     import time as _time
 
@@ -343,6 +343,86 @@ def test_pipeline_labels_each_relaxed_structure_once_and_resumes(tmp_path, monke
                                  progress=False) == 2
     assert len(load_records(work / "labels")) == 5
     assert len(driver._read_jsonl(work / "relax.jsonl")) == 5
+
+
+def _fake_refine(structure, settings, *, fmax, steps, refine_only=False, details=None,
+                 **kwargs):
+    """Stand-in for relax_monolayer(refine_only=True): Mo layers move by +2 % in a, W layers
+    are already at zero stress, Nb layers fail."""
+    assert refine_only
+    symbol = structure[0].specie.symbol
+    if symbol == "Nb":
+        raise RuntimeError("SCF did not converge")
+    strain = 0.02 if symbol == "Mo" else 0.0
+    details.update(lattice_strain=[strain], lattice_residual=0.001, lattice_cycles=2,
+                   lattice_energies=4, lattice_converged=True)
+    from pymatgen.core import Lattice, Structure
+
+    matrix = structure.lattice.matrix.copy()
+    matrix[:2] *= 1 + strain  # in-plane, positions fractional
+    return Structure(Lattice(matrix), structure.species, structure.frac_coords), 0.02, True
+
+
+def test_scan_only_relaxations_are_refined_and_relabelled_where_they_moved(tmp_path,
+                                                                           monkeypatch):
+    import prescreen.physics.dft as dft
+    from prescreen.physics.labeller import RECORDS_FILE, load_records
+    from prescreen.prototypes import generate_pool, pool_table
+
+    driver = _driver()
+    monkeypatch.setattr(dft, "relax_monolayer", lambda s, *a, **k: (s, 0.01, True))
+    monkeypatch.setattr(dft, "label_structure", _fake_label)
+    monkeypatch.setattr(driver, "pack_stage", lambda out, work, seed: None)
+    table = pool_table(generate_pool(prototypes=["MX2-2H"], match_structures=False, progress=False))
+    pick = {json.loads(d)["M"]: i for d, i in zip(table["decoration"], table["id"])
+            if json.loads(d)["X"] == "S"}
+    ids = [pick[m] for m in ("Mo", "W", "Nb", "Cr")]
+    work = tmp_path / "work"
+    driver.pipeline_stage(table, ids, work, tmp_path / "out", 7, workers=2, progress=False)
+    # make them scan-only relaxations, as recorded before 2026-12-03 (no generation); Cr's
+    # stays generation 2; Mo has a Z2 record from its old geometry
+    log = work / "relax.jsonl"
+    old = driver._read_jsonl(log)
+    log.write_text("".join(json.dumps({k: v for k, v in r.items() if k != "generation"}
+                                      | {"wall_s": 100.0}) + "\n"
+                           for r in old if r["id"] != pick["Cr"])
+                   + "".join(json.dumps(r) + "\n" for r in old if r["id"] == pick["Cr"]))
+    driver._append_jsonl(work / driver.Z2_LOG, {"id": pick["Mo"], "status": "ok", "z2": 1})
+    labels_before = (work / "labels" / RECORDS_FILE).read_text().count("\n")
+
+    monkeypatch.setattr(dft, "relax_monolayer", _fake_refine)
+    assert driver.pipeline_stage(table, ids, work, tmp_path / "out", 7, workers=2,
+                                 progress=False) == 0  # relabels are not new labels
+    newest = driver._newest(driver._read_jsonl(log))
+    assert {i: r["generation"] for i, r in newest.items()} == {i: 2 for i in ids}
+    mo, w, nb = newest[pick["Mo"]], newest[pick["W"]], newest[pick["Nb"]]
+    first = {r["id"]: r for r in old}
+    assert mo["a_A"] == pytest.approx(first[pick["Mo"]]["a_A"] * 1.02)
+    assert mo["lattice_strain"] == [0.02] and "from the scan's result" in mo["lattice_scan"]
+    assert mo["scan_wall_s"] == 100.0
+    assert mo["wall_s"] == pytest.approx(100.0 + mo["refine_wall_s"], abs=0.01)
+    assert w["lattice"] == first[pick["W"]]["lattice"]  # not moved: the labelled geometry
+    assert nb["status"] == "ok" and nb["refine_failed"]
+    assert "(failed: RuntimeError: SCF did not converge)" in nb["lattice_scan"]
+    lines = [json.loads(x) for x in (work / "labels" / RECORDS_FILE).read_text().splitlines()]
+    assert len(lines) == labels_before + 1 and lines[-1]["id"] == pick["Mo"]  # Mo only
+    z2 = driver._newest(driver._read_jsonl(work / driver.Z2_LOG))
+    assert z2[pick["Mo"]]["status"] == "stale"  # belonged to the old geometry
+    label = next(r for r in load_records(work / "labels") if r.id == pick["Mo"])
+    assert driver._z2_columns(z2, label)["z2"] is None
+    # the tables keep one row per structure, the newest
+    relax_df = driver._relax_table(driver._read_jsonl(log), load_records(work / "labels"))
+    assert sorted(relax_df["id"]) == sorted(ids)
+    assert set(relax_df["generation"]) == {2}
+    said = driver._refined_text(relax_df, None)
+    assert "2 of them have since been refined" in said  # Mo and W; Cr was made refined
+    assert "for 1 the refinement failed" in said and "wait for it" not in said
+    # the replaced label's compute is still counted
+    assert driver._superseded_label_hours(work) == pytest.approx(1 / 3600)
+    # rerun: nothing is refined again
+    before = log.read_text()
+    driver.pipeline_stage(table, ids, work, tmp_path / "out", 7, workers=1, progress=False)
+    assert log.read_text() == before
 
 
 def test_an_append_after_a_torn_line_keeps_every_record(tmp_path):

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import numpy as np
 import pytest
 from ase.build import mx2
@@ -47,7 +49,10 @@ def test_a_layer_that_breaks_in_the_pre_relaxation_skips_the_lattice_scan(monkey
     assert len(made) == 1 and made[0].endswith("relax-start.txt")  # no scan, no final step
     made.clear()
     relaxed, _, _ = dft.relax_monolayer(layer, check_layer=lambda atoms: "", steps=2)
-    assert any("scale" in name for name in made) and made[-1].endswith("relax-final.txt")
+    stages = [Path(name).stem.removeprefix("relax-") for name in made]
+    final = stages.index("final")  # the scan, positions relaxed there, then the refinement
+    assert stages[0] == "start" and all(s.startswith("scale") for s in stages[1:final])
+    assert stages[final + 1:] and all(s.startswith("lattice") for s in stages[final + 1:])
 
 
 @pytest.mark.parametrize("axis", [0, 1])

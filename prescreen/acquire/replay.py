@@ -417,5 +417,11 @@ def plot_discovery(curves: pd.DataFrame, y, cost, *, path=None, title: str | Non
         fig.suptitle(title)
     fig.tight_layout(rect=(0, 0.06 + 0.025 * math.ceil(len(labels) / 3), 1, 1))
     if path is not None:
-        fig.savefig(path, dpi=150)
+        from pathlib import Path
+
+        from prescreen.io.atomic import replacing
+
+        fmt = Path(path).suffix.lstrip(".") or "png"
+        with replacing(path) as tmp:  # written whole: never a half-drawn figure
+            fig.savefig(tmp, dpi=150, format=fmt)
     return fig

@@ -967,7 +967,6 @@ def label_pending(
                              expected="a candidate read from a structure file")
         jobs.append((cid, structure))
     out_dir = campaign.labels_dir
-    campaign.complete_label_settings()  # a file from an older release: as the labeller writes it
     kwargs = {"compute": compute} if compute is not None else {}
     summary = run_labelling(jobs, out_dir, settings=settings, workers=workers,
                             timeout_s=timeout_s, progress=progress, retry_failed=retry_failed,

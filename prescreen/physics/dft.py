@@ -715,8 +715,9 @@ def label_structure(structure: "Structure | Atoms",
                        direct_gap_soc_eV=direct_soc)
 
 
-#: Relative step of the fine lattice scan around the coarse minimum (dimensionless;
-#: 1.5 % keeps the parabola within the harmonic region; common practice, chosen here).
+#: Relative strain of the central differences that refine the lattice after the coarse
+#: scan (dimensionless; 1.5 % keeps them within the harmonic region while the energy
+#: differences stay well above the SCF tolerance; common practice, chosen here).
 REFINE_STEP: float = 0.015
 
 
@@ -767,6 +768,157 @@ def _bracketed_scan(scales: tuple[float, ...], energy: Any,
     return xs, np.array([points[x] for x in xs])
 
 
+#: Largest estimated distance (relative, log-strain) of a refined in-plane lattice from
+#: the zero-stress lattice at which :func:`refine_lattice` stops: 0.3 %, about 0.01 A on
+#: a 3-4 A lattice (common practice for converged DFT lattice constants, chosen here).
+LATTICE_TOL: float = 0.003
+
+#: Most quasi-Newton cycles of :func:`refine_lattice` (each: two energies per strain mode
+#: and a position relaxation); chosen here.
+LATTICE_CYCLES: int = 6
+
+#: Largest strain step (relative) of one cycle of :func:`refine_lattice`; chosen here.
+LATTICE_MAX_STEP: float = 0.05
+
+#: Until a cycle has measured the relaxed-ion curvature, :func:`refine_lattice` takes the
+#: clamped-ion step times this factor as its distance from the zero-stress lattice: the
+#: relaxed-ion curvature is assumed to be at least half the clamped-ion one (chosen here;
+#: on the buckled EMT layers of tests/test_lattice.py the ratio is 0.63-0.93).
+CLAMPED_STIFFNESS_FACTOR: float = 2.0
+
+
+def strain_modes(cell: np.ndarray) -> list[tuple[float, float]]:
+    """In-plane strain modes of a prepared monolayer's cell, as factors on (a1, a2).
+
+    Equal in-plane lengths (hexagonal, square or rhombic cells, whose symmetry keeps the
+    lengths equal) get one isotropic mode, ``[(1, 1)]``; unequal lengths get ``a1`` and
+    ``a2`` separately, ``[(1, 0), (0, 1)]``, so a rectangular or oblique cell relaxes its
+    aspect ratio too. The angle between ``a1`` and ``a2`` is kept.
+    """
+    l1, l2 = np.linalg.norm(np.asarray(cell, dtype=float)[:2], axis=1)
+    if abs(l1 - l2) <= HEX_LENGTH_RTOL * max(l1, l2):
+        return [(1.0, 1.0)]
+    return [(1.0, 0.0), (0.0, 1.0)]
+
+
+def _strained(atoms: "Atoms", mode_strain: np.ndarray,
+              modes: list[tuple[float, float]]) -> "Atoms":
+    """A copy of ``atoms`` with a1, a2 scaled by exp(sum of mode strains), positions
+    held fractional."""
+    log_scale = np.zeros(2)
+    for u, m in zip(mode_strain, modes):
+        log_scale += u * np.asarray(m)
+    trial = atoms.copy()
+    cell = np.array(trial.cell)
+    cell[0] *= math.exp(log_scale[0])
+    cell[1] *= math.exp(log_scale[1])
+    trial.set_cell(cell, scale_atoms=True)
+    return trial
+
+
+@dataclass
+class LatticeRefinement:
+    """What :func:`refine_lattice` did: ``strain`` is the total log-strain per mode from
+    the input lattice, ``residual`` the last estimated distance (relative) from the
+    zero-stress lattice, ``energies`` the number of clamped-ion energies it computed."""
+
+    modes: list[tuple[float, float]]
+    strain: np.ndarray
+    residual: float
+    cycles: int
+    energies: int
+    converged: bool
+    relaxed: bool
+
+
+def refine_lattice(atoms: "Atoms", attach: Any, relax: Any, *,
+                   step: float = REFINE_STEP, tol: float = LATTICE_TOL,
+                   max_cycles: int = LATTICE_CYCLES,
+                   max_step: float = LATTICE_MAX_STEP) -> LatticeRefinement:
+    """Move the in-plane lattice of ``atoms`` to zero in-plane stress, using energies only.
+
+    GPAW's LCAO mode has no stress tensor. At a geometry whose positions are relaxed,
+    the derivative of the relaxed-ion energy with respect to a strain equals that of the
+    clamped-ion energy (the forces vanish), so a central difference of two energies with
+    positions held fractional (strain +-``step``) gives the exact stress there. Each cycle
+    takes a quasi-Newton step on the relaxed-ion energy surface: the Hessian starts from
+    the clamped-ion curvature of the same three points (stiffer than the relaxed-ion
+    one, so the first step falls short, never past) and is updated by BFGS from the
+    change in stress between cycles; the positions are then relaxed at the new lattice.
+    It stops when the predicted step is below ``tol``. A lattice scan with positions
+    held fixed, by contrast, returns a minimum biased toward the lattice at which those
+    positions were relaxed.
+
+    Parameters
+    ----------
+    atoms
+        A prepared monolayer (:func:`prepare_monolayer`) whose positions are relaxed at
+        its lattice; changed in place (cell and positions).
+    attach
+        ``attach(atoms, tag)`` gives ``atoms`` a calculator (``tag`` names its log).
+    relax
+        ``relax(atoms, tag) -> bool`` attaches a calculator, relaxes the positions and
+        says whether the force tolerance was reached.
+    step, tol, max_cycles, max_step
+        Relative strain of the finite difference, convergence threshold, cycle cap,
+        and cap on one cycle's strain step.
+
+    Returns
+    -------
+    LatticeRefinement
+        ``relaxed`` says whether the last position relaxation converged (True when no
+        step was taken).
+    """
+    if not (0 < step < 0.2 and tol > 0 and max_cycles >= 1 and max_step > 0):
+        raise InputError("bad lattice refinement parameters",
+                         value=(step, tol, max_cycles, max_step),
+                         expected="0 < step < 0.2, tol > 0, max_cycles >= 1, max_step > 0")
+    modes = strain_modes(atoms.cell)
+    m = len(modes)
+    total = np.zeros(m)
+    hessian = None
+    previous: tuple[np.ndarray, np.ndarray] | None = None
+    e0 = float(atoms.get_potential_energy())
+    n_energies, relaxed, residual = 0, True, math.inf
+    for cycle in range(1, max_cycles + 1):
+        grad, curv = np.zeros(m), np.zeros(m)
+        for i in range(m):
+            e = []
+            for sign in (-1.0, 1.0):
+                u = np.zeros(m)
+                u[i] = sign * step
+                trial = _strained(atoms, u, modes)
+                attach(trial, f"lattice{cycle}-{i}{'m' if sign < 0 else 'p'}")
+                e.append(float(trial.get_potential_energy()))
+                n_energies += 1
+            grad[i] = (e[1] - e[0]) / (2 * step)
+            curv[i] = (e[1] + e[0] - 2 * e0) / step ** 2
+        if hessian is None:
+            # clamped-ion curvature; a non-convex one (far from the minimum) is replaced
+            # by its size, so the step still goes downhill
+            hessian = np.diag(np.where(curv > 0, curv, np.maximum(np.abs(curv), 1e-3)))
+        elif previous is not None:
+            s_vec, y_vec = total - previous[0], grad - previous[1]
+            sy = float(s_vec @ y_vec)
+            if sy > 1e-12:  # BFGS update toward the relaxed-ion curvature
+                hs = hessian @ s_vec
+                hessian = (hessian + np.outer(y_vec, y_vec) / sy
+                           - np.outer(hs, hs) / float(s_vec @ hs))
+        move = -np.linalg.solve(hessian, grad)
+        residual = float(np.max(np.abs(move))) * (CLAMPED_STIFFNESS_FACTOR if previous is None
+                                                  else 1.0)
+        if residual < tol:
+            return LatticeRefinement(modes, total, residual, cycle, n_energies, True, relaxed)
+        move = np.clip(move, -max_step, max_step)
+        strained = _strained(atoms, move, modes)
+        atoms.set_cell(strained.cell, scale_atoms=True)
+        relaxed = bool(relax(atoms, f"lattice{cycle}"))
+        e0 = float(atoms.get_potential_energy())
+        previous = (total.copy(), grad)
+        total = total + move
+    return LatticeRefinement(modes, total, residual, max_cycles, n_energies, False, relaxed)
+
+
 #: Most scale points added past an edge of the coarse lattice scan (see
 #: :func:`_bracketed_scan`); 3 steps of 0.05 reach 25 % from the start (chosen here).
 MAX_SCAN_EXTENSIONS: int = 3
@@ -806,16 +958,27 @@ def relax_monolayer(structure: "Structure | Atoms",
                     pre_relax_kpt_density: float | None = None,
                     pre_relax_basis: str | None = None,
                     check_layer: Any = None,
+                    details: dict[str, Any] | None = None,
+                    refine_only: bool = False,
                     ) -> tuple["Structure | Atoms", float, bool]:
     """Relax a monolayer at the labeller's level of theory (LCAO, PBE).
 
     GPAW 26.7 has no stress tensor in LCAO mode, so the in-plane cell is optimised by
-    energy: the in-plane lattice is scaled isotropically through ``scales`` (positions
-    first roughly relaxed at the input cell, to :data:`PRE_RELAX_FMAX_EV_PER_A`, then
-    held in fractional coordinates), then through a finer scan of step ``refine_step``
-    around the coarse minimum; a parabola through the lowest energies of each scan gives
-    the best scale, and positions are relaxed again there (BFGS). The out-of-plane cell is not changed apart from re-centring with
-    ``settings.vacuum_A`` of vacuum; the in-plane cell *shape* is not optimised.
+    energy, in three stages:
+
+    1. positions are roughly relaxed at the input cell (to
+       :data:`PRE_RELAX_FMAX_EV_PER_A`);
+    2. a coarse scan scales the in-plane lattice isotropically through ``scales``, with
+       the positions held fractional, and a parabola through its lowest energies gives a
+       first lattice, where the positions are relaxed (BFGS, ``fmax``);
+    3. :func:`refine_lattice` moves the lattice to zero in-plane stress from central
+       differences of step ``refine_step`` at relaxed positions, relaxing the positions
+       after each step: a scan with positions held fixed is biased toward the lattice at
+       which they were relaxed. Cells with unequal in-plane lengths relax ``a1`` and
+       ``a2`` separately here (:func:`strain_modes`).
+
+    The out-of-plane cell is not changed apart from re-centring with ``settings.vacuum_A``
+    of vacuum; the angle between ``a1`` and ``a2`` is kept.
 
     Parameters
     ----------
@@ -838,8 +1001,8 @@ def relax_monolayer(structure: "Structure | Atoms",
         Self-consistency tolerance on the density (GPAW's ``convergence["density"]``)
         for the relaxation only; GPAW's default when None.
     refine_step
-        Relative step of the second, finer scan around the coarse minimum (three more
-        energies); 0 skips it.
+        Relative strain of the finite differences of :func:`refine_lattice`; 0 skips the
+        refinement (the lattice of the coarse scan is kept).
     max_extensions
         Scale points added past an edge of ``scales`` when the lowest energy lies there
         (:func:`_bracketed_scan`); 0 keeps the scan as given.
@@ -856,13 +1019,23 @@ def relax_monolayer(structure: "Structure | Atoms",
         pre-relaxation: a non-empty answer (why the layer is no longer a layer, e.g. it
         fell apart) stops the relaxation there with :class:`LayerBroke`, sparing the
         lattice scan and the final relaxation of a structure that will be discarded.
+    details
+        Optional dict, filled with what the lattice search did: ``coarse_scales`` and
+        ``coarse_energies_eV``, ``coarse_edge`` (its minimum still at an edge),
+        ``lattice_strain`` (log-strain per mode from the coarse lattice),
+        ``lattice_residual`` (estimated relative distance from zero stress),
+        ``lattice_cycles``, ``lattice_energies`` and ``lattice_converged``.
+    refine_only
+        Skip stages 1 and 2: for a structure relaxed before (e.g. by a scan alone), relax
+        the positions at its lattice and refine from there.
 
     Returns
     -------
     (relaxed, residual_fmax_eV_per_A, converged)
         ``relaxed`` has the input's type (pymatgen ``Structure`` or ``ase.Atoms``).
-        ``converged`` is False if BFGS did not reach ``fmax`` or the lowest energy still
-        lies at an edge of the scanned scales after ``max_extensions`` extensions.
+        ``converged`` is False if BFGS did not reach ``fmax``, or the refinement did
+        not reach :data:`LATTICE_TOL` in :data:`LATTICE_CYCLES` cycles (without a
+        refinement: the coarse minimum still lies at an edge of the scanned scales).
     """
     from ase.optimize import BFGS
 
@@ -906,37 +1079,58 @@ def relax_monolayer(structure: "Structure | Atoms",
             energies.append(trial.get_potential_energy())
         return np.array(energies)
 
+    def coarse(folder: Path) -> tuple[bool, dict[str, Any]]:
+        """Stages 1 and 2: pre-relaxation, coarse scan, positions relaxed at its lattice."""
+        # A rough pre-relaxation at the input cell: the lattice is still off there, so
+        # converging tightly would waste steps that the final relaxation repeats.
+        pre_level = settings if pre_relax_basis is None else replace(
+            settings, basis=str(pre_relax_basis))
+        relax_positions(atoms, folder, "start", max(fmax, PRE_RELAX_FMAX_EV_PER_A),
+                        min(steps, PRE_RELAX_STEPS), pre_kmesh, pre_level)
+        broken = check_layer(atoms.copy()) if check_layer is not None else ""
+        if broken:
+            there = atoms.copy()
+            there.calc = None
+            raise LayerBroke(f"{_formula(atoms)}: the layer broke during the "
+                             f"pre-relaxation: {broken}", broken,
+                             _same_type(structure, there))
+        counter = iter(range(10**6))
+        scanned, energies = _bracketed_scan(
+            scales, lambda f: scan(atoms, folder, f, f"scale{next(counter)}-"),
+            max_extensions)
+        j = int(np.argmin(energies))
+        edge = j in (0, len(scanned) - 1)
+        best = _parabola_minimum(scanned, energies)
+        cell = np.array(atoms.cell)
+        cell[:2] *= best
+        atoms.set_cell(cell, scale_atoms=True)
+        ok = relax_positions(atoms, folder, "final", fmax, steps)
+        return ok, {"coarse_scales": [float(x) for x in scanned],
+                    "coarse_energies_eV": [float(e) for e in energies],
+                    "coarse_edge": bool(edge)}
+
     with _run_in(workdir) as folder, _one_thread():
         try:
-            # A rough pre-relaxation at the input cell: the lattice is still off there, so
-            # converging tightly would waste steps that the final relaxation repeats.
-            pre_level = settings if pre_relax_basis is None else replace(
-                settings, basis=str(pre_relax_basis))
-            relax_positions(atoms, folder, "start", max(fmax, PRE_RELAX_FMAX_EV_PER_A),
-                            min(steps, PRE_RELAX_STEPS), pre_kmesh, pre_level)
-            broken = check_layer(atoms.copy()) if check_layer is not None else ""
-            if broken:
-                there = atoms.copy()
-                there.calc = None
-                raise LayerBroke(f"{_formula(atoms)}: the layer broke during the "
-                                 f"pre-relaxation: {broken}", broken,
-                                 _same_type(structure, there))
-            counter = iter(range(10**6))
-            scanned, energies = _bracketed_scan(
-                scales, lambda f: scan(atoms, folder, f, f"scale{next(counter)}-"),
-                max_extensions)
-            j = int(np.argmin(energies))
-            edge = j in (0, len(scanned) - 1)
-            best = _parabola_minimum(scanned, energies)
-            if refine_step > 0 and not edge:
-                # A second, finer scan around the coarse minimum: a parabola through widely
-                # spaced points is biased where the energy curve is anharmonic.
-                fine = tuple(best * f for f in (1 - refine_step, 1.0, 1 + refine_step))
-                best = _parabola_minimum(fine, scan(atoms, folder, fine, "fine"))
-            cell = np.array(atoms.cell)
-            cell[:2] *= best
-            atoms.set_cell(cell, scale_atoms=True)
-            ok = relax_positions(atoms, folder, "final", fmax, steps)
+            if refine_only:  # already relaxed by a scan: positions at its lattice, then refine
+                ok = relax_positions(atoms, folder, "final", fmax, steps)
+                found: dict[str, Any] = {}
+                lattice_ok = True
+            else:
+                ok, found = coarse(folder)
+                lattice_ok = not found["coarse_edge"]
+            if refine_step > 0:
+                ref = refine_lattice(
+                    atoms, lambda a, tag: attach(a, folder, tag),
+                    lambda a, tag: relax_positions(a, folder, tag, fmax, steps),
+                    step=refine_step)
+                ok = ref.relaxed if np.any(ref.strain) else ok  # the last relaxation's
+                lattice_ok = ref.converged
+                found.update(lattice_strain=[float(u) for u in ref.strain],
+                             lattice_residual=float(ref.residual),
+                             lattice_cycles=ref.cycles, lattice_energies=ref.energies,
+                             lattice_converged=ref.converged)
+            if details is not None:
+                details.update(found)
             residual = float(np.linalg.norm(atoms.get_forces(), axis=1).max())
         except LayerBroke:
             raise
@@ -945,7 +1139,7 @@ def relax_monolayer(structure: "Structure | Atoms",
                                  f"{type(exc).__name__}: {exc}") from exc
     atoms.calc = None
     relaxed = _same_type(structure, prepare_monolayer(atoms, settings.vacuum_A))
-    return relaxed, residual, bool(ok and not edge)
+    return relaxed, residual, bool(ok and lattice_ok)
 
 
 def _same_type(original: Any, atoms: "Atoms") -> Any:

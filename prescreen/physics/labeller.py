@@ -56,6 +56,7 @@ __all__ = [
     "RecordStore",
     "run_labelling",
     "load_records",
+    "record_lines",
     "records_frame",
 ]
 
@@ -435,6 +436,12 @@ def _run_locked(all_jobs: list[tuple[str, Any]], out_dir: Path, settings: LabelS
     return LabelSummary(out_dir=Path(out_dir), n_jobs=len(all_jobs), n_skipped=n_skipped,
                         n_ok=n_ok, n_failed=n_failed, wall_s=time.perf_counter() - t0,
                         core_hours=core_hours)
+
+
+def record_lines(out_dir: Path) -> list[dict[str, Any]]:
+    """Every record of an output folder as written, oldest first, superseded ones too
+    (without arrays); see :func:`load_records` for the newest per id."""
+    return _read_lines(Path(out_dir) / RECORDS_FILE)
 
 
 def load_records(out_dir: Path) -> list[LabelRecord]:
