@@ -414,6 +414,16 @@ def _newest(records: Iterable[dict[str, Any]]) -> dict[str, dict[str, Any]]:
     return newest
 
 
+_TIMEOUT_REASON = re.compile(r"^Timeout: no result within ([0-9.]+) s")
+
+
+def _timed_out_below(rec: dict[str, Any], timeout_s: float) -> bool:
+    """A relaxation that failed on a timeout shorter than ``timeout_s``."""
+    hit = _TIMEOUT_REASON.match(str(rec.get("reason", ""))) if rec.get("status") == "failed" \
+        else None
+    return hit is not None and float(hit.group(1)) < timeout_s
+
+
 def _needs_refinement(rec: dict[str, Any]) -> bool:
     """A successful relaxation of generation 1: its lattice came from scans alone."""
     return rec.get("status") == "ok" and int(rec.get("generation", 1)) < RELAX_GENERATION
@@ -661,7 +671,7 @@ def _relax_payload(rows: "pd.DataFrame", ident: str) -> dict[str, Any]:
 
 def relax_stage(pool: "pd.DataFrame", ids: Sequence[str], work: Path, *, workers: int = 1,
                 timeout_s: float = 3600.0, kpt_density: float = RELAX_KPT_DENSITY,
-                progress: bool = True) -> list[dict[str, Any]]:
+                progress: bool = True, retry_timeouts: bool = False) -> list[dict[str, Any]]:
     """Relax ``ids`` not yet in ``<work>/relax.jsonl``; returns all relaxation records.
 
     Each structure runs in its own process (``workers`` at a time) and is stopped after
@@ -670,13 +680,15 @@ def relax_stage(pool: "pd.DataFrame", ids: Sequence[str], work: Path, *, workers
     """
     with _work_lock(work):
         return _pipeline(pool, ids, work, None, 0, workers=workers, relax_timeout_s=timeout_s,
-                         kpt_density=kpt_density, label=False, progress=progress)[1]
+                         kpt_density=kpt_density, label=False, progress=progress,
+                         retry_timeouts=retry_timeouts)[1]
 
 
 def pipeline_stage(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Path, seed: int,
                    *, workers: int = 1, relax_timeout_s: float = 3600.0,
                    label_timeout_s: float = 1800.0, kpt_density: float = RELAX_KPT_DENSITY,
-                   pack_every: int = 10, progress: bool = True) -> int:
+                   pack_every: int = 10, progress: bool = True,
+                   retry_timeouts: bool = False) -> int:
     """Relax and label ``ids`` as one stream; returns the number of new label records.
 
     A free worker takes the label of a finished relaxation first, else the next
@@ -686,12 +698,15 @@ def pipeline_stage(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
     second build out); ``data_open/`` is packed after every ``pack_every`` new labels and
     at the end when anything changed. Resumes like the separate stages: results that
     children finished before an interruption are collected, and structures relaxed but
-    not labelled are labelled first. Children die with the parent.
+    not labelled are labelled first. Children die with the parent. A failed relaxation
+    is not tried again, except, with ``retry_timeouts``, one that hit a timeout shorter
+    than ``relax_timeout_s``.
     """
     with _work_lock(work):
         return _pipeline(pool, ids, work, out, seed, workers=workers,
                          relax_timeout_s=relax_timeout_s, label_timeout_s=label_timeout_s,
-                         kpt_density=kpt_density, pack_every=pack_every, progress=progress)[0]
+                         kpt_density=kpt_density, pack_every=pack_every, progress=progress,
+                         retry_timeouts=retry_timeouts)[0]
 
 
 def _pipeline(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Path | None,
@@ -711,8 +726,8 @@ def _pipeline(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Path | 
 def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Path | None,
                    seed: int, *, workers: int, relax_timeout_s: float = 3600.0,
                    label_timeout_s: float = 1800.0, kpt_density: float = RELAX_KPT_DENSITY,
-                   pack_every: int = 10, label: bool = True,
-                   progress: bool = True) -> tuple[int, list[dict[str, Any]]]:
+                   pack_every: int = 10, label: bool = True, progress: bool = True,
+                   retry_timeouts: bool = False) -> tuple[int, list[dict[str, Any]]]:
     """The scheduler behind both stages; returns (new labels, all relaxation records).
 
     Job kinds, in order of priority: the label of a finished relaxation, the Z2
@@ -839,7 +854,8 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
         for done in _label_records(work):
             if done.id not in with_z2 and done.id in relax_by_id:
                 consider_z2(done)
-    done_ids = {r["id"] for r in relax}
+    done_ids = {i for i, r in _newest(relax).items()
+                if not (retry_timeouts and _timed_out_below(r, relax_timeout_s))}
     relax_queue = [i for i in ids if i not in done_ids]
     # generation-1 relaxations, in the order they were made (a relax-only run leaves them)
     # (not those still waiting for a label or a Z2 job, whose result would belong to the
@@ -1316,6 +1332,9 @@ def _parser() -> argparse.ArgumentParser:
                    help="new labels between two packs of data_open/ (stage all)")
     p.add_argument("--timeout", type=float, default=1800.0, help="seconds per labelling job")
     p.add_argument("--relax-timeout", type=float, default=3600.0, help="seconds per relaxation")
+    p.add_argument("--retry-timeouts", action="store_true",
+                   help="relax again the structures whose relaxation hit a timeout shorter "
+                        "than --relax-timeout (other failures are never retried)")
     p.add_argument("--relax-kpt-density", type=float, default=RELAX_KPT_DENSITY)
     p.add_argument("--out", type=Path, default=ROOT / "data_open")
     p.add_argument("--work", type=Path, default=ROOT / "data_work" / "open_dataset",
@@ -1345,7 +1364,8 @@ def run(args: argparse.Namespace) -> int:
     if args.limit is not None:
         order = order[: max(0, args.limit)]
     relax_kw = dict(workers=args.workers, timeout_s=args.relax_timeout,
-                    kpt_density=args.relax_kpt_density, progress=progress)
+                    kpt_density=args.relax_kpt_density, progress=progress,
+                    retry_timeouts=args.retry_timeouts)
     if args.stage == "relax":
         relax_stage(pool, order, args.work, **relax_kw)
     elif args.stage == "label":
@@ -1358,7 +1378,7 @@ def run(args: argparse.Namespace) -> int:
         pipeline_stage(pool, order, args.work, args.out, args.seed, workers=args.workers,
                        relax_timeout_s=args.relax_timeout, label_timeout_s=args.timeout,
                        kpt_density=args.relax_kpt_density, pack_every=args.batch,
-                       progress=progress)
+                       progress=progress, retry_timeouts=args.retry_timeouts)
     return 0
 
 

@@ -299,6 +299,32 @@ def test_relax_stage_records_outcomes_and_resumes(tmp_path, monkeypatch):
         driver._read_jsonl(log)
 
 
+def test_only_timeouts_shorter_than_the_current_one_are_retried_when_asked(tmp_path,
+                                                                        monkeypatch):
+    import prescreen.physics.dft as dft
+    from prescreen.prototypes import generate_pool, pool_table
+
+    driver = _driver()
+    table = pool_table(generate_pool(prototypes=["MX2-2H"], match_structures=False, progress=False))
+    pick = {json.loads(d)["M"]: i for d, i in zip(table["decoration"], table["id"])
+            if json.loads(d)["X"] == "S"}
+    ids = [pick["Ti"], pick["Nb"]]
+    monkeypatch.setattr(dft, "relax_monolayer", _fake_relax)  # Ti sleeps 30 s, Nb raises
+    first = driver.relax_stage(table, ids, tmp_path, workers=2, timeout_s=2, progress=False)
+    assert [r["status"] for r in first] == ["failed", "failed"]
+    monkeypatch.setattr(dft, "relax_monolayer", lambda s, *a, **k: (s, 0.01, True))
+    # not asked, or no longer limit: nothing is run again
+    assert driver.relax_stage(table, ids, tmp_path, timeout_s=60, progress=False) == first
+    assert driver.relax_stage(table, ids, tmp_path, timeout_s=2, retry_timeouts=True,
+                              progress=False) == first
+    again = driver.relax_stage(table, ids, tmp_path, timeout_s=60, retry_timeouts=True,
+                               progress=False)
+    newest = driver._newest(again)
+    assert newest[pick["Ti"]]["status"] == "ok"  # the timeout, retried with a longer limit
+    assert newest[pick["Nb"]]["status"] == "failed"  # an error is not retried
+    assert len(again) == 3
+
+
 def _fake_label(structure, settings, *, id=None):
     """Stand-in for label_structure: a record whose spillage is the atom count / 10."""
     from prescreen.physics.dft import LabelRecord
