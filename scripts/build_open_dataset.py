@@ -414,17 +414,33 @@ def _newest(records: Iterable[dict[str, Any]]) -> dict[str, dict[str, Any]]:
     return newest
 
 
+_TIMEOUT_REASON = re.compile(r"^Timeout: no result within ([0-9.]+) s")
+
+
+def _timed_out_below(rec: dict[str, Any], timeout_s: float) -> bool:
+    """A relaxation that failed on a timeout shorter than ``timeout_s``."""
+    hit = _TIMEOUT_REASON.match(str(rec.get("reason", ""))) if rec.get("status") == "failed" \
+        else None
+    return hit is not None and float(hit.group(1)) < timeout_s
+
+
 def _needs_refinement(rec: dict[str, Any]) -> bool:
     """A successful relaxation of generation 1: its lattice came from scans alone."""
     return rec.get("status") == "ok" and int(rec.get("generation", 1)) < RELAX_GENERATION
+
+
+class _RefinementRefused(Exception):
+    """A refinement whose result is not kept (the layer broke, or it did not converge)."""
 
 
 def _refine_one(ident: str, payload: dict[str, Any], kpt_density: float,
                 result_path: str) -> None:
     """Child process: refine a generation-1 relaxation to zero in-plane stress and, when
     its lattice moved, label it again. Writes ``{"relax": ..., "label": ...}``: the new
-    relaxation record (the old one's fields, updated) and the new label record (None when
-    the lattice did not move, so the old label and geometry stand)."""
+    relaxation record (the old one's fields, updated) and the new label record. The label
+    is None when the lattice did not move, or when the refinement failed, broke the layer
+    or did not converge (``refine_failed``, the reason in ``lattice_scan``): the scan's
+    geometry and its label then stand."""
     from prescreen.physics.dft import LabelRecord, LabelSettings, label_structure, relax_monolayer
 
     os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
@@ -443,25 +459,25 @@ def _refine_one(ident: str, payload: dict[str, Any], kpt_density: float,
         rec.update(_lattice_fields(details), refine_wall_s=round(time.perf_counter() - t0, 2))
         if any(details["lattice_strain"]):  # moved: the new geometry, labelled again
             intact, why = check_intact_monolayer(structure)
-            rec.update(residual_fmax_eV_per_A=float(residual), converged=bool(converged),
+            if not intact:  # the scan's result stands, said so
+                raise _RefinementRefused(f"the refined layer {why}")
+            if not converged:
+                raise _RefinementRefused(
+                    f"not converged (residual force {residual:.3f} eV/A, estimated distance "
+                    f"from zero stress {details['lattice_residual']:.4f})")
+            rec.update(residual_fmax_eV_per_A=float(residual), converged=True,
                        smearing_eV=RELAX_SMEARING_EV, **structure_columns(structure))
-            if not intact:
-                rec.update(status="fell_apart", reason=f"during the refinement: {why}")
-            elif not converged:
-                rec.update(status="not_converged",
-                           reason=f"residual force {residual:.3f} eV/A, or the lattice not at "
-                                  "zero stress, after the refinement")
-            else:
-                t1 = time.perf_counter()
-                try:
-                    label = label_structure(structure, LabelSettings(), id=ident).as_dict()
-                except Exception as exc:  # recorded, not raised
-                    label = LabelRecord.failed(ident, str(payload.get("formula", "?")),
-                                               LabelSettings(), f"{type(exc).__name__}: {exc}",
-                                               time.perf_counter() - t1).as_dict()
+            t1 = time.perf_counter()
+            try:
+                label = label_structure(structure, LabelSettings(), id=ident).as_dict()
+            except Exception as exc:  # recorded, not raised
+                label = LabelRecord.failed(ident, str(payload.get("formula", "?")),
+                                           LabelSettings(), f"{type(exc).__name__}: {exc}",
+                                           time.perf_counter() - t1).as_dict()
         # else: within the tolerance already; the labelled geometry stands
     except Exception as exc:  # the scan's result stands; said in the record, not retried
-        rec["lattice_scan"] += f" (failed: {type(exc).__name__}: {exc})"
+        why = str(exc) if isinstance(exc, _RefinementRefused) else f"{type(exc).__name__}: {exc}"
+        rec["lattice_scan"] += f" (failed: {why})"
         rec["refine_failed"] = True
         rec["refine_wall_s"] = round(time.perf_counter() - t0, 2)
     rec["wall_s"] = round(float(payload.get("wall_s") or 0.0) + rec["refine_wall_s"], 2)
@@ -661,7 +677,7 @@ def _relax_payload(rows: "pd.DataFrame", ident: str) -> dict[str, Any]:
 
 def relax_stage(pool: "pd.DataFrame", ids: Sequence[str], work: Path, *, workers: int = 1,
                 timeout_s: float = 3600.0, kpt_density: float = RELAX_KPT_DENSITY,
-                progress: bool = True) -> list[dict[str, Any]]:
+                progress: bool = True, retry_timeouts: bool = False) -> list[dict[str, Any]]:
     """Relax ``ids`` not yet in ``<work>/relax.jsonl``; returns all relaxation records.
 
     Each structure runs in its own process (``workers`` at a time) and is stopped after
@@ -670,28 +686,33 @@ def relax_stage(pool: "pd.DataFrame", ids: Sequence[str], work: Path, *, workers
     """
     with _work_lock(work):
         return _pipeline(pool, ids, work, None, 0, workers=workers, relax_timeout_s=timeout_s,
-                         kpt_density=kpt_density, label=False, progress=progress)[1]
+                         kpt_density=kpt_density, label=False, progress=progress,
+                         retry_timeouts=retry_timeouts)[1]
 
 
 def pipeline_stage(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Path, seed: int,
                    *, workers: int = 1, relax_timeout_s: float = 3600.0,
                    label_timeout_s: float = 1800.0, kpt_density: float = RELAX_KPT_DENSITY,
-                   pack_every: int = 10, progress: bool = True) -> int:
+                   pack_every: int = 10, progress: bool = True,
+                   retry_timeouts: bool = False) -> int:
     """Relax and label ``ids`` as one stream; returns the number of new label records.
 
     A free worker takes the label of a finished relaxation first, else the next
     relaxation, so no core waits for a batch to finish (relaxations take from one minute
     to half an hour). The parent is the only writer of both checkpoints
     (``<work>/relax.jsonl`` and the labeller's ``<work>/labels``; a lock file keeps a
-    second build out); ``data_open/`` is packed after every ``pack_every`` new labels and
-    at the end when anything changed. Resumes like the separate stages: results that
+    second build out); ``data_open/`` is packed after every ``pack_every`` labels (new
+    ones and relabels of refined structures) and at the end when anything changed. Resumes like the separate stages: results that
     children finished before an interruption are collected, and structures relaxed but
-    not labelled are labelled first. Children die with the parent.
+    not labelled are labelled first. Children die with the parent. A failed relaxation
+    is not tried again, except, with ``retry_timeouts``, one that hit a timeout shorter
+    than ``relax_timeout_s``.
     """
     with _work_lock(work):
         return _pipeline(pool, ids, work, out, seed, workers=workers,
                          relax_timeout_s=relax_timeout_s, label_timeout_s=label_timeout_s,
-                         kpt_density=kpt_density, pack_every=pack_every, progress=progress)[0]
+                         kpt_density=kpt_density, pack_every=pack_every, progress=progress,
+                         retry_timeouts=retry_timeouts)[0]
 
 
 def _pipeline(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Path | None,
@@ -711,8 +732,8 @@ def _pipeline(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Path | 
 def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Path | None,
                    seed: int, *, workers: int, relax_timeout_s: float = 3600.0,
                    label_timeout_s: float = 1800.0, kpt_density: float = RELAX_KPT_DENSITY,
-                   pack_every: int = 10, label: bool = True,
-                   progress: bool = True) -> tuple[int, list[dict[str, Any]]]:
+                   pack_every: int = 10, label: bool = True, progress: bool = True,
+                   retry_timeouts: bool = False) -> tuple[int, list[dict[str, Any]]]:
     """The scheduler behind both stages; returns (new labels, all relaxation records).
 
     Job kinds, in order of priority: the label of a finished relaxation, the Z2
@@ -730,7 +751,7 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
     store = RecordStore(work / "labels", settings) if label else None
     tmpdir = work / "relax_tmp"
     tmpdir.mkdir(parents=True, exist_ok=True)
-    new_labels = changed = 0
+    new_labels = changed = since_pack = 0
     label_queue: list[dict[str, Any]] = []
     z2_queue: list[dict[str, Any]] = []
     relax_by_id = {i: r for i, r in _newest(_read_jsonl(log)).items() if r.get("status") == "ok"}
@@ -745,8 +766,17 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
             _append_jsonl(z2_log, verdict)
 
     def record(kind: str, ident: str, rec: dict[str, Any]) -> str:
-        """Write one finished job to its checkpoint; returns a short outcome."""
-        nonlocal new_labels, changed
+        """Write one finished job to its checkpoint; returns a short outcome. Packs
+        ``data_open/`` after every ``pack_every`` labels (new ones and relabels)."""
+        nonlocal since_pack
+        outcome = record_one(kind, ident, rec)
+        if out is not None and since_pack >= max(1, pack_every):
+            pack_stage(out, work, seed)
+            since_pack = 0
+        return outcome
+
+    def record_one(kind: str, ident: str, rec: dict[str, Any]) -> str:
+        nonlocal new_labels, changed, since_pack
         changed += 1
         if kind == "relax":
             _append_jsonl(log, rec)
@@ -769,41 +799,56 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
         store.append(done)
         consider_z2(done)
         new_labels += 1
-        if out is not None and new_labels % max(1, pack_every) == 0:
-            pack_stage(out, work, seed)
+        since_pack += 1
         return f"spillage {done.spillage:.3f}" if done.ok else "label failed"
 
     def record_refinement(ident: str, result: dict[str, Any]) -> str:
-        """A refined generation-1 relaxation: its new label first (a crash before the
-        relaxation record is written then only repeats the job), then the record."""
-        old = relax_by_id.get(ident)
-        if "relax" not in result:  # the child left no result: the scan's lattice stands
-            rec = {**(old or {"id": ident}), "generation": RELAX_GENERATION,
-                   "refine_failed": True,
-                   "lattice_scan": f"{(old or {}).get('lattice_scan', 'coarse only')} + "
+        """A refined generation-1 relaxation: its new label first, then the record (a
+        crash between the two replays the result on the next run, which then finds the
+        label stored already); a structure that kept its geometry is labelled, or gets
+        its Z2 job, now if it still lacks one."""
+        nonlocal since_pack, new_labels
+        old = relax_by_id[ident]
+        if "relax" not in result:  # the child left no result
+            if "WorkerDied" in str(result.get("reason", "")):
+                return "refinement: worker died, left for the next run"
+            spent = float(result.get("wall_s") or 0.0)
+            rec = {**old, "generation": RELAX_GENERATION, "refine_failed": True,
+                   "scan_wall_s": old.get("wall_s"), "refine_wall_s": spent,
+                   "wall_s": round(float(old.get("wall_s") or 0.0) + spent, 2),
+                   "lattice_scan": f"{old.get('lattice_scan', 'coarse only')} + "
                                    f"{REFINEMENT_TEXT} from the scan's result (failed: "
                                    f"{result.get('reason', 'no result')})"}
-            _append_jsonl(log, rec)
-            return "refinement failed"
+            result = {"relax": rec, "label": None}
         rec, new_label = result["relax"], result.get("label")
-        if rec.get("status") == "ok":
-            relax_by_id[ident] = rec
-        else:
-            relax_by_id.pop(ident, None)
+        relax_by_id[ident] = rec
+        said = "label kept"
         if new_label is not None:
             done = LabelRecord.from_dict(new_label)
-            store.append(done)
+            replay = replaying and newest_label_line.get(ident) == done.as_dict(arrays=False)
+            if not replay:  # (a replayed result whose label is the newest stored already)
+                store.append(done)
+                newest_label_line[ident] = done.as_dict(arrays=False)
+                since_pack += 1
+                if ident not in labels_now:  # its first label
+                    new_labels += 1
             if ident in z2_ever:  # its invariant belongs to the old geometry
                 _append_jsonl(z2_log, {"id": ident, "status": "stale",
                                        "reason": "the structure was refined and relabelled"})
-            if rec.get("status") == "ok":
-                consider_z2(done)
+                z2_ever.discard(ident)
+            consider_z2(done)
+            said = f"spillage {done.spillage:.3f}" if done.ok else "label failed"
+        elif ident not in labels_now:  # relaxed by the scans, never labelled: label it now
+            label_queue.append(rec)
+            bar.total += 1
+            said = "label next"
+        elif ident not in _z2_done(z2_log) and labels_now[ident].ok:
+            consider_z2(labels_now[ident])
         _append_jsonl(log, rec)
+        if rec.get("refine_failed"):
+            return f"refinement failed, scan's lattice kept; {said}"
         strain = 100 * max((abs(u) for u in rec.get("lattice_strain", [0.0])), default=0.0)
-        return (f"refined ({strain:.2f} %), " + (f"spillage {done.spillage:.3f}"
-                if new_label is not None and done.ok else
-                "label failed" if new_label is not None else "label kept")
-                if rec.get("status") == "ok" else f"refined: {rec.get('status')}")
+        return f"refined ({strain:.2f} %); {said}"
 
     bar = tqdm(total=0, desc="relax + label" if label else "relaxing", unit="job",
                disable=not progress)
@@ -813,6 +858,14 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
     labelled = store.status() if store is not None else {}
     with_z2 = _z2_done(z2_log)
     z2_ever = {r["id"] for r in _read_jsonl(z2_log)}
+    newest_label_line: dict[str, dict[str, Any]] = {}
+    labels_now: dict[str, Any] = {}
+    if store is not None:
+        from prescreen.physics.labeller import record_lines
+
+        newest_label_line = {d["id"]: d for d in record_lines(work / "labels")}
+        labels_now = {r.id: r for r in _label_records(work)}
+    replaying = True  # results children left before the last run stopped
     for path in sorted(tmpdir.glob("*.json")):
         kind, _, ident = path.stem.partition("-")
         try:
@@ -828,24 +881,30 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
                 or (kind == "z2" and ident not in with_z2)):
             record(kind, ident, rec)
         path.unlink()  # recorded now, or already in its checkpoint, or unreadable
+    replaying = False
     for stale in tmpdir.glob("*.tmp"):
         stale.unlink()
     relax = _read_jsonl(log)
+    newest_relax = _newest(relax)
     labelled = store.status() if store is not None else {}
-    label_queue[:] = [r for r in relax if label and r.get("status") == "ok"
-                      and r["id"] not in labelled]
+    labels_now = {r.id: r for r in _label_records(work)} if store is not None else {}
+    # a relaxation made by the scans alone is refined before its label and Z2 job
+    label_queue[:] = [r for r in newest_relax.values() if label and r.get("status") == "ok"
+                      and r["id"] not in labelled and not _needs_refinement(r)]
     if label:  # labels from before the Z2 jobs existed, or from an interrupted run
         with_z2 = _z2_done(z2_log) | {r["id"] for r in z2_queue}
-        for done in _label_records(work):
-            if done.id not in with_z2 and done.id in relax_by_id:
+        for done in labels_now.values():
+            if (done.id not in with_z2 and done.id in relax_by_id
+                    and not _needs_refinement(relax_by_id[done.id])):
                 consider_z2(done)
-    done_ids = {r["id"] for r in relax}
+    done_ids = {i for i, r in _newest(relax).items()
+                if not (retry_timeouts and _timed_out_below(r, relax_timeout_s))}
     relax_queue = [i for i in ids if i not in done_ids]
     # generation-1 relaxations, in the order they were made (a relax-only run leaves them)
-    # (not those still waiting for a label or a Z2 job, whose result would belong to the
-    # old geometry: the next run refines them)
-    waiting = {r["id"] for r in label_queue} | {r["id"] for r in z2_queue}
-    refine_queue = [r for r in _newest(relax).values()
+    # (not one whose Z2 job is queued already, from a label result collected above: its
+    # invariant would belong to the old geometry; the next run refines it)
+    waiting = {r["id"] for r in z2_queue}
+    refine_queue = [r for r in newest_relax.values()
                     if label and _needs_refinement(r) and r["id"] not in waiting]
     bar.total = len(label_queue) + len(z2_queue) + len(refine_queue) + len(relax_queue)
     running: list[_Job] = []
@@ -900,7 +959,8 @@ def label_stage(relaxed: Sequence[dict[str, Any]], work: Path, *, workers: int =
     from prescreen.physics.dft import LabelSettings
     from prescreen.physics.labeller import run_labelling
 
-    jobs = [(r["id"], structure_from_row(r)) for r in relaxed if r.get("status") == "ok"]
+    jobs = [(r["id"], structure_from_row(r)) for r in _newest(relaxed).values()
+            if r.get("status") == "ok"]
     with _work_lock(work):
         return run_labelling(jobs, work / "labels", settings=LabelSettings(), workers=workers,
                              timeout_s=timeout_s, progress=progress)
@@ -1048,7 +1108,7 @@ def _refined_text(relax: "pd.DataFrame", labelled: "pd.DataFrame") -> str:
     if not old and not refined.any():  # every relaxation made with the refinement
         return ""
     text = (f"Relaxations before 2026-12-03 took the lattice from the scans alone (a coarse "
-            f"scan, then a three-point finer one), biased toward the lattice at which the "
+            f"scan, and for most a three-point finer one), biased toward the lattice at which the "
             f"positions were relaxed; {int((refined & ~failed).sum())} of them have since been "
             f"refined from their result, and labelled again where the lattice moved")
     if failed.any():
@@ -1316,6 +1376,9 @@ def _parser() -> argparse.ArgumentParser:
                    help="new labels between two packs of data_open/ (stage all)")
     p.add_argument("--timeout", type=float, default=1800.0, help="seconds per labelling job")
     p.add_argument("--relax-timeout", type=float, default=3600.0, help="seconds per relaxation")
+    p.add_argument("--retry-timeouts", action="store_true",
+                   help="relax again the structures whose relaxation hit a timeout shorter "
+                        "than --relax-timeout (other failures are never retried)")
     p.add_argument("--relax-kpt-density", type=float, default=RELAX_KPT_DENSITY)
     p.add_argument("--out", type=Path, default=ROOT / "data_open")
     p.add_argument("--work", type=Path, default=ROOT / "data_work" / "open_dataset",
@@ -1345,7 +1408,8 @@ def run(args: argparse.Namespace) -> int:
     if args.limit is not None:
         order = order[: max(0, args.limit)]
     relax_kw = dict(workers=args.workers, timeout_s=args.relax_timeout,
-                    kpt_density=args.relax_kpt_density, progress=progress)
+                    kpt_density=args.relax_kpt_density, progress=progress,
+                    retry_timeouts=args.retry_timeouts)
     if args.stage == "relax":
         relax_stage(pool, order, args.work, **relax_kw)
     elif args.stage == "label":
@@ -1358,7 +1422,7 @@ def run(args: argparse.Namespace) -> int:
         pipeline_stage(pool, order, args.work, args.out, args.seed, workers=args.workers,
                        relax_timeout_s=args.relax_timeout, label_timeout_s=args.timeout,
                        kpt_density=args.relax_kpt_density, pack_every=args.batch,
-                       progress=progress)
+                       progress=progress, retry_timeouts=args.retry_timeouts)
     return 0
 
 

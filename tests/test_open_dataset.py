@@ -299,6 +299,32 @@ def test_relax_stage_records_outcomes_and_resumes(tmp_path, monkeypatch):
         driver._read_jsonl(log)
 
 
+def test_only_timeouts_shorter_than_the_current_one_are_retried_when_asked(tmp_path,
+                                                                        monkeypatch):
+    import prescreen.physics.dft as dft
+    from prescreen.prototypes import generate_pool, pool_table
+
+    driver = _driver()
+    table = pool_table(generate_pool(prototypes=["MX2-2H"], match_structures=False, progress=False))
+    pick = {json.loads(d)["M"]: i for d, i in zip(table["decoration"], table["id"])
+            if json.loads(d)["X"] == "S"}
+    ids = [pick["Ti"], pick["Nb"]]
+    monkeypatch.setattr(dft, "relax_monolayer", _fake_relax)  # Ti sleeps 30 s, Nb raises
+    first = driver.relax_stage(table, ids, tmp_path, workers=2, timeout_s=2, progress=False)
+    assert [r["status"] for r in first] == ["failed", "failed"]
+    monkeypatch.setattr(dft, "relax_monolayer", lambda s, *a, **k: (s, 0.01, True))
+    # not asked, or no longer limit: nothing is run again
+    assert driver.relax_stage(table, ids, tmp_path, timeout_s=60, progress=False) == first
+    assert driver.relax_stage(table, ids, tmp_path, timeout_s=2, retry_timeouts=True,
+                              progress=False) == first
+    again = driver.relax_stage(table, ids, tmp_path, timeout_s=60, retry_timeouts=True,
+                               progress=False)
+    newest = driver._newest(again)
+    assert newest[pick["Ti"]]["status"] == "ok"  # the timeout, retried with a longer limit
+    assert newest[pick["Nb"]]["status"] == "failed"  # an error is not retried
+    assert len(again) == 3
+
+
 def _fake_label(structure, settings, *, id=None):
     """Stand-in for label_structure: a record whose spillage is the atom count / 10."""
     from prescreen.physics.dft import LabelRecord
@@ -347,82 +373,140 @@ def test_pipeline_labels_each_relaxed_structure_once_and_resumes(tmp_path, monke
 
 def _fake_refine(structure, settings, *, fmax, steps, refine_only=False, details=None,
                  **kwargs):
-    """Stand-in for relax_monolayer(refine_only=True): Mo layers move by +2 % in a, W layers
-    are already at zero stress, Nb layers fail."""
+    """Stand-in for relax_monolayer(refine_only=True), by the metal: Mo moves by +2 % in
+    a; W and V are at zero stress already; Nb raises; Zr does not converge; Ti takes
+    longer than any timeout in these tests."""
+    import time as _time
+
+    from pymatgen.core import Lattice, Structure
+
     assert refine_only
     symbol = structure[0].specie.symbol
     if symbol == "Nb":
         raise RuntimeError("SCF did not converge")
-    strain = 0.02 if symbol == "Mo" else 0.0
+    if symbol == "Ti":
+        _time.sleep(30)
+    strain = {"Mo": 0.02, "Zr": 0.05}.get(symbol, 0.0)
     details.update(lattice_strain=[strain], lattice_residual=0.001, lattice_cycles=2,
-                   lattice_energies=4, lattice_converged=True)
-    from pymatgen.core import Lattice, Structure
-
+                   lattice_energies=4, lattice_converged=symbol != "Zr")
     matrix = structure.lattice.matrix.copy()
     matrix[:2] *= 1 + strain  # in-plane, positions fractional
-    return Structure(Lattice(matrix), structure.species, structure.frac_coords), 0.02, True
+    moved = Structure(Lattice(matrix), structure.species, structure.frac_coords)
+    return moved, 0.02, symbol != "Zr"
+
+
+def _scan_only(record):
+    """A relaxation record as written before 2026-12-03: no generation."""
+    return {k: v for k, v in record.items() if k != "generation"} | {"wall_s": 100.0}
 
 
 def test_scan_only_relaxations_are_refined_and_relabelled_where_they_moved(tmp_path,
                                                                            monkeypatch):
     import prescreen.physics.dft as dft
     from prescreen.physics.labeller import RECORDS_FILE, load_records
-    from prescreen.prototypes import generate_pool, pool_table
 
     driver = _driver()
     monkeypatch.setattr(dft, "relax_monolayer", lambda s, *a, **k: (s, 0.01, True))
     monkeypatch.setattr(dft, "label_structure", _fake_label)
     monkeypatch.setattr(driver, "pack_stage", lambda out, work, seed: None)
-    table = pool_table(generate_pool(prototypes=["MX2-2H"], match_structures=False, progress=False))
-    pick = {json.loads(d)["M"]: i for d, i in zip(table["decoration"], table["id"])
-            if json.loads(d)["X"] == "S"}
-    ids = [pick[m] for m in ("Mo", "W", "Nb", "Cr")]
+    table, pick = _mx2_sulfides()
+    labelled_first = [pick[m] for m in ("Mo", "W", "Nb", "Cr", "Zr", "Ti")]
     work = tmp_path / "work"
-    driver.pipeline_stage(table, ids, work, tmp_path / "out", 7, workers=2, progress=False)
-    # make them scan-only relaxations, as recorded before 2026-12-03 (no generation); Cr's
-    # stays generation 2; Mo has a Z2 record from its old geometry
+    driver.pipeline_stage(table, labelled_first, work, tmp_path / "out", 7, workers=2,
+                          progress=False)
+    # make them scan-only relaxations, as recorded before 2026-12-03, except Cr's; V was
+    # relaxed by the scans but never labelled; Mo has a Z2 record from its old geometry
     log = work / "relax.jsonl"
     old = driver._read_jsonl(log)
-    log.write_text("".join(json.dumps({k: v for k, v in r.items() if k != "generation"}
-                                      | {"wall_s": 100.0}) + "\n"
-                           for r in old if r["id"] != pick["Cr"])
-                   + "".join(json.dumps(r) + "\n" for r in old if r["id"] == pick["Cr"]))
+    log.write_text("".join(json.dumps(r if r["id"] == pick["Cr"] else _scan_only(r)) + "\n"
+                           for r in old))
+    w_record = next(r for r in old if r["id"] == pick["W"])  # a W layer: stays put
+    driver._append_jsonl(log, _scan_only({**w_record, "id": pick["V"]}))
     driver._append_jsonl(work / driver.Z2_LOG, {"id": pick["Mo"], "status": "ok", "z2": 1})
     labels_before = (work / "labels" / RECORDS_FILE).read_text().count("\n")
+    ids = labelled_first + [pick["V"]]
 
     monkeypatch.setattr(dft, "relax_monolayer", _fake_refine)
     assert driver.pipeline_stage(table, ids, work, tmp_path / "out", 7, workers=2,
-                                 progress=False) == 0  # relabels are not new labels
+                                 relax_timeout_s=3, progress=False) == 1  # V's first label
     newest = driver._newest(driver._read_jsonl(log))
     assert {i: r["generation"] for i, r in newest.items()} == {i: 2 for i in ids}
-    mo, w, nb = newest[pick["Mo"]], newest[pick["W"]], newest[pick["Nb"]]
     first = {r["id"]: r for r in old}
+    mo = newest[pick["Mo"]]
     assert mo["a_A"] == pytest.approx(first[pick["Mo"]]["a_A"] * 1.02)
     assert mo["lattice_strain"] == [0.02] and "from the scan's result" in mo["lattice_scan"]
     assert mo["scan_wall_s"] == 100.0
     assert mo["wall_s"] == pytest.approx(100.0 + mo["refine_wall_s"], abs=0.01)
-    assert w["lattice"] == first[pick["W"]]["lattice"]  # not moved: the labelled geometry
-    assert nb["status"] == "ok" and nb["refine_failed"]
-    assert "(failed: RuntimeError: SCF did not converge)" in nb["lattice_scan"]
+    assert newest[pick["W"]]["lattice"] == first[pick["W"]]["lattice"]  # kept its geometry
+    # failures keep the scan's geometry and label, say why, and count the compute
+    for metal, why in (("Nb", "RuntimeError: SCF did not converge"),
+                       ("Zr", "not converged"), ("Ti", "Timeout: no result within 3 s")):
+        rec = newest[pick[metal]]
+        assert rec["status"] == "ok" and rec["refine_failed"], metal
+        assert f"(failed: {why}" in rec["lattice_scan"], metal
+        assert rec["lattice"] == first[pick[metal]]["lattice"], metal
+    assert newest[pick["Ti"]]["wall_s"] >= 103.0  # the timed-out refinement's 3 s count
     lines = [json.loads(x) for x in (work / "labels" / RECORDS_FILE).read_text().splitlines()]
-    assert len(lines) == labels_before + 1 and lines[-1]["id"] == pick["Mo"]  # Mo only
+    assert sorted(d["id"] for d in lines[labels_before:]) == sorted([pick["Mo"], pick["V"]])
     z2 = driver._newest(driver._read_jsonl(work / driver.Z2_LOG))
     assert z2[pick["Mo"]]["status"] == "stale"  # belonged to the old geometry
     label = next(r for r in load_records(work / "labels") if r.id == pick["Mo"])
     assert driver._z2_columns(z2, label)["z2"] is None
-    # the tables keep one row per structure, the newest
+    # the tables keep one row per structure, the newest; the datasheet says what happened
     relax_df = driver._relax_table(driver._read_jsonl(log), load_records(work / "labels"))
-    assert sorted(relax_df["id"]) == sorted(ids)
-    assert set(relax_df["generation"]) == {2}
+    assert sorted(relax_df["id"]) == sorted(ids) and set(relax_df["generation"]) == {2}
     said = driver._refined_text(relax_df, None)
-    assert "2 of them have since been refined" in said  # Mo and W; Cr was made refined
-    assert "for 1 the refinement failed" in said and "wait for it" not in said
-    # the replaced label's compute is still counted
+    assert "3 of them have since been refined" in said  # Mo, W, V
+    assert "for 3 the refinement failed" in said and "wait for it" not in said
+    # the replaced label's compute is still counted, once
     assert driver._superseded_label_hours(work) == pytest.approx(1 / 3600)
+    # --stage label labels the newest geometry of each id, once (here: nothing new)
+    summary = driver.label_stage(driver._read_jsonl(log), work, progress=False)
+    assert (summary.n_jobs, summary.n_ok + summary.n_failed) == (len(ids), 0)
     # rerun: nothing is refined again
     before = log.read_text()
     driver.pipeline_stage(table, ids, work, tmp_path / "out", 7, workers=1, progress=False)
     assert log.read_text() == before
+
+
+def test_a_refinement_result_replayed_after_a_crash_is_stored_once(tmp_path, monkeypatch):
+    import prescreen.physics.dft as dft
+    from prescreen.physics.labeller import RECORDS_FILE
+
+    driver = _driver()
+    monkeypatch.setattr(dft, "relax_monolayer", lambda s, *a, **k: (s, 0.01, True))
+    monkeypatch.setattr(dft, "label_structure", _fake_label)
+    monkeypatch.setattr(driver, "pack_stage", lambda out, work, seed: None)
+    table, pick = _mx2_sulfides()
+    work = tmp_path / "work"
+    driver.pipeline_stage(table, [pick["Mo"]], work, tmp_path / "out", 7, progress=False)
+    log = work / "relax.jsonl"
+    scan = _scan_only(driver._read_jsonl(log)[0])
+    log.write_text(json.dumps(scan) + "\n")
+    # the parent stored the new label, then died before writing the relaxation record
+    monkeypatch.setattr(dft, "relax_monolayer", _fake_refine)
+    result = work / "relax_tmp" / f"refine-{pick['Mo']}.json"
+    driver._refine_one(pick["Mo"], {**scan, "formula": "MoS2"}, 2.5, str(result))
+    from prescreen.physics.dft import LabelRecord, LabelSettings
+    from prescreen.physics.labeller import RecordStore
+
+    RecordStore(work / "labels", LabelSettings()).append(
+        LabelRecord.from_dict(json.loads(result.read_text())["label"]))
+    driver.pipeline_stage(table, [pick["Mo"]], work, tmp_path / "out", 7, progress=False)
+    lines = (work / "labels" / RECORDS_FILE).read_text().splitlines()
+    assert len(lines) == 2  # the first label and the refined one, not the refined one twice
+    assert driver._newest(driver._read_jsonl(log))[pick["Mo"]]["generation"] == 2
+    assert driver._superseded_label_hours(work) == pytest.approx(1 / 3600)
+
+
+def _mx2_sulfides():
+    """The 2H MX2 pool and its sulfides by metal."""
+    from prescreen.prototypes import generate_pool, pool_table
+
+    table = pool_table(generate_pool(prototypes=["MX2-2H"], match_structures=False, progress=False))
+    pick = {json.loads(d)["M"]: i for d, i in zip(table["decoration"], table["id"])
+            if json.loads(d)["X"] == "S"}
+    return table, pick
 
 
 def test_an_append_after_a_torn_line_keeps_every_record(tmp_path):
@@ -499,7 +583,8 @@ def test_the_pipeline_stops_its_children_and_collects_what_they_left(tmp_path, m
     monkeypatch.setattr(dft, "label_structure", _fake_label)
     first = driver._relax_payload(table.set_index("id"), ids[0])
     (work / "relax_tmp" / f"relax-{ids[0]}.json").write_text(json.dumps(
-        {**first, "status": "ok", "reason": "", "residual_fmax_eV_per_A": 0.02, "wall_s": 9.0}))
+        {**first, "status": "ok", "reason": "", "residual_fmax_eV_per_A": 0.02, "wall_s": 9.0,
+         "generation": driver.RELAX_GENERATION}))
     monkeypatch.setattr(dft, "relax_monolayer", lambda s, *a, **k: (s, 0.01, True))
     assert driver.pipeline_stage(table, ids, work, tmp_path / "out", 1, workers=2,
                                  progress=False) == 3
