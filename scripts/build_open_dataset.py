@@ -737,8 +737,10 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
     """The scheduler behind both stages; returns (new labels, all relaxation records).
 
     Job kinds, in order of priority: the label of a finished relaxation, the Z2
-    invariant of a new positive whose bands with SOC are apart at every k (``<work>/z2.jsonl``; parities or Wilson loops),
-    the next relaxation. ``label=False`` relaxes only.
+    invariant of a new positive whose bands with SOC are apart at every k
+    (``<work>/z2.jsonl``; parities or Wilson loops), then, taking turns, the refinement
+    of a relaxation made by the scans alone (generation 1) and the next relaxation.
+    ``label=False`` relaxes only (and refines nothing).
     """
     from tqdm.auto import tqdm
 
@@ -908,6 +910,9 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
                     if label and _needs_refinement(r) and r["id"] not in waiting]
     bar.total = len(label_queue) + len(z2_queue) + len(refine_queue) + len(relax_queue)
     running: list[_Job] = []
+    # refinements of old relaxations and new relaxations take turns, so that neither the
+    # dataset's growth nor its upgrade waits for the other
+    started = {"refine": 0, "relax": 0}
     try:
         while label_queue or z2_queue or refine_queue or relax_queue or running:
             while len(running) < max(1, workers) and (label_queue or z2_queue or refine_queue
@@ -921,11 +926,13 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
                     rec = z2_queue.pop(0)
                     payload = {k: rec[k] for k in ("lattice", "species", "frac_coords")}
                     running.append(_start("z2", rec["id"], payload, tmpdir, kpt_density))
-                elif refine_queue:
+                elif refine_queue and (not relax_queue or started["refine"] <= started["relax"]):
+                    started["refine"] += 1
                     rec = refine_queue.pop(0)
                     payload = {**rec, "formula": str(rows.loc[rec["id"], "reduced_formula"])}
                     running.append(_start("refine", rec["id"], payload, tmpdir, kpt_density))
                 else:
+                    started["relax"] += 1
                     ident = relax_queue.pop(0)
                     running.append(_start("relax", ident, _relax_payload(rows, ident), tmpdir,
                                           kpt_density))

@@ -469,6 +469,39 @@ def test_scan_only_relaxations_are_refined_and_relabelled_where_they_moved(tmp_p
     assert log.read_text() == before
 
 
+def test_refinements_and_new_relaxations_take_turns(tmp_path, monkeypatch):
+    import prescreen.physics.dft as dft
+
+    driver = _driver()
+    monkeypatch.setattr(dft, "label_structure", _fake_label)
+    monkeypatch.setattr(driver, "pack_stage", lambda out, work, seed: None)
+    table, pick = _mx2_sulfides()
+    work = tmp_path / "work"
+
+    def relax_or_refine(structure, settings, *, refine_only=False, details=None, **kw):
+        if refine_only:
+            return _fake_refine(structure, settings, refine_only=True, details=details, **kw)
+        return structure, 0.01, True
+
+    monkeypatch.setattr(dft, "relax_monolayer", relax_or_refine)
+    old_ids = [pick["W"], pick["V"]]
+    driver.pipeline_stage(table, old_ids, work, tmp_path / "out", 7, progress=False)
+    log = work / "relax.jsonl"
+    log.write_text("".join(json.dumps(_scan_only(r)) + "\n" for r in driver._read_jsonl(log)))
+    kinds = []
+    real_start = driver._start
+
+    def spy(kind, *args, **kwargs):
+        kinds.append(kind)
+        return real_start(kind, *args, **kwargs)
+
+    monkeypatch.setattr(driver, "_start", spy)
+    driver.pipeline_stage(table, old_ids + [pick["Mo"], pick["Cr"]], work, tmp_path / "out", 7,
+                          workers=1, progress=False)
+    assert [k for k in kinds if k in ("refine", "relax")] == ["refine", "relax"] * 2
+    assert kinds.count("label") == 2  # the new ones; W and V stayed put and keep theirs
+
+
 def test_a_refinement_result_replayed_after_a_crash_is_stored_once(tmp_path, monkeypatch):
     import prescreen.physics.dft as dft
     from prescreen.physics.labeller import RECORDS_FILE
