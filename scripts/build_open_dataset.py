@@ -64,7 +64,7 @@ if str(ROOT) not in sys.path:  # run as a plain script from a checkout
 from prescreen.errors import InputError  # noqa: E402
 from prescreen.io.atomic import replacing, write_json, write_text  # noqa: E402
 from prescreen.process import die_with_parent, folder_lock  # noqa: E402
-from prescreen.physics.dft import LATTICE_TOL, MAX_SCAN_EXTENSIONS, REFINE_STEP  # noqa: E402
+from prescreen.physics.dft import LATTICE_TOL, REFINE_STEP  # noqa: E402
 from prescreen.physics.parity import SYMPREC_A  # noqa: E402
 from prescreen.prototypes import (  # noqa: E402
     COVALENT_RADII_SOURCE,
