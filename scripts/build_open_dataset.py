@@ -134,7 +134,8 @@ RELAX_STEPS = 60
 #: carry no ``generation``) took the lattice from scans with the positions held
 #: fractional, which biases it toward the lattice at which they were relaxed; generation
 #: 2 refines it to zero in-plane stress after the coarse scan (``relax_monolayer``, stage
-#: 3). A build refines generation-1 records first and labels again those that moved.
+#: 3). A build refines generation-1 records, taking turns with new relaxations, and
+#: labels again those that moved.
 RELAX_GENERATION = 2
 #: What the ``lattice_scan`` column says of a generation-2 relaxation.
 REFINEMENT_TEXT = (f"refinement to zero in-plane stress (central differences of "
@@ -479,6 +480,8 @@ def _refine_one(ident: str, payload: dict[str, Any], kpt_density: float,
         why = str(exc) if isinstance(exc, _RefinementRefused) else f"{type(exc).__name__}: {exc}"
         rec["lattice_scan"] += f" (failed: {why})"
         rec["refine_failed"] = True
+        for key in ("lattice_residual", "lattice_cycles", "lattice_energies", "lattice_strain"):
+            rec.pop(key, None)  # they would describe a geometry that is not kept
         rec["refine_wall_s"] = round(time.perf_counter() - t0, 2)
     rec["wall_s"] = round(float(payload.get("wall_s") or 0.0) + rec["refine_wall_s"], 2)
     write_json(result_path, {"relax": rec, "label": label})
