@@ -430,6 +430,20 @@ def _needs_refinement(rec: dict[str, Any]) -> bool:
     return rec.get("status") == "ok" and int(rec.get("generation", 1)) < RELAX_GENERATION
 
 
+def _refined_record(old: dict[str, Any], spent_s: float,
+                    failed: str | None = None) -> dict[str, Any]:
+    """The generation-2 record of the scan-only relaxation ``old`` after a refinement
+    that took ``spent_s``; with ``failed``, the scan's result stands and says why."""
+    rec = {**old, "generation": RELAX_GENERATION, "scan_wall_s": old.get("wall_s"),
+           "refine_wall_s": round(spent_s, 2),
+           "wall_s": round(float(old.get("wall_s") or 0.0) + spent_s, 2),
+           "lattice_scan": f"{old.get('lattice_scan', 'coarse only')} + {REFINEMENT_TEXT} "
+                           "from the scan's result"}
+    if failed is not None:
+        rec.update(refine_failed=True, lattice_scan=f"{rec['lattice_scan']} (failed: {failed})")
+    return rec
+
+
 class _RefinementRefused(Exception):
     """A refinement whose result is not kept (the layer broke, or it did not converge)."""
 
@@ -446,18 +460,16 @@ def _refine_one(ident: str, payload: dict[str, Any], kpt_density: float,
 
     os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
     t0 = time.perf_counter()
-    rec = {k: v for k, v in payload.items() if k != "formula"}
-    rec.update(generation=RELAX_GENERATION, scan_wall_s=payload.get("wall_s"),
-               lattice_scan=f"{payload.get('lattice_scan', 'coarse only')} + {REFINEMENT_TEXT} "
-                            "from the scan's result")
-    label = None
+    found: dict[str, Any] = {}  # what the refinement changed, kept unless it failed
+    label, failed = None, None
     try:
         settings = LabelSettings(kpt_density=kpt_density, smearing_eV=RELAX_SMEARING_EV)
         details: dict[str, Any] = {}
         structure, residual, converged = relax_monolayer(
             structure_from_row(payload), settings, fmax=RELAX_FMAX, steps=RELAX_STEPS,
             refine_only=True, details=details)
-        rec.update(_lattice_fields(details), refine_wall_s=round(time.perf_counter() - t0, 2))
+        spent = time.perf_counter() - t0
+        found.update(_lattice_fields(details))
         if any(details["lattice_strain"]):  # moved: the new geometry, labelled again
             intact, why = check_intact_monolayer(structure)
             if not intact:  # the scan's result stands, said so
@@ -466,8 +478,8 @@ def _refine_one(ident: str, payload: dict[str, Any], kpt_density: float,
                 raise _RefinementRefused(
                     f"not converged (residual force {residual:.3f} eV/A, estimated distance "
                     f"from zero stress {details['lattice_residual']:.4f})")
-            rec.update(residual_fmax_eV_per_A=float(residual), converged=True,
-                       smearing_eV=RELAX_SMEARING_EV, **structure_columns(structure))
+            found.update(residual_fmax_eV_per_A=float(residual), converged=True,
+                         smearing_eV=RELAX_SMEARING_EV, **structure_columns(structure))
             t1 = time.perf_counter()
             try:
                 label = label_structure(structure, LabelSettings(), id=ident).as_dict()
@@ -477,13 +489,12 @@ def _refine_one(ident: str, payload: dict[str, Any], kpt_density: float,
                                            time.perf_counter() - t1).as_dict()
         # else: within the tolerance already; the labelled geometry stands
     except Exception as exc:  # the scan's result stands; said in the record, not retried
-        why = str(exc) if isinstance(exc, _RefinementRefused) else f"{type(exc).__name__}: {exc}"
-        rec["lattice_scan"] += f" (failed: {why})"
-        rec["refine_failed"] = True
-        for key in ("lattice_residual", "lattice_cycles", "lattice_energies", "lattice_strain"):
-            rec.pop(key, None)  # they would describe a geometry that is not kept
-        rec["refine_wall_s"] = round(time.perf_counter() - t0, 2)
-    rec["wall_s"] = round(float(payload.get("wall_s") or 0.0) + rec["refine_wall_s"], 2)
+        failed = str(exc) if isinstance(exc, _RefinementRefused) else f"{type(exc).__name__}: {exc}"
+        spent = time.perf_counter() - t0
+    old = {k: v for k, v in payload.items() if k != "formula"}
+    rec = _refined_record(old, spent, failed)
+    if failed is None:
+        rec.update(found)
     write_json(result_path, {"relax": rec, "label": label})
 
 
@@ -817,13 +828,8 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
         if "relax" not in result:  # the child left no result
             if "WorkerDied" in str(result.get("reason", "")):
                 return "refinement: worker died, left for the next run"
-            spent = float(result.get("wall_s") or 0.0)
-            rec = {**old, "generation": RELAX_GENERATION, "refine_failed": True,
-                   "scan_wall_s": old.get("wall_s"), "refine_wall_s": spent,
-                   "wall_s": round(float(old.get("wall_s") or 0.0) + spent, 2),
-                   "lattice_scan": f"{old.get('lattice_scan', 'coarse only')} + "
-                                   f"{REFINEMENT_TEXT} from the scan's result (failed: "
-                                   f"{result.get('reason', 'no result')})"}
+            rec = _refined_record(old, float(result.get("wall_s") or 0.0),
+                                  str(result.get("reason", "no result")))
             result = {"relax": rec, "label": None}
         rec, new_label = result["relax"], result.get("label")
         relax_by_id[ident] = rec

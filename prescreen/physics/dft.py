@@ -1131,8 +1131,8 @@ def relax_monolayer(structure: "Structure | Atoms",
             energies.append(trial.get_potential_energy())
         return np.array(energies)
 
-    def coarse(folder: Path) -> tuple[bool, dict[str, Any]]:
-        """Stages 1 and 2: pre-relaxation, coarse scan, positions relaxed at its lattice."""
+    def coarse(folder: Path) -> dict[str, Any]:
+        """Stages 1 and 2 up to the coarse lattice: pre-relaxation, coarse scan."""
         # A rough pre-relaxation at the input cell: the lattice is still off there, so
         # converging tightly would waste steps that the final relaxation repeats.
         pre_level = settings if pre_relax_basis is None else replace(
@@ -1156,20 +1156,16 @@ def relax_monolayer(structure: "Structure | Atoms",
         cell = np.array(atoms.cell)
         cell[:2] *= best
         atoms.set_cell(cell, scale_atoms=True)
-        ok = relax_positions(atoms, folder, "final", fmax, steps)
-        return ok, {"coarse_scales": [float(x) for x in scanned],
+        return {"coarse_scales": [float(x) for x in scanned],
                     "coarse_energies_eV": [float(e) for e in energies],
                     "coarse_edge": bool(edge)}
 
     with _run_in(workdir) as folder, _one_thread():
         try:
-            if refine_only:  # already relaxed by a scan: positions at its lattice, then refine
-                ok = relax_positions(atoms, folder, "final", fmax, steps)
-                found: dict[str, Any] = {}
-                lattice_ok = True
-            else:
-                ok, found = coarse(folder)
-                lattice_ok = not found["coarse_edge"]
+            # a structure relaxed before (refine_only) keeps its lattice here
+            found: dict[str, Any] = {} if refine_only else coarse(folder)
+            lattice_ok = not found.get("coarse_edge", False)
+            ok = relax_positions(atoms, folder, "final", fmax, steps)  # at this lattice
             if refine_step > 0:
                 ref = refine_lattice(
                     atoms, lambda a, tag, ref: attach(a, folder, tag, grid_of=ref),
