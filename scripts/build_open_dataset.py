@@ -64,7 +64,7 @@ if str(ROOT) not in sys.path:  # run as a plain script from a checkout
 from prescreen.errors import InputError  # noqa: E402
 from prescreen.io.atomic import replacing, write_json, write_text  # noqa: E402
 from prescreen.process import die_with_parent, folder_lock  # noqa: E402
-from prescreen.physics.dft import LATTICE_TOL, REFINE_STEP  # noqa: E402
+from prescreen.physics.dft import DEFAULT_PW_ECUT_EV, DEFAULT_VIRIAL_TOL_EV  # noqa: E402
 from prescreen.physics.parity import SYMPREC_A  # noqa: E402
 from prescreen.prototypes import (  # noqa: E402
     COVALENT_RADII_SOURCE,
@@ -86,8 +86,8 @@ __all__ = [
     "POSITIVE_THRESHOLD",
     "RELAX_KPT_DENSITY",
     "RELAX_SMEARING_EV",
-    "RELAX_SCALES",
-    "RELAX_SCAN_EXTENSIONS",
+    "RELAX_ECUT_EV",
+    "RELAX_GENERATION",
     "stratified_order",
     "build_pool",
     "relax_stage",
@@ -105,44 +105,40 @@ POSITIVE_THRESHOLD = 0.5
 #: common practice for geometry (forces converge faster in k than band inversions).
 RELAX_KPT_DENSITY = 2.5
 
-#: k-point density of the loose pre-relaxation that starts each relaxation (the scan and
-#: the final relaxation use RELAX_KPT_DENSITY). benchmarks/relax.py on 1T-TiS2: the same
-#: lattice constant (3.5062 against 3.5061 A) in 91 % of the time; the saving grows with
-#: the number of pre-relaxation steps (MXenes take a dozen). Chosen here.
-RELAX_PRE_KPT_DENSITY = 1.25
-
 #: Fermi-Dirac width (eV) of the relaxations: wider than the labels' 0.01 eV so that the
 #: self-consistency of metals and small-gap layers converges in fewer iterations
 #: (common practice for geometry; the labels keep 0.01 eV).
 RELAX_SMEARING_EV = 0.1
 
-#: In-plane scale factors the relaxation's lattice scan starts from, and the most points
-#: it adds past an edge (one step of 0.05 each). Starting lattices from summed covalent
-#: radii are off by -9 % to +14 % for known layers (tests/test_prototypes.py); the
-#: extensions reach +-30 %. For an energy curve with one minimum this finds the same three
-#: bracketing points, and so the same lattice, as a start from 0.90-1.10, with up to two
-#: energies fewer (tests/test_dft.py). Relaxations before 2026-12-03 started from
-#: (0.90, 0.95, 1.00, 1.05, 1.10) with up to 3 extensions (column `lattice_scan`).
-RELAX_SCALES = (0.95, 1.00, 1.05)
-RELAX_SCAN_EXTENSIONS = 5
+#: Plane-wave cutoff (eV), in-plane virial tolerance (eV per cell) and BFGS steps per
+#: attempt of the relaxations (``relax_monolayer_pw``); the cutoff from the convergence
+#: test in docs/labeller.md.
+RELAX_ECUT_EV = DEFAULT_PW_ECUT_EV
+RELAX_VIRIAL_TOL_EV = DEFAULT_VIRIAL_TOL_EV
+RELAX_PW_STEPS = 150
 
 #: Residual-force tolerance of the relaxations (eV/angstrom); common practice.
 RELAX_FMAX = 0.05
-#: Largest number of BFGS steps per position relaxation.
-RELAX_STEPS = 60
-#: Relaxation protocol of new records. Generation 1 (records before 2026-12-03, which
-#: carry no ``generation``) took the lattice from scans with the positions held
-#: fractional, which biases it toward the lattice at which they were relaxed; generation
-#: 2 refines it to zero in-plane stress after the coarse scan (``relax_monolayer``, stage
-#: 3). A build refines generation-1 records, taking turns with new relaxations, and
-#: labels again those that moved.
-RELAX_GENERATION = 2
-#: What the ``lattice_scan`` column says of a generation-2 relaxation.
-REFINEMENT_TEXT = (f"refinement to zero in-plane stress (central differences of "
-                   f"{REFINE_STEP}, stopped within {LATTICE_TOL})")
+#: Relaxation protocol of new records (column ``generation``):
+#:
+#: 1. (records before 2026-12-03, which carry no ``generation``) LCAO; the lattice from
+#:    energy scans with the positions held fractional, biased toward the lattice at
+#:    which they were relaxed;
+#: 2. (2026-12-03) LCAO; the same scans, then refined to zero in-plane stress by finite
+#:    differences of the energy (``relax_monolayer``);
+#: 3. (since 2026-12-03) plane waves with the stress tensor, positions and in-plane cell
+#:    in one BFGS run from the pool geometry (``relax_monolayer_pw``).
+#:
+#: A build relaxes the structures of older generations again, from their pool geometry,
+#: taking turns with new relaxations, and labels them again.
+RELAX_GENERATION = 3
+#: What the ``lattice_scan`` column says of a generation-3 relaxation.
+RELAX_TEXT = (f"stress tensor (plane waves, {RELAX_ECUT_EV:g} eV): BFGS over positions and "
+              f"in-plane strain to {RELAX_FMAX} eV/A and an in-plane virial below "
+              f"{RELAX_VIRIAL_TOL_EV} eV")
 
-#: Relaxation attempts per structure (a second one restarts from the first's result,
-#: which re-centres the lattice-constant scan when the first ended at its edge).
+#: Relaxation attempts per structure (a second one continues from the first's result
+#: when the first ran out of steps).
 RELAX_ATTEMPTS = 2
 
 #: Cells of at most this many atoms are relaxed and labelled first.
@@ -339,25 +335,22 @@ def stratified_order(pool: "pd.DataFrame", seed: int, max_atoms: int = DEFAULT_M
 
 
 # --- relaxation ---------------------------------------------------------------------
-def _relax_one(ident: str, row: dict[str, Any], kpt_density: float, result_path: str) -> None:
-    """Child process: relax one structure and write a JSON result file."""
+def _relaxation(ident: str, row: dict[str, Any], kpt_density: float) -> tuple[dict[str, Any], Any]:
+    """Relax one structure from ``row``'s geometry (``relax_monolayer_pw``); returns its
+    generation-3 record (any status) and the relaxed structure (None if it failed)."""
     from pymatgen.io.ase import AseAtomsAdaptor
 
-    from prescreen.physics.dft import LabelSettings, LayerBroke, relax_monolayer
+    from prescreen.physics.dft import LabelSettings, LayerBroke, relax_monolayer_pw
 
-    os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
     t0 = time.perf_counter()
     rec: dict[str, Any] = {"id": ident, "attempts": 0, "smearing_eV": RELAX_SMEARING_EV,
-                           "lattice_scan": f"coarse from {RELAX_SCALES} (extended by up to "
-                                           f"{RELAX_SCAN_EXTENSIONS} points past an edge) + "
-                                           f"{REFINEMENT_TEXT}",
-                           "pre_relax_kpt_density": RELAX_PRE_KPT_DENSITY,
+                           "lattice_scan": RELAX_TEXT, "ecut_eV": RELAX_ECUT_EV,
                            "generation": RELAX_GENERATION}
+    structure = None
     try:
         settings = LabelSettings(kpt_density=kpt_density, smearing_eV=RELAX_SMEARING_EV)
-        structure = structure_from_row(row)
-        converged, residual = False, math.nan
-        broke = ""
+        structure = start = structure_from_row(row)
+        converged, residual, broke, steps = False, math.nan, "", 0
         details: dict[str, Any] = {}
 
         def check(atoms: Any) -> str:
@@ -367,44 +360,46 @@ def _relax_one(ident: str, row: dict[str, Any], kpt_density: float, result_path:
             rec["attempts"] = attempt
             details.clear()
             try:
-                structure, residual, converged = relax_monolayer(
-                    structure, settings, fmax=RELAX_FMAX, steps=RELAX_STEPS,
-                    scales=RELAX_SCALES, max_extensions=RELAX_SCAN_EXTENSIONS,
-                    pre_relax_kpt_density=RELAX_PRE_KPT_DENSITY,
+                structure, residual, converged = relax_monolayer_pw(
+                    structure, settings, ecut_eV=RELAX_ECUT_EV, fmax=RELAX_FMAX,
+                    virial_tol_eV=RELAX_VIRIAL_TOL_EV, steps=RELAX_PW_STEPS,
                     check_layer=check, details=details)
-            except LayerBroke as exc:  # no lattice scan for a layer that is gone
-                structure, broke = exc.structure, f"after the pre-relaxation: {exc.reason}"
+            except LayerBroke as exc:
+                structure, broke = exc.structure, f"during the relaxation: {exc.reason}"
                 break
+            steps += int(details.get("steps", 0))
             if converged:
                 break
         intact, why = check_intact_monolayer(structure)
         why = broke or why
         intact = intact and not broke
         rec.update(residual_fmax_eV_per_A=float(residual), converged=bool(converged),
-                   **structure_columns(structure), **_lattice_fields(details))
+                   **structure_columns(structure))
+        if "virial_eV" in details:
+            rec.update(virial_eV=round(float(details["virial_eV"]), 5), bfgs_steps=steps,
+                       lattice_strain=[round(float(x), 6) for x in np.log(
+                           np.asarray(structure.lattice.abc[:2]) / start.lattice.abc[:2])])
         if not intact:
             rec.update(status="fell_apart", reason=why)
         elif not converged:
             rec.update(status="not_converged",
-                       reason=f"residual force {residual:.3f} eV/A, or the lattice not at zero "
-                              f"stress, after {RELAX_ATTEMPTS} attempts")
+                       reason=f"residual force {residual:.3f} eV/A or in-plane virial "
+                              f"{details.get('virial_eV', math.nan):.3f} eV above the "
+                              f"tolerances after {RELAX_ATTEMPTS} x {RELAX_PW_STEPS} steps")
         else:
             rec.update(status="ok", reason="")
     except Exception as exc:  # recorded, not raised: one failure must not stop the run
         rec.update(status="failed", reason=f"{type(exc).__name__}: {exc}",
                    traceback=traceback.format_exc(limit=3))
+        structure = None
     rec["wall_s"] = round(time.perf_counter() - t0, 2)
-    write_json(result_path, rec)
+    return rec, structure
 
 
-def _lattice_fields(details: dict[str, Any]) -> dict[str, Any]:
-    """The refinement's figures for a relaxation record (empty before stage 3 ran)."""
-    if "lattice_residual" not in details:
-        return {}
-    return {"lattice_residual": round(float(details["lattice_residual"]), 6),
-            "lattice_cycles": int(details["lattice_cycles"]),
-            "lattice_energies": int(details["lattice_energies"]),
-            "lattice_strain": [round(float(u), 6) for u in details["lattice_strain"]]}
+def _relax_one(ident: str, row: dict[str, Any], kpt_density: float, result_path: str) -> None:
+    """Child process: relax one structure and write a JSON result file."""
+    os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+    write_json(result_path, _relaxation(ident, row, kpt_density)[0])
 
 
 def _newest(records: Iterable[dict[str, Any]]) -> dict[str, dict[str, Any]]:
@@ -425,76 +420,41 @@ def _timed_out_below(rec: dict[str, Any], timeout_s: float) -> bool:
     return hit is not None and float(hit.group(1)) < timeout_s
 
 
-def _needs_refinement(rec: dict[str, Any]) -> bool:
-    """A successful relaxation of generation 1: its lattice came from scans alone."""
-    return rec.get("status") == "ok" and int(rec.get("generation", 1)) < RELAX_GENERATION
+def _older_generation(rec: dict[str, Any]) -> bool:
+    """A relaxation record of an earlier protocol than :data:`RELAX_GENERATION`."""
+    return int(rec.get("generation", 1)) < RELAX_GENERATION
 
 
-def _refined_record(old: dict[str, Any], spent_s: float,
-                    failed: str | None = None) -> dict[str, Any]:
-    """The generation-2 record of the scan-only relaxation ``old`` after a refinement
-    that took ``spent_s``; with ``failed``, the scan's result stands and says why."""
-    rec = {**old, "generation": RELAX_GENERATION, "scan_wall_s": old.get("wall_s"),
-           "refine_wall_s": round(spent_s, 2),
-           "wall_s": round(float(old.get("wall_s") or 0.0) + spent_s, 2),
-           "lattice_scan": f"{old.get('lattice_scan', 'coarse only')} + {REFINEMENT_TEXT} "
-                           "from the scan's result"}
-    if failed is not None:
-        rec.update(refine_failed=True, lattice_scan=f"{rec['lattice_scan']} (failed: {failed})")
-    return rec
+def _needs_upgrade(rec: dict[str, Any]) -> bool:
+    """A successful relaxation of an earlier protocol: relaxed and labelled again."""
+    return rec.get("status") == "ok" and _older_generation(rec)
 
 
-class _RefinementRefused(Exception):
-    """A refinement whose result is not kept (the layer broke, or it did not converge)."""
+def _earlier_wall_s(old: dict[str, Any] | None) -> float:
+    """Wall time of the relaxations that a new record of the same id replaces."""
+    if not old:
+        return 0.0
+    return round(float(old.get("wall_s") or 0.0) + float(old.get("earlier_wall_s") or 0.0), 2)
 
 
-def _refine_one(ident: str, payload: dict[str, Any], kpt_density: float,
-                result_path: str) -> None:
-    """Child process: refine a generation-1 relaxation to zero in-plane stress and, when
-    its lattice moved, label it again. Writes ``{"relax": ..., "label": ...}``: the new
-    relaxation record (the old one's fields, updated) and the new label record. The label
-    is None when the lattice did not move, or when the refinement failed, broke the layer
-    or did not converge (``refine_failed``, the reason in ``lattice_scan``): the scan's
-    geometry and its label then stand."""
-    from prescreen.physics.dft import LabelRecord, LabelSettings, label_structure, relax_monolayer
+def _upgrade_one(ident: str, payload: dict[str, Any], kpt_density: float,
+                 result_path: str) -> None:
+    """Child process: relax a structure of an earlier generation again, from its pool
+    geometry, and label the result. Writes ``{"relax": ..., "label": ...}``; the label is
+    None when the relaxation did not end in status ``ok``."""
+    from prescreen.physics.dft import LabelRecord, LabelSettings, label_structure
 
     os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
-    t0 = time.perf_counter()
-    found: dict[str, Any] = {}  # what the refinement changed, kept unless it failed
-    label, failed = None, None
-    try:
-        settings = LabelSettings(kpt_density=kpt_density, smearing_eV=RELAX_SMEARING_EV)
-        details: dict[str, Any] = {}
-        structure, residual, converged = relax_monolayer(
-            structure_from_row(payload), settings, fmax=RELAX_FMAX, steps=RELAX_STEPS,
-            refine_only=True, details=details)
-        spent = time.perf_counter() - t0
-        found.update(_lattice_fields(details))
-        if any(details["lattice_strain"]):  # moved: the new geometry, labelled again
-            intact, why = check_intact_monolayer(structure)
-            if not intact:  # the scan's result stands, said so
-                raise _RefinementRefused(f"the refined layer {why}")
-            if not converged:
-                raise _RefinementRefused(
-                    f"not converged (residual force {residual:.3f} eV/A, estimated distance "
-                    f"from zero stress {details['lattice_residual']:.4f})")
-            found.update(residual_fmax_eV_per_A=float(residual), converged=True,
-                         smearing_eV=RELAX_SMEARING_EV, **structure_columns(structure))
-            t1 = time.perf_counter()
-            try:
-                label = label_structure(structure, LabelSettings(), id=ident).as_dict()
-            except Exception as exc:  # recorded, not raised
-                label = LabelRecord.failed(ident, str(payload.get("formula", "?")),
-                                           LabelSettings(), f"{type(exc).__name__}: {exc}",
-                                           time.perf_counter() - t1).as_dict()
-        # else: within the tolerance already; the labelled geometry stands
-    except Exception as exc:  # the scan's result stands; said in the record, not retried
-        failed = str(exc) if isinstance(exc, _RefinementRefused) else f"{type(exc).__name__}: {exc}"
-        spent = time.perf_counter() - t0
-    old = {k: v for k, v in payload.items() if k != "formula"}
-    rec = _refined_record(old, spent, failed)
-    if failed is None:
-        rec.update(found)
+    rec, structure = _relaxation(ident, payload, kpt_density)
+    label = None
+    if rec["status"] == "ok":
+        t1 = time.perf_counter()
+        try:
+            label = label_structure(structure, LabelSettings(), id=ident).as_dict()
+        except Exception as exc:  # recorded, not raised
+            label = LabelRecord.failed(ident, str(payload.get("formula", "?")),
+                                       LabelSettings(), f"{type(exc).__name__}: {exc}",
+                                       time.perf_counter() - t1).as_dict()
     write_json(result_path, {"relax": rec, "label": label})
 
 
@@ -634,8 +594,8 @@ def _start(kind: str, ident: str, payload: dict[str, Any], tmpdir: Path,
     result.unlink(missing_ok=True)
     if kind == "relax":
         target, args = _relax_one, (ident, payload, kpt_density, str(result))
-    elif kind == "refine":
-        target, args = _refine_one, (ident, payload, kpt_density, str(result))
+    elif kind == "upgrade":
+        target, args = _upgrade_one, (ident, payload, kpt_density, str(result))
     elif kind == "z2":
         target, args = _z2_one, (ident, payload, str(result))
     else:
@@ -716,7 +676,8 @@ def pipeline_stage(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
     to half an hour). The parent is the only writer of both checkpoints
     (``<work>/relax.jsonl`` and the labeller's ``<work>/labels``; a lock file keeps a
     second build out); ``data_open/`` is packed after every ``pack_every`` labels (new
-    ones and relabels of refined structures) and at the end when anything changed. Resumes like the separate stages: results that
+    ones and labels of structures relaxed again) and at the end when anything changed.
+    Resumes like the separate stages: results that
     children finished before an interruption are collected, and structures relaxed but
     not labelled are labelled first. Children die with the parent. A failed relaxation
     is not tried again, except, with ``retry_timeouts``, one that hit a timeout shorter
@@ -752,9 +713,9 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
 
     Job kinds, in order of priority: the label of a finished relaxation, the Z2
     invariant of a new positive whose bands with SOC are apart at every k
-    (``<work>/z2.jsonl``; parities or Wilson loops), then, taking turns, the refinement
-    of a relaxation made by the scans alone (generation 1) and the next relaxation.
-    ``label=False`` relaxes only (and refines nothing).
+    (``<work>/z2.jsonl``; parities or Wilson loops), then, taking turns, the relaxation
+    and label anew of a structure relaxed by an earlier protocol (``upgrade``) and the
+    next relaxation. ``label=False`` relaxes only (and upgrades nothing).
     """
     from tqdm.auto import tqdm
 
@@ -795,14 +756,20 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
         nonlocal new_labels, changed, since_pack
         changed += 1
         if kind == "relax":
+            if "generation" not in rec:  # the child left no result: timeout or crash
+                rec = {**rec, "generation": RELAX_GENERATION, "lattice_scan": RELAX_TEXT}
+            earlier = _earlier_wall_s(newest_relax.get(ident))  # an older failure, redone
+            if earlier and rec.get("generation") == RELAX_GENERATION:
+                rec = {**rec, "earlier_wall_s": earlier}
             _append_jsonl(log, rec)
+            newest_relax[ident] = rec
             if label and rec.get("status") == "ok":
                 relax_by_id[ident] = rec
                 label_queue.append(rec)
                 bar.total += 1
             return f"relax {rec.get('status')}"
-        if kind == "refine":
-            return record_refinement(ident, rec)
+        if kind == "upgrade":
+            return record_upgrade(ident, rec)
         if kind == "z2":
             _append_jsonl(z2_log, rec)
             z2_ever.add(ident)
@@ -818,22 +785,32 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
         since_pack += 1
         return f"spillage {done.spillage:.3f}" if done.ok else "label failed"
 
-    def record_refinement(ident: str, result: dict[str, Any]) -> str:
-        """A refined generation-1 relaxation: its new label first, then the record (a
-        crash between the two replays the result on the next run, which then finds the
-        label stored already); a structure that kept its geometry is labelled, or gets
-        its Z2 job, now if it still lacks one."""
+    def record_upgrade(ident: str, result: dict[str, Any]) -> str:
+        """A structure of an earlier generation, relaxed again: its new label first, then
+        the record (a crash between the two replays the result on the next run, which
+        then finds the label stored already). The new record supersedes the old one
+        whatever its status; the old label goes with the old geometry."""
         nonlocal since_pack, new_labels
-        old = relax_by_id[ident]
+        old = newest_relax.get(ident)
         if "relax" not in result:  # the child left no result
             if "WorkerDied" in str(result.get("reason", "")):
-                return "refinement: worker died, left for the next run"
-            rec = _refined_record(old, float(result.get("wall_s") or 0.0),
-                                  str(result.get("reason", "no result")))
-            result = {"relax": rec, "label": None}
-        rec, new_label = result["relax"], result.get("label")
-        relax_by_id[ident] = rec
-        said = "label kept"
+                return "upgrade: worker died, left for the next run"
+            result = {"relax": {"id": ident, "status": "failed", "attempts": 0,
+                                "reason": str(result.get("reason", "no result")),
+                                "wall_s": float(result.get("wall_s") or 0.0),
+                                "lattice_scan": RELAX_TEXT, "generation": RELAX_GENERATION},
+                      "label": None}
+        rec = {**result["relax"], "earlier_wall_s": _earlier_wall_s(old)}
+        new_label = result.get("label")
+        if rec.get("status") == "ok":
+            relax_by_id[ident] = rec
+        else:
+            relax_by_id.pop(ident, None)
+        if ident in z2_ever:  # its invariant belongs to the old geometry
+            _append_jsonl(z2_log, {"id": ident, "status": "stale",
+                                   "reason": "the structure was relaxed again"})
+            z2_ever.discard(ident)
+        said = "no label"
         if new_label is not None:
             done = LabelRecord.from_dict(new_label)
             replay = replaying and newest_label_line.get(ident) == done.as_dict(arrays=False)
@@ -843,23 +820,12 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
                 since_pack += 1
                 if ident not in labels_now:  # its first label
                     new_labels += 1
-            if ident in z2_ever:  # its invariant belongs to the old geometry
-                _append_jsonl(z2_log, {"id": ident, "status": "stale",
-                                       "reason": "the structure was refined and relabelled"})
-                z2_ever.discard(ident)
             consider_z2(done)
             said = f"spillage {done.spillage:.3f}" if done.ok else "label failed"
-        elif ident not in labels_now:  # relaxed by the scans, never labelled: label it now
-            label_queue.append(rec)
-            bar.total += 1
-            said = "label next"
-        elif ident not in _z2_done(z2_log) and labels_now[ident].ok:
-            consider_z2(labels_now[ident])
         _append_jsonl(log, rec)
-        if rec.get("refine_failed"):
-            return f"refinement failed, scan's lattice kept; {said}"
+        newest_relax[ident] = rec
         strain = 100 * max((abs(u) for u in rec.get("lattice_strain", [0.0])), default=0.0)
-        return f"refined ({strain:.2f} %); {said}"
+        return f"relaxed again: {rec.get('status')} ({strain:.2f} % from the start); {said}"
 
     bar = tqdm(total=0, desc="relax + label" if label else "relaxing", unit="job",
                disable=not progress)
@@ -883,11 +849,11 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
             rec = json.loads(path.read_text(encoding="utf-8"))
         except (OSError, json.JSONDecodeError):
             rec = None
-        if kind in ("label", "z2", "refine") and store is None:
+        if kind in ("label", "z2", "upgrade") and store is None:
             continue  # a relax-only run leaves them for a run that labels
         if rec is not None and (
                 (kind == "relax" and ident not in relaxed)
-                or (kind == "refine" and _needs_refinement(newest_relax.get(ident, {})))
+                or (kind == "upgrade" and _needs_upgrade(newest_relax.get(ident, {})))
                 or (kind == "label" and ident not in labelled)
                 or (kind == "z2" and ident not in with_z2)):
             record(kind, ident, rec)
@@ -899,32 +865,34 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
     newest_relax = _newest(relax)
     labelled = store.status() if store is not None else {}
     labels_now = {r.id: r for r in _label_records(work)} if store is not None else {}
-    # a relaxation made by the scans alone is refined before its label and Z2 job
+    # a relaxation of an earlier generation is redone before its label and Z2 job
     label_queue[:] = [r for r in newest_relax.values() if label and r.get("status") == "ok"
-                      and r["id"] not in labelled and not _needs_refinement(r)]
+                      and r["id"] not in labelled and not _needs_upgrade(r)]
     if label:  # labels from before the Z2 jobs existed, or from an interrupted run
         with_z2 = _z2_done(z2_log) | {r["id"] for r in z2_queue}
         for done in labels_now.values():
             if (done.id not in with_z2 and done.id in relax_by_id
-                    and not _needs_refinement(relax_by_id[done.id])):
+                    and not _needs_upgrade(relax_by_id[done.id])):
                 consider_z2(done)
+    # failures of an earlier protocol are relaxed again like new structures
     done_ids = {i for i, r in _newest(relax).items()
-                if not (retry_timeouts and _timed_out_below(r, relax_timeout_s))}
+                if not (retry_timeouts and _timed_out_below(r, relax_timeout_s))
+                and (r.get("status") == "ok" or not _older_generation(r))}
     relax_queue = [i for i in ids if i not in done_ids]
-    # generation-1 relaxations, in the order they were made (a relax-only run leaves them)
-    # (not one whose Z2 job is queued already, from a label result collected above: its
-    # invariant would belong to the old geometry; the next run refines it)
+    # successful relaxations of an earlier generation, in the order they were made (a
+    # relax-only run leaves them), except one whose Z2 job is queued already from a label
+    # result collected above: the next run relaxes it again
     waiting = {r["id"] for r in z2_queue}
-    refine_queue = [r for r in newest_relax.values()
-                    if label and _needs_refinement(r) and r["id"] not in waiting]
-    bar.total = len(label_queue) + len(z2_queue) + len(refine_queue) + len(relax_queue)
+    upgrade_queue = [r["id"] for r in newest_relax.values()
+                     if label and _needs_upgrade(r) and r["id"] not in waiting]
+    bar.total = len(label_queue) + len(z2_queue) + len(upgrade_queue) + len(relax_queue)
     running: list[_Job] = []
-    # refinements of old relaxations and new relaxations take turns, so that neither the
+    # old structures relaxed again and new relaxations take turns, so that neither the
     # dataset's growth nor its upgrade waits for the other
-    started = {"refine": 0, "relax": 0}
+    started = {"upgrade": 0, "relax": 0}
     try:
-        while label_queue or z2_queue or refine_queue or relax_queue or running:
-            while len(running) < max(1, workers) and (label_queue or z2_queue or refine_queue
+        while label_queue or z2_queue or upgrade_queue or relax_queue or running:
+            while len(running) < max(1, workers) and (label_queue or z2_queue or upgrade_queue
                                                        or relax_queue):
                 if label_queue:
                     rec = label_queue.pop(0)
@@ -935,11 +903,13 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
                     rec = z2_queue.pop(0)
                     payload = {k: rec[k] for k in ("lattice", "species", "frac_coords")}
                     running.append(_start("z2", rec["id"], payload, tmpdir, kpt_density))
-                elif refine_queue and (not relax_queue or started["refine"] <= started["relax"]):
-                    started["refine"] += 1
-                    rec = refine_queue.pop(0)
-                    payload = {**rec, "formula": str(rows.loc[rec["id"], "reduced_formula"])}
-                    running.append(_start("refine", rec["id"], payload, tmpdir, kpt_density))
+                elif upgrade_queue and (not relax_queue
+                                        or started["upgrade"] <= started["relax"]):
+                    started["upgrade"] += 1
+                    ident = upgrade_queue.pop(0)
+                    payload = {**_relax_payload(rows, ident),
+                               "formula": str(rows.loc[ident, "reduced_formula"])}
+                    running.append(_start("upgrade", ident, payload, tmpdir, kpt_density))
                 else:
                     started["relax"] += 1
                     ident = relax_queue.pop(0)
@@ -947,7 +917,7 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
                                           kpt_density))
             time.sleep(0.2)
             for job in list(running):
-                limit = {"relax": relax_timeout_s, "refine": relax_timeout_s,
+                limit = {"relax": relax_timeout_s, "upgrade": relax_timeout_s,
                          "label": label_timeout_s,
                          "z2": Z2_TIMEOUT_FACTOR * label_timeout_s}[job.kind]
                 rec = _finished(job, limit)
@@ -1049,7 +1019,7 @@ def _labelled_table(pool: "pd.DataFrame", relax: Sequence[dict[str, Any]],
 
     z2 = z2 or {}
     meta = pool.set_index("id")
-    # the newest relaxation of each id (a refinement supersedes the scan's result)
+    # the newest relaxation of each id (a relaxation anew supersedes the earlier one)
     relax_by_id = {i: r for i, r in _newest(relax).items() if r.get("status") == "ok"}
     rows = []
     for rec in records:
@@ -1100,37 +1070,46 @@ def _relax_table(relax: Sequence[dict[str, Any]], records: Sequence[Any]) -> "pd
              "smearing_eV": float(r.get("smearing_eV", 0.01)),
              # relaxations recorded before the fine scan existed used the coarse scan only
              "lattice_scan": str(r.get("lattice_scan", "coarse only")),
-             # relaxations recorded before the coarse pre-relaxation used the scan's mesh
-             "pre_relax_kpt_density": float(r.get("pre_relax_kpt_density", RELAX_KPT_DENSITY)),
+             # relaxations recorded before the coarse pre-relaxation used the scan's mesh;
+             # those with the stress tensor (generation 3) have no pre-relaxation
+             "pre_relax_kpt_density": (math.nan if int(r.get("generation", 1)) >= 3 else
+                                       float(r.get("pre_relax_kpt_density", RELAX_KPT_DENSITY))),
              "generation": int(r.get("generation", 1)),
+             "ecut_eV": float(r.get("ecut_eV", math.nan)),
+             "virial_eV": float(r.get("virial_eV", math.nan)),
+             "bfgs_steps": int(r.get("bfgs_steps", 0)),
+             "earlier_wall_s": float(r.get("earlier_wall_s", 0.0)),
              "lattice_residual": float(r.get("lattice_residual", math.nan)),
              "lattice_cycles": int(r.get("lattice_cycles", 0)),
              "label_status": label_status.get(r["id"], "not labelled")}
             for r in _newest(relax).values()]
     cols = ["id", "status", "reason", "converged", "residual_fmax_eV_per_A", "attempts",
             "wall_s", "smearing_eV", "lattice_scan", "pre_relax_kpt_density", "generation",
-            "lattice_residual", "lattice_cycles", "label_status"]
+            "ecut_eV", "virial_eV", "bfgs_steps", "earlier_wall_s", "lattice_residual",
+            "lattice_cycles", "label_status"]
     return pd.DataFrame(rows, columns=cols).sort_values("id").reset_index(drop=True)
 
 
-def _refined_text(relax: "pd.DataFrame", labelled: "pd.DataFrame") -> str:
-    """What the datasheet says of the lattice protocols of the kept relaxations."""
+def _generations_text(relax: "pd.DataFrame") -> str:
+    """What the datasheet says of the relaxation protocols of the kept relaxations."""
     if not len(relax) or "generation" not in relax:
         return ""
     ok = relax[relax["status"] == "ok"]
-    old = int((ok["generation"] < RELAX_GENERATION).sum())
-    refined = ok["lattice_scan"].str.contains("from the scan's result", regex=False)
-    failed = ok["lattice_scan"].str.contains("(failed:", regex=False)
-    if not old and not refined.any():  # every relaxation made with the refinement
+    count = ok["generation"].value_counts().to_dict()
+    old = sum(n for g, n in count.items() if g < RELAX_GENERATION)
+    redone = int(((relax["generation"] == RELAX_GENERATION)
+                  & (relax["earlier_wall_s"] > 0)).sum())
+    if not old and not redone:
         return ""
-    text = (f"Relaxations before 2026-12-03 took the lattice from the scans alone (a coarse "
-            f"scan, and for most a three-point finer one), biased toward the lattice at which the "
-            f"positions were relaxed; {int((refined & ~failed).sum())} of them have since been "
-            f"refined from their result, and labelled again where the lattice moved")
-    if failed.any():
-        text += f"; for {int(failed.sum())} the refinement failed and the scan's lattice stands"
+    text = (f"{redone} structures relaxed by an earlier protocol have been relaxed again this "
+            f"way, from their pool geometry, and labelled again")
     if old:
-        text += f"; {old} still wait for it (generation 1)"
+        text += (f"; {old} kept relaxations still come from an earlier protocol and wait for "
+                 f"it: {count.get(2, 0)} of generation 2 (LCAO, the lattice from energy scans "
+                 f"with the positions held fractional, then refined to zero in-plane stress "
+                 f"by finite differences of the energy) and {count.get(1, 0)} of generation 1 "
+                 f"(LCAO, the scans alone, biased toward the lattice at which the positions "
+                 f"were relaxed)")
     return text + "."
 
 
@@ -1182,6 +1161,9 @@ def datasheet(pool: "pd.DataFrame", labelled: "pd.DataFrame", relax: "pd.DataFra
     status = relax["status"].value_counts().to_dict() if len(relax) else {}
     core_h = float(labelled["core_hours"].sum()) if n_lab else 0.0
     relax_h = float(relax["wall_s"].fillna(0).sum()) / 3600.0 if len(relax) else 0.0
+    earlier_h = (float(relax["earlier_wall_s"].fillna(0).sum()) / 3600.0
+                 if len(relax) and "earlier_wall_s" in relax else 0.0)
+    current = relax[relax["generation"] == RELAX_GENERATION] if len(relax) else relax
     lab_by_proto = labelled.groupby("prototype") if n_lab else None
     proto_rows = []
     for p in PROTOTYPES:
@@ -1206,9 +1188,11 @@ def datasheet(pool: "pd.DataFrame", labelled: "pd.DataFrame", relax: "pd.DataFra
     status_text = ", ".join(f"{k}: {v}" for k, v in sorted(status.items())) or "none yet"
     resid = (f"{relax.loc[relax['status'] == 'ok', 'residual_fmax_eV_per_A'].max():.3f}"
              if status.get("ok") else "n/a")
-    refined_text = _refined_text(relax, labelled)
+    generations_text = _generations_text(relax)
     superseded_text = (f" (and {superseded_h:.2f} more for labels since replaced by a label "
-                       "of the refined geometry)" if superseded_h > 0 else "")
+                       "of a new geometry)" if superseded_h > 0 else "")
+    earlier_text = (f" (and {earlier_h:.2f} more for relaxations since done again)"
+                    if earlier_h > 0 else "")
     return f"""# data_open: generated monolayers with spin-orbit spillage labels
 
 Licence: **{LICENCE}** (Creative Commons Attribution 4.0 International,
@@ -1243,8 +1227,9 @@ numbers by hand (the integrity test checks the file's hash).*
   with spin-orbit coupling, the others are metals.
 - Z2 of the positives: {z2_text}.
 - Compute: {core_h:.2f} core-hours of labelling{superseded_text} and {relax_h:.2f}
-  core-hours of relaxation (wall time of single-core jobs, on a shared machine); median per
-  structure: {_median(relax["wall_s"])} s to relax, {_median(labelled["wall_s"])} s to label.
+  core-hours of relaxation{earlier_text} (wall time of single-core jobs, on a shared
+  machine); median per structure: {_median(current["wall_s"])} s to relax (generation
+  {RELAX_GENERATION}), {_median(labelled["wall_s"])} s to label.
 
 ## How it was made
 
@@ -1264,27 +1249,20 @@ python scripts/build_open_dataset.py --seed {seed} --workers 2    # or: make dat
    decoration)>` are this project's own.
 2. **Subset**: cells of at most {DEFAULT_MAX_ATOMS} atoms first; prototypes take turns and each
    turn takes the candidate whose elements are least covered so far (seeded order).
-3. **Relaxation** (`prescreen.physics.dft.relax_monolayer`): GPAW LCAO, PBE, dzp basis,
-   k-point density {RELAX_KPT_DENSITY} per reciprocal angstrom ({RELAX_PRE_KPT_DENSITY} for the
-   loose pre-relaxation of later relaxations; column `pre_relax_kpt_density`), Fermi-Dirac width
-   {RELAX_SMEARING_EV} eV (the first relaxations used 0.01 eV; the width of each is in
-   `{RELAX_PARQUET}`, column `smearing_eV`); positions by BFGS to
-   {RELAX_FMAX} eV/A (at most {RELAX_STEPS} steps); in-plane lattice first by an isotropic
-   energy scan from scales {RELAX_SCALES} with the positions held fractional (extended in
-   steps of 0.05 by up to {RELAX_SCAN_EXTENSIONS} more points while the lowest energy lies
-   at an edge; parabola fit), then, with the positions relaxed there, refined to zero
-   in-plane stress: GPAW's LCAO mode has no stress tensor, so the stress comes from central
-   differences of the energy (strain {REFINE_STEP}) at relaxed positions, and quasi-Newton
-   steps with a position relaxation after each stop when the estimated distance from zero
-   stress is below {LATTICE_TOL} (columns `generation` = {RELAX_GENERATION},
-   `lattice_residual`, `lattice_cycles`). Cells with unequal in-plane lengths refine
-   `a` and `b` separately, so their aspect ratio relaxes too; the angle between them
-   is kept. {refined_text} Up to {RELAX_ATTEMPTS} attempts. Structures that do not converge,
-   or that are no longer one bonded, 2-periodic sheet with at least 8 A of vacuum
-   (covalent radii x 1.25 bond test), are recorded in `{RELAX_PARQUET}` and left out;
-   since 2026-12-02 the test also runs after the pre-relaxation, and a layer that fails
-   it there is recorded at that point without a lattice scan (reason "after the
-   pre-relaxation: ...").
+3. **Relaxation** (`prescreen.physics.dft.relax_monolayer_pw`, generation
+   {RELAX_GENERATION} in `{RELAX_PARQUET}`): the labels' functional (PBE) and PAW setups in GPAW's
+   plane-wave mode ({RELAX_ECUT_EV:g} eV cutoff), which has the stress tensor; k-point density
+   {RELAX_KPT_DENSITY} per reciprocal angstrom, Fermi-Dirac width {RELAX_SMEARING_EV} eV.
+   From the pool geometry, one BFGS run over the positions and the in-plane strain
+   (ASE's `FrechetCellFilter`, strains xx, yy and xy free, so the angle between the
+   in-plane vectors can change; the out-of-plane vector and so the vacuum are kept) until
+   every force is below {RELAX_FMAX} eV/A and the in-plane virial (the derivative of the
+   energy with respect to an in-plane strain) below {RELAX_VIRIAL_TOL_EV} eV per cell, at
+   most {RELAX_PW_STEPS} steps per attempt, up to {RELAX_ATTEMPTS} attempts (columns
+   `virial_eV`, `bfgs_steps`, `ecut_eV`). Structures that do not converge, or that are no
+   longer one bonded, 2-periodic sheet with at least 8 A of vacuum (covalent radii x
+   1.25 bond test, also run every 10 steps), are recorded in `{RELAX_PARQUET}` and left
+   out. {generations_text}
 4. **Labels** (`prescreen.physics.labeller.run_labelling` with default
    `LabelSettings`): LCAO PBE dzp ground state, Gamma-centred k mesh (hexagonal meshes
    contain K), Fermi-Dirac smearing, spin-orbit coupling added non-self-consistently,
@@ -1324,9 +1302,15 @@ Versions: {ver}.
   appear or vanish with a better functional or basis.
 - Spin-paired calculations: magnetic ground states are not sought; labels of magnetic
   compounds describe the non-magnetic state.
-- The relaxation keeps the angle between the in-plane lattice vectors, and hexagonal and
-  square cells stay so; distorted phases (1T') keep their starting distortion pattern.
-  Relaxations of generation 1 (column `generation`) have lattices from scans alone.
+- Each relaxation finds the minimum nearest its pool geometry: symmetric starts keep
+  their symmetry (hexagonal and square cells stay so), distorted phases (1T') keep their
+  starting distortion pattern, and a layer with more than one minimum may end in one
+  that is not the lowest.
+- The geometries are plane-wave PBE and the labels LCAO (dzp) PBE: at a relaxed geometry
+  the LCAO forces are not zero (the dzp basis gives silicene a buckling of 0.53 A where
+  plane waves give 0.45 A).
+- Relaxations of generations 1 and 2 (column `generation`), where any remain, are LCAO
+  relaxations without the stress tensor.
 - A high spillage is a strong hint of a band inversion, not a proof of a topological
   phase; confirm with an invariant.
 - The labelled subset is stratified over prototypes and elements but biased towards

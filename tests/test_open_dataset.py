@@ -238,9 +238,9 @@ def test_stratified_order_small_cells_first_and_prototypes_take_turns(pool):
     assert driver.stratified_order(pool, seed=1) == order  # same seed, same order
 
 
-def _fake_relax(structure, settings, *, fmax, steps, scales, max_extensions=3,
-                pre_relax_kpt_density=None, check_layer=None, details=None):
-    """Stand-in for relax_monolayer: behaviour chosen by the first element."""
+def _fake_relax(structure, settings, *, ecut_eV, fmax, virial_tol_eV, steps, check_layer=None,
+                details=None):
+    """Stand-in for relax_monolayer_pw: behaviour chosen by the first element."""
     import time as _time
 
     from pymatgen.io.ase import AseAtomsAdaptor
@@ -255,7 +255,7 @@ def _fake_relax(structure, settings, *, fmax, steps, scales, max_extensions=3,
     if symbol in ("Cr", "V"):  # pull one atom 6 A off the layer
         broken = structure.copy()
         broken.translate_sites([1], [0, 0, 6.0], frac_coords=False)
-        if symbol == "V":  # found by the check after the pre-relaxation, as relax_monolayer does
+        if symbol == "V":  # found by the check during the relaxation, as relax_monolayer_pw does
             reason = check_layer(AseAtomsAdaptor.get_atoms(broken))
             raise LayerBroke(f"broke: {reason}", reason, broken)
         return broken, 0.01, True
@@ -269,7 +269,7 @@ def test_relax_stage_records_outcomes_and_resumes(tmp_path, monkeypatch):
     from prescreen.prototypes import generate_pool, pool_table
 
     driver = _driver()
-    monkeypatch.setattr(dft, "relax_monolayer", _fake_relax)  # inherited by forked workers
+    monkeypatch.setattr(dft, "relax_monolayer_pw", _fake_relax)  # inherited by forked workers
     table = pool_table(generate_pool(prototypes=["MX2-2H"], match_structures=False, progress=False))
     pick = {json.loads(d)["M"]: i for d, i in zip(table["decoration"], table["id"])
             if json.loads(d)["X"] == "S"}
@@ -282,7 +282,7 @@ def test_relax_stage_records_outcomes_and_resumes(tmp_path, monkeypatch):
     assert "SCF did not converge" in reasons[pick["Nb"]]
     assert "Timeout: no result within 5 s" in reasons[pick["Ti"]]
     assert "bonded pieces" in reasons[pick["Cr"]]
-    assert reasons[pick["V"]].startswith("after the pre-relaxation: fell apart into 2 bonded")
+    assert reasons[pick["V"]].startswith("during the relaxation: fell apart into 2 bonded")
     assert next(r for r in records if r["id"] == pick["V"])["attempts"] == 1  # not retried
     ok = next(r for r in records if r["status"] == "ok")
     assert ok["residual_fmax_eV_per_A"] == pytest.approx(0.01)
@@ -309,10 +309,10 @@ def test_only_timeouts_shorter_than_the_current_one_are_retried_when_asked(tmp_p
     pick = {json.loads(d)["M"]: i for d, i in zip(table["decoration"], table["id"])
             if json.loads(d)["X"] == "S"}
     ids = [pick["Ti"], pick["Nb"]]
-    monkeypatch.setattr(dft, "relax_monolayer", _fake_relax)  # Ti sleeps 30 s, Nb raises
+    monkeypatch.setattr(dft, "relax_monolayer_pw", _fake_relax)  # Ti sleeps 30 s, Nb raises
     first = driver.relax_stage(table, ids, tmp_path, workers=2, timeout_s=2, progress=False)
     assert [r["status"] for r in first] == ["failed", "failed"]
-    monkeypatch.setattr(dft, "relax_monolayer", lambda s, *a, **k: (s, 0.01, True))
+    monkeypatch.setattr(dft, "relax_monolayer_pw", lambda s, *a, **k: (s, 0.01, True))
     # not asked, or no longer limit: nothing is run again
     assert driver.relax_stage(table, ids, tmp_path, timeout_s=60, progress=False) == first
     assert driver.relax_stage(table, ids, tmp_path, timeout_s=2, retry_timeouts=True,
@@ -344,7 +344,7 @@ def test_pipeline_labels_each_relaxed_structure_once_and_resumes(tmp_path, monke
     from prescreen.prototypes import generate_pool, pool_table
 
     driver = _driver()
-    monkeypatch.setattr(dft, "relax_monolayer", lambda s, *a, **k: (s, 0.01, True))
+    monkeypatch.setattr(dft, "relax_monolayer_pw", lambda s, *a, **k: (s, 0.01, True))
     monkeypatch.setattr(dft, "label_structure", _fake_label)  # inherited by forked workers
     packs = []
     monkeypatch.setattr(driver, "pack_stage", lambda out, work, seed: packs.append(seed))
@@ -371,42 +371,52 @@ def test_pipeline_labels_each_relaxed_structure_once_and_resumes(tmp_path, monke
     assert len(driver._read_jsonl(work / "relax.jsonl")) == 5
 
 
-def _fake_refine(structure, settings, *, fmax, steps, refine_only=False, details=None,
-                 **kwargs):
-    """Stand-in for relax_monolayer(refine_only=True), by the metal: Mo moves by +2 % in
-    a; W and V are at zero stress already; Nb raises; Zr does not converge; Ti takes
-    longer than any timeout in these tests."""
+def _fake_pw(structure, settings, *, ecut_eV, fmax, virial_tol_eV, steps, check_layer=None,
+             details=None):
+    """Stand-in for relax_monolayer_pw, by the metal: Mo's lattice grows by 2 %, W's stays;
+    Nb raises; Zr does not converge; Ti takes longer than any timeout in these tests."""
     import time as _time
 
     from pymatgen.core import Lattice, Structure
 
-    assert refine_only
     symbol = structure[0].specie.symbol
     if symbol == "Nb":
         raise RuntimeError("SCF did not converge")
     if symbol == "Ti":
         _time.sleep(30)
     strain = {"Mo": 0.02, "Zr": 0.05}.get(symbol, 0.0)
-    details.update(lattice_strain=[strain], lattice_residual=0.001, lattice_cycles=2,
-                   lattice_energies=4, lattice_converged=symbol != "Zr")
+    details.update(steps=7, virial_eV=0.01, lattice_strain=[strain, strain], ecut_eV=ecut_eV,
+                   lattice_converged=symbol != "Zr")
     matrix = structure.lattice.matrix.copy()
     matrix[:2] *= 1 + strain  # in-plane, positions fractional
     moved = Structure(Lattice(matrix), structure.species, structure.frac_coords)
     return moved, 0.02, symbol != "Zr"
 
 
-def _scan_only(record):
-    """A relaxation record as written before 2026-12-03: no generation."""
-    return {k: v for k, v in record.items() if k != "generation"} | {"wall_s": 100.0}
+def _older(record, generation):
+    """A relaxation record as an earlier protocol wrote it: generation 1 (no field, as
+    before 2026-12-03) or 2; its lattice 1 % off the pool's, 100 s of wall time."""
+    from pymatgen.core import Lattice, Structure
+
+    from prescreen.prototypes import structure_columns, structure_from_row
+
+    s = structure_from_row(record)
+    off = Structure(Lattice(s.lattice.matrix * [[1.01], [1.01], [1.0]]), s.species,
+                    s.frac_coords)
+    rec = {k: v for k, v in record.items()
+           if k not in ("generation", "ecut_eV", "virial_eV", "bfgs_steps")}
+    rec.update(structure_columns(off), wall_s=100.0)
+    return rec if generation == 1 else {**rec, "generation": 2}
 
 
-def test_scan_only_relaxations_are_refined_and_relabelled_where_they_moved(tmp_path,
-                                                                           monkeypatch):
+def test_structures_of_earlier_protocols_are_relaxed_again_and_relabelled(tmp_path,
+                                                                          monkeypatch):
     import prescreen.physics.dft as dft
     from prescreen.physics.labeller import RECORDS_FILE, load_records
+    from prescreen.prototypes import structure_from_row
 
     driver = _driver()
-    monkeypatch.setattr(dft, "relax_monolayer", lambda s, *a, **k: (s, 0.01, True))
+    monkeypatch.setattr(dft, "relax_monolayer_pw", lambda s, *a, **k: (s, 0.01, True))
     monkeypatch.setattr(dft, "label_structure", _fake_label)
     monkeypatch.setattr(driver, "pack_stage", lambda out, work, seed: None)
     table, pick = _mx2_sulfides()
@@ -414,81 +424,81 @@ def test_scan_only_relaxations_are_refined_and_relabelled_where_they_moved(tmp_p
     work = tmp_path / "work"
     driver.pipeline_stage(table, labelled_first, work, tmp_path / "out", 7, workers=2,
                           progress=False)
-    # make them scan-only relaxations, as recorded before 2026-12-03, except Cr's; V was
-    # relaxed by the scans but never labelled; Mo has a Z2 record from its old geometry
+    # make them relaxations of earlier protocols, except Cr's; V was relaxed by generation
+    # 1 but never labelled; Hf's generation-1 relaxation failed; Mo has a Z2 record
     log = work / "relax.jsonl"
     old = driver._read_jsonl(log)
-    log.write_text("".join(json.dumps(r if r["id"] == pick["Cr"] else _scan_only(r)) + "\n"
+    log.write_text("".join(json.dumps(r if r["id"] == pick["Cr"] else
+                                      _older(r, 2 if r["id"] == pick["W"] else 1)) + "\n"
                            for r in old))
-    w_record = next(r for r in old if r["id"] == pick["W"])  # a W layer: stays put
-    driver._append_jsonl(log, _scan_only({**w_record, "id": pick["V"]}))
+    driver._append_jsonl(log, _older({**old[0], "id": pick["V"]}, 1))
+    driver._append_jsonl(log, {"id": pick["Hf"], "status": "failed", "reason": "SCF",
+                               "wall_s": 50.0})
     driver._append_jsonl(work / driver.Z2_LOG, {"id": pick["Mo"], "status": "ok", "z2": 1})
     labels_before = (work / "labels" / RECORDS_FILE).read_text().count("\n")
-    ids = labelled_first + [pick["V"]]
+    ids = labelled_first + [pick["V"], pick["Hf"]]
 
-    monkeypatch.setattr(dft, "relax_monolayer", _fake_refine)
+    monkeypatch.setattr(dft, "relax_monolayer_pw", _fake_pw)
     assert driver.pipeline_stage(table, ids, work, tmp_path / "out", 7, workers=2,
-                                 relax_timeout_s=3, progress=False) == 1  # V's first label
+                                 relax_timeout_s=3, progress=False) == 2  # V's, Hf's first
     newest = driver._newest(driver._read_jsonl(log))
-    assert {i: r["generation"] for i, r in newest.items()} == {i: 2 for i in ids}
-    first = {r["id"]: r for r in old}
+    assert {i: r["generation"] for i, r in newest.items()} == {i: 3 for i in ids}
+    pool_a = {i: structure_from_row(table.set_index("id").loc[i]).lattice.a for i in ids}
     mo = newest[pick["Mo"]]
-    assert mo["a_A"] == pytest.approx(first[pick["Mo"]]["a_A"] * 1.02)
-    assert mo["lattice_strain"] == [0.02] and "from the scan's result" in mo["lattice_scan"]
-    assert mo["scan_wall_s"] == 100.0
-    assert mo["wall_s"] == pytest.approx(100.0 + mo["refine_wall_s"], abs=0.01)
-    assert newest[pick["W"]]["lattice"] == first[pick["W"]]["lattice"]  # kept its geometry
-    # failures keep the scan's geometry and label, say why, and count the compute
-    for metal, why in (("Nb", "RuntimeError: SCF did not converge"),
-                       ("Zr", "not converged"), ("Ti", "Timeout: no result within 3 s")):
+    # from the pool geometry, not from the old record's (1 % off)
+    assert mo["a_A"] == pytest.approx(pool_a[pick["Mo"]] * 1.02)
+    assert mo["lattice_strain"] == pytest.approx([np.log(1.02)] * 2, abs=1e-6)  # rounded
+    assert mo["earlier_wall_s"] == 100.0 and mo["virial_eV"] == 0.01
+    assert newest[pick["W"]]["a_A"] == pytest.approx(pool_a[pick["W"]])
+    assert newest[pick["Hf"]]["status"] == "ok" and newest[pick["Hf"]]["earlier_wall_s"] == 50.0
+    # failures supersede the old record too: the structure leaves the labelled table
+    for metal, status, why in (("Nb", "failed", "RuntimeError: SCF did not converge"),
+                               ("Zr", "not_converged", "above the tolerances"),
+                               ("Ti", "failed", "Timeout: no result within 3 s")):
         rec = newest[pick[metal]]
-        assert rec["status"] == "ok" and rec["refine_failed"], metal
-        assert f"(failed: {why}" in rec["lattice_scan"], metal
-        assert rec["lattice"] == first[pick[metal]]["lattice"], metal
-        assert "lattice_residual" not in rec, metal  # it would describe another geometry
-    assert newest[pick["Ti"]]["wall_s"] >= 103.0  # the timed-out refinement's 3 s count
+        assert rec["status"] == status and why in rec["reason"], metal
+        assert rec["earlier_wall_s"] == 100.0, metal
     lines = [json.loads(x) for x in (work / "labels" / RECORDS_FILE).read_text().splitlines()]
-    assert sorted(d["id"] for d in lines[labels_before:]) == sorted([pick["Mo"], pick["V"]])
+    assert sorted(d["id"] for d in lines[labels_before:]) == sorted(
+        pick[m] for m in ("Mo", "W", "V", "Hf"))
     z2 = driver._newest(driver._read_jsonl(work / driver.Z2_LOG))
     assert z2[pick["Mo"]]["status"] == "stale"  # belonged to the old geometry
     label = next(r for r in load_records(work / "labels") if r.id == pick["Mo"])
     assert driver._z2_columns(z2, label)["z2"] is None
+    labelled = driver._labelled_table(table, driver._read_jsonl(log),
+                                      load_records(work / "labels"))
+    assert sorted(labelled["id"]) == sorted(pick[m] for m in ("Mo", "W", "Cr", "V", "Hf"))
     # the tables keep one row per structure, the newest; the datasheet says what happened
     relax_df = driver._relax_table(driver._read_jsonl(log), load_records(work / "labels"))
-    assert sorted(relax_df["id"]) == sorted(ids) and set(relax_df["generation"]) == {2}
-    said = driver._refined_text(relax_df, None)
-    assert "3 of them have since been refined" in said  # Mo, W, V
-    assert "for 3 the refinement failed" in said and "wait for it" not in said
-    # the replaced label's compute is still counted, once
-    assert driver._superseded_label_hours(work) == pytest.approx(1 / 3600)
+    assert sorted(relax_df["id"]) == sorted(ids) and set(relax_df["generation"]) == {3}
+    said = driver._generations_text(relax_df)
+    assert said.startswith("7 structures relaxed by an earlier protocol have been relaxed")
+    assert "wait for it" not in said
+    assert relax_df["earlier_wall_s"].sum() == pytest.approx(6 * 100.0 + 50.0)
+    # the replaced labels' compute is still counted, once (Mo's and W's)
+    assert driver._superseded_label_hours(work) == pytest.approx(2 / 3600)
     # --stage label labels the newest geometry of each id, once (here: nothing new)
     summary = driver.label_stage(driver._read_jsonl(log), work, progress=False)
-    assert (summary.n_jobs, summary.n_ok + summary.n_failed) == (len(ids), 0)
-    # rerun: nothing is refined again
+    assert (summary.n_jobs, summary.n_ok + summary.n_failed) == (5, 0)
+    # rerun: nothing is relaxed again
     before = log.read_text()
     driver.pipeline_stage(table, ids, work, tmp_path / "out", 7, workers=1, progress=False)
     assert log.read_text() == before
 
 
-def test_refinements_and_new_relaxations_take_turns(tmp_path, monkeypatch):
+def test_upgrades_and_new_relaxations_take_turns(tmp_path, monkeypatch):
     import prescreen.physics.dft as dft
 
     driver = _driver()
     monkeypatch.setattr(dft, "label_structure", _fake_label)
     monkeypatch.setattr(driver, "pack_stage", lambda out, work, seed: None)
+    monkeypatch.setattr(dft, "relax_monolayer_pw", _fake_pw)
     table, pick = _mx2_sulfides()
     work = tmp_path / "work"
-
-    def relax_or_refine(structure, settings, *, refine_only=False, details=None, **kw):
-        if refine_only:
-            return _fake_refine(structure, settings, refine_only=True, details=details, **kw)
-        return structure, 0.01, True
-
-    monkeypatch.setattr(dft, "relax_monolayer", relax_or_refine)
     old_ids = [pick["W"], pick["V"]]
     driver.pipeline_stage(table, old_ids, work, tmp_path / "out", 7, progress=False)
     log = work / "relax.jsonl"
-    log.write_text("".join(json.dumps(_scan_only(r)) + "\n" for r in driver._read_jsonl(log)))
+    log.write_text("".join(json.dumps(_older(r, 2)) + "\n" for r in driver._read_jsonl(log)))
     kinds = []
     real_start = driver._start
 
@@ -499,37 +509,35 @@ def test_refinements_and_new_relaxations_take_turns(tmp_path, monkeypatch):
     monkeypatch.setattr(driver, "_start", spy)
     driver.pipeline_stage(table, old_ids + [pick["Mo"], pick["Cr"]], work, tmp_path / "out", 7,
                           workers=1, progress=False)
-    assert [k for k in kinds if k in ("refine", "relax")] == ["refine", "relax"] * 2
-    assert kinds.count("label") == 2  # the new ones; W and V stayed put and keep theirs
+    assert [k for k in kinds if k in ("upgrade", "relax")] == ["upgrade", "relax"] * 2
+    assert kinds.count("label") == 2  # the new ones; W and V were labelled in their job
 
 
-def test_a_refinement_result_replayed_after_a_crash_is_stored_once(tmp_path, monkeypatch):
+def test_an_upgrade_result_replayed_after_a_crash_is_stored_once(tmp_path, monkeypatch):
     import prescreen.physics.dft as dft
-    from prescreen.physics.labeller import RECORDS_FILE
+    from prescreen.physics.dft import LabelRecord, LabelSettings
+    from prescreen.physics.labeller import RECORDS_FILE, RecordStore
 
     driver = _driver()
-    monkeypatch.setattr(dft, "relax_monolayer", lambda s, *a, **k: (s, 0.01, True))
+    monkeypatch.setattr(dft, "relax_monolayer_pw", lambda s, *a, **k: (s, 0.01, True))
     monkeypatch.setattr(dft, "label_structure", _fake_label)
     monkeypatch.setattr(driver, "pack_stage", lambda out, work, seed: None)
     table, pick = _mx2_sulfides()
     work = tmp_path / "work"
     driver.pipeline_stage(table, [pick["Mo"]], work, tmp_path / "out", 7, progress=False)
     log = work / "relax.jsonl"
-    scan = _scan_only(driver._read_jsonl(log)[0])
-    log.write_text(json.dumps(scan) + "\n")
+    log.write_text(json.dumps(_older(driver._read_jsonl(log)[0], 1)) + "\n")
     # the parent stored the new label, then died before writing the relaxation record
-    monkeypatch.setattr(dft, "relax_monolayer", _fake_refine)
-    result = work / "relax_tmp" / f"refine-{pick['Mo']}.json"
-    driver._refine_one(pick["Mo"], {**scan, "formula": "MoS2"}, 2.5, str(result))
-    from prescreen.physics.dft import LabelRecord, LabelSettings
-    from prescreen.physics.labeller import RecordStore
-
+    monkeypatch.setattr(dft, "relax_monolayer_pw", _fake_pw)
+    result = work / "relax_tmp" / f"upgrade-{pick['Mo']}.json"
+    payload = {**driver._relax_payload(table.set_index("id"), pick["Mo"]), "formula": "MoS2"}
+    driver._upgrade_one(pick["Mo"], payload, 2.5, str(result))
     RecordStore(work / "labels", LabelSettings()).append(
         LabelRecord.from_dict(json.loads(result.read_text())["label"]))
     driver.pipeline_stage(table, [pick["Mo"]], work, tmp_path / "out", 7, progress=False)
     lines = (work / "labels" / RECORDS_FILE).read_text().splitlines()
-    assert len(lines) == 2  # the first label and the refined one, not the refined one twice
-    assert driver._newest(driver._read_jsonl(log))[pick["Mo"]]["generation"] == 2
+    assert len(lines) == 2  # the first label and the new one, not the new one twice
+    assert driver._newest(driver._read_jsonl(log))[pick["Mo"]]["generation"] == 3
     assert driver._superseded_label_hours(work) == pytest.approx(1 / 3600)
 
 
@@ -597,7 +605,7 @@ def test_the_pipeline_stops_its_children_and_collects_what_they_left(tmp_path, m
     ids = list(table["id"][:3])
     work = tmp_path / "work"
     # a parent that fails mid-run (here: packing) stops its children instead of orphaning them
-    monkeypatch.setattr(dft, "relax_monolayer", _slow_relax)
+    monkeypatch.setattr(dft, "relax_monolayer_pw", _slow_relax)
     started = []
     real_start = driver._start
 
@@ -619,7 +627,7 @@ def test_the_pipeline_stops_its_children_and_collects_what_they_left(tmp_path, m
     (work / "relax_tmp" / f"relax-{ids[0]}.json").write_text(json.dumps(
         {**first, "status": "ok", "reason": "", "residual_fmax_eV_per_A": 0.02, "wall_s": 9.0,
          "generation": driver.RELAX_GENERATION}))
-    monkeypatch.setattr(dft, "relax_monolayer", lambda s, *a, **k: (s, 0.01, True))
+    monkeypatch.setattr(dft, "relax_monolayer_pw", lambda s, *a, **k: (s, 0.01, True))
     assert driver.pipeline_stage(table, ids, work, tmp_path / "out", 1, workers=2,
                                  progress=False) == 3
     relax = driver._read_jsonl(work / "relax.jsonl")
@@ -666,7 +674,7 @@ def z2_pipeline(monkeypatch):
     from prescreen.prototypes import generate_pool, pool_table
 
     driver = _driver()
-    monkeypatch.setattr(dft, "relax_monolayer", lambda s, *a, **k: (s, 0.01, True))
+    monkeypatch.setattr(dft, "relax_monolayer_pw", lambda s, *a, **k: (s, 0.01, True))
     monkeypatch.setattr(dft, "label_structure", _fake_gapped_positive)
     monkeypatch.setattr(parity, "z2_from_parities", _fake_parities)
     monkeypatch.setattr(wilson, "z2_from_wilson_loops", _fake_wilson)

@@ -1,0 +1,18 @@
+"""The open-dataset build script as a module, for the benchmarks that reuse its settings."""
+
+from __future__ import annotations
+
+import importlib.util
+from pathlib import Path
+from types import ModuleType
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def build_module() -> ModuleType:
+    """``scripts/build_open_dataset.py``, imported (its relaxation constants, etc.)."""
+    spec = importlib.util.spec_from_file_location("build_open_dataset",
+                                                  ROOT / "scripts" / "build_open_dataset.py")
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)  # type: ignore[union-attr]
+    return module
