@@ -3,8 +3,9 @@
 ``relax_monolayer_pw`` relaxes positions and in-plane cell in one BFGS run with GPAW's
 plane-wave stress tensor. This script relaxes monolayers of ``data_open/`` from their
 pool geometry (the start every relaxation of the build has) and prints, per structure,
-the lattice it finds, the lattice of the dataset's LCAO relaxation, the plane-wave
-cutoff, the BFGS steps, the final virial and the wall time. For five layers it also
+the lattice it finds, the lattice of the dataset's LCAO relaxation, the layer's
+thickness (the spread of the atoms' heights) from both, the plane-wave cutoff, the BFGS
+steps, the final virial and the wall time. For five layers it also
 prints a published PBE plane-wave lattice constant, recalled from memory (not read):
 these are the rows whose last column is filled.
 
@@ -63,18 +64,25 @@ def main() -> int:
           f"{settings.kpt_density}, Fermi-Dirac {settings.smearing_eV} eV; load average "
           f"{os.getloadavg()[0]:.1f} on {os.cpu_count()} CPUs", flush=True)
     print(f"{'id':20s} {'formula':8s} {'ecut':>5s} {'a, b start':>15s} {'a, b PW':>15s} "
-          f"{'a, b LCAO':>15s} {'steps':>5s} {'virial eV':>9s} {'wall s':>7s} "
+          f"{'a, b LCAO':>15s} {'height PW':>9s} {'LCAO':>6s} {'steps':>5s} "
+          f"{'virial eV':>9s} {'wall s':>7s} "
           f"{'PBE (memory)':>12s}", flush=True)
 
     def ab(s: object) -> str:
         a, b = s.lattice.abc[:2]
         return f"{a:.4f}" if abs(a - b) < 1e-6 else f"{a:.4f},{b:.4f}"
 
+    def height(s: object) -> float:
+        z = s.cart_coords[:, 2]
+        return float(z.max() - z.min())
+
     for ident in args.ids:
         row = pool.loc[ident]
         start = structure_from_row(row)
-        lcao = (ab(structure_from_row(labelled.loc[ident])) if ident in labelled.index
-                else "-")
+        relaxed = (structure_from_row(labelled.loc[ident]) if ident in labelled.index
+                   else None)
+        lcao = ab(relaxed) if relaxed is not None else "-"
+        lcao_h = f"{height(relaxed):6.3f}" if relaxed is not None else f"{'-':>6s}"
         for ecut in args.ecut:
             details: dict = {}
             t0 = time.perf_counter()
@@ -88,7 +96,8 @@ def main() -> int:
                     continue
             wall = time.perf_counter() - t0
             print(f"{ident:20s} {row['reduced_formula']:8s} {ecut:5.0f} {ab(start):>15s} "
-                  f"{ab(after):>15s} {lcao:>15s} {details['steps']:5d} "
+                  f"{ab(after):>15s} {lcao:>15s} {height(after):9.3f} {lcao_h} "
+                  f"{details['steps']:5d} "
                   f"{details['virial_eV']:9.4f} {wall:7.1f} "
                   f"{PUBLISHED_FROM_MEMORY.get(ident, ''):>12s}"
                   + ("" if ok else "  (not converged)"), flush=True)

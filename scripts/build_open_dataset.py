@@ -1307,8 +1307,8 @@ Versions: {ver}.
   starting distortion pattern, and a layer with more than one minimum may end in one
   that is not the lowest.
 - The geometries are plane-wave PBE and the labels LCAO (dzp) PBE: at a relaxed geometry
-  the LCAO forces are not zero (the dzp basis gives silicene a buckling of 0.53 A where
-  plane waves give 0.45 A).
+  the LCAO forces are not zero (the dzp basis gives silicene a buckling of 0.54 A where
+  plane waves give 0.46 A, `benchmarks/relax_pw.py`).
 - Relaxations of generations 1 and 2 (column `generation`), where any remain, are LCAO
   relaxations without the stress tensor.
 - A high spillage is a strong hint of a band inversion, not a proof of a topological
