@@ -16,3 +16,17 @@ def build_module() -> ModuleType:
     module = importlib.util.module_from_spec(spec)
     spec.loader.exec_module(module)  # type: ignore[union-attr]
     return module
+
+
+def checkpoint_arguments(description: str) -> tuple[Path, list[dict]]:
+    """Parse ``--work`` (the build's checkpoint folder) and read its ``relax.jsonl``:
+    returns the folder and the relaxation records, oldest first."""
+    import argparse
+    import json
+
+    p = argparse.ArgumentParser(description=description)
+    p.add_argument("--work", type=Path, default=ROOT / "data_work" / "open_dataset")
+    work = p.parse_args().work
+    relax = [json.loads(line) for line in
+             (work / "relax.jsonl").read_text(encoding="utf-8").splitlines() if line]
+    return work, relax

@@ -11,11 +11,13 @@ Run: ``python benchmarks/refinement_effect.py [--work data_work/open_dataset]`` 
 
 from __future__ import annotations
 
-import argparse
-import json
+import sys
 from pathlib import Path
 
-ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+
+from _build import checkpoint_arguments  # noqa: E402
+
 THRESHOLD = 0.5  # spillage at which a label counts as positive (common practice)
 
 
@@ -24,14 +26,10 @@ def main() -> int:
 
     from prescreen.physics.labeller import record_lines
 
-    p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    p.add_argument("--work", type=Path, default=ROOT / "data_work" / "open_dataset")
-    args = p.parse_args()
-    relax = [json.loads(line) for line in
-             (args.work / "relax.jsonl").read_text(encoding="utf-8").splitlines() if line]
+    work, relax = checkpoint_arguments(__doc__.splitlines()[0])
     refined = [r for r in relax if "scan_wall_s" in r]
     if not refined:
-        print(f"no refined relaxations in {args.work / 'relax.jsonl'} yet")
+        print(f"no refined relaxations in {work / 'relax.jsonl'} yet")
         return 2
     failed = [r for r in refined if r.get("refine_failed")]
     done = [r for r in refined if not r.get("refine_failed")]
@@ -46,7 +44,7 @@ def main() -> int:
               f"{np.median([r['refine_wall_s'] for r in done]):.0f}, total "
               f"{sum(r['refine_wall_s'] for r in done) / 3600:.2f} h")
     by_id: dict[str, list[dict]] = {}
-    for line in record_lines(args.work / "labels"):
+    for line in record_lines(work / "labels"):
         if line.get("status") == "ok":
             by_id.setdefault(line["id"], []).append(line)
     pairs = [(r["id"], by_id[r["id"]][-2]["spillage"], by_id[r["id"]][-1]["spillage"])

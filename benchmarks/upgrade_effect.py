@@ -13,12 +13,14 @@ Run: ``python benchmarks/upgrade_effect.py [--work data_work/open_dataset]`` (se
 
 from __future__ import annotations
 
-import argparse
-import json
+import sys
 from collections import Counter
 from pathlib import Path
 
-ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+
+from _build import checkpoint_arguments  # noqa: E402
+
 THRESHOLD = 0.5  # spillage at which a label counts as positive (common practice)
 GENERATION = 3
 
@@ -36,17 +38,13 @@ def main() -> int:
 
     from prescreen.physics.labeller import record_lines
 
-    p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    p.add_argument("--work", type=Path, default=ROOT / "data_work" / "open_dataset")
-    args = p.parse_args()
-    relax = [json.loads(line) for line in
-             (args.work / "relax.jsonl").read_text(encoding="utf-8").splitlines() if line]
+    work, relax = checkpoint_arguments(__doc__.splitlines()[0])
     history: dict[str, list[dict]] = {}
     for r in relax:
         history.setdefault(r["id"], []).append(r)
     current = [h[-1] for h in history.values() if h[-1].get("generation") == GENERATION]
     if not current:
-        print(f"no generation-{GENERATION} relaxations in {args.work / 'relax.jsonl'} yet")
+        print(f"no generation-{GENERATION} relaxations in {work / 'relax.jsonl'} yet")
         return 2
     ok = [r for r in current if r["status"] == "ok"]
     print(f"generation {GENERATION}: {len(current)} relaxations "
@@ -72,7 +70,7 @@ def main() -> int:
         print(_percentiles("largest in-plane change against the earlier relaxation",
                            change, "%"))
     spill: dict[str, list[float]] = {}
-    for line in record_lines(args.work / "labels"):
+    for line in record_lines(work / "labels"):
         if line.get("status") == "ok":
             spill.setdefault(line["id"], []).append(float(line["spillage"]))
     relabelled = [(new["id"], spill[new["id"]][-2], spill[new["id"]][-1])
