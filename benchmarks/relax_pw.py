@@ -3,7 +3,8 @@
 ``relax_monolayer_pw`` relaxes positions and in-plane cell in one BFGS run with GPAW's
 plane-wave stress tensor. This script relaxes monolayers of ``data_open/`` from their
 pool geometry (the start every relaxation of the build has) and prints, per structure,
-the lattice it finds, the lattice of the dataset's LCAO relaxation, the layer's
+the lattice it finds, the lattice of the dataset's earlier LCAO relaxation (the newest
+record of generation 1 or 2 in the build's checkpoint ``relax.jsonl``), the layer's
 thickness (the spread of the atoms' heights) from both, the plane-wave cutoff, the BFGS
 steps, the final virial and the wall time. For five layers it also
 prints a published PBE plane-wave lattice constant, recalled from memory (not read):
@@ -16,6 +17,7 @@ per structure and cutoff on one core).
 from __future__ import annotations
 
 import argparse
+import json
 import os
 import sys
 import time
@@ -50,10 +52,15 @@ def main() -> int:
     p.add_argument("--data", type=Path, default=ROOT / "data_open")
     p.add_argument("--ids", nargs="*", default=list(PUBLISHED_FROM_MEMORY))
     p.add_argument("--ecut", nargs="*", type=float, default=[DEFAULT_PW_ECUT_EV])
+    p.add_argument("--work", type=Path, default=ROOT / "data_work" / "open_dataset")
     args = p.parse_args()
     build = build_module()
     pool = pd.read_parquet(args.data / "pool.parquet").set_index("id")
-    labelled = pd.read_parquet(args.data / "labelled.parquet").set_index("id")
+    lcao_records: dict = {}  # the newest successful LCAO relaxation of each id
+    for line in (args.work / "relax.jsonl").read_text(encoding="utf-8").splitlines():
+        r = json.loads(line) if line else {}
+        if r.get("status") == "ok" and int(r.get("generation", 1)) < 3:
+            lcao_records[r["id"]] = r
     missing = sorted(set(args.ids) - set(pool.index))
     if missing:
         print(f"relax_pw: not in {args.data / 'pool.parquet'}: {missing}")
@@ -79,7 +86,7 @@ def main() -> int:
     for ident in args.ids:
         row = pool.loc[ident]
         start = structure_from_row(row)
-        relaxed = (structure_from_row(labelled.loc[ident]) if ident in labelled.index
+        relaxed = (structure_from_row(lcao_records[ident]) if ident in lcao_records
                    else None)
         lcao = ab(relaxed) if relaxed is not None else "-"
         lcao_h = f"{height(relaxed):6.3f}" if relaxed is not None else f"{'-':>6s}"

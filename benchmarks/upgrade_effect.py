@@ -56,10 +56,11 @@ def main() -> int:
         print(_percentiles("largest in-plane change from the pool geometry",
                            [100 * max(abs(u) for u in r.get("lattice_strain", [0.0]))
                             for r in ok], "%"))
-    pairs = []  # (new, the earlier record of the same id)
+    pairs = []  # (new, the newest record of an earlier protocol for the same id)
     for h in history.values():
-        if h[-1].get("generation") == GENERATION and len(h) > 1:
-            pairs.append((h[-1], h[-2]))
+        earlier = [r for r in h[:-1] if r.get("generation", 1) < GENERATION]
+        if h[-1].get("generation") == GENERATION and earlier:
+            pairs.append((h[-1], earlier[-1]))
     print(f"relaxed again after an earlier protocol: {len(pairs)}; status before -> after: "
           f"{dict(Counter((old['status'], new['status']) for new, old in pairs))}")
     both_ok = [(new, old) for new, old in pairs

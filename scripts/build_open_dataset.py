@@ -64,7 +64,11 @@ if str(ROOT) not in sys.path:  # run as a plain script from a checkout
 from prescreen.errors import InputError  # noqa: E402
 from prescreen.io.atomic import replacing, write_json, write_text  # noqa: E402
 from prescreen.process import die_with_parent, folder_lock  # noqa: E402
-from prescreen.physics.dft import DEFAULT_PW_ECUT_EV, DEFAULT_VIRIAL_TOL_EV  # noqa: E402
+from prescreen.physics.dft import (  # noqa: E402
+    DEFAULT_PW_ECUT_EV,
+    DEFAULT_VIRIAL_TOL_EV,
+    LAYER_CHECK_EVERY,
+)
 from prescreen.physics.parity import SYMPREC_A  # noqa: E402
 from prescreen.prototypes import (  # noqa: E402
     COVALENT_RADII_SOURCE,
@@ -136,6 +140,12 @@ RELAX_GENERATION = 3
 RELAX_TEXT = (f"stress tensor (plane waves, {RELAX_ECUT_EV:g} eV): BFGS over positions and "
               f"in-plane strain to {RELAX_FMAX} eV/A and an in-plane virial below "
               f"{RELAX_VIRIAL_TOL_EV} eV")
+
+#: Error text of the label record that stands in for a label of a geometry since
+#: replaced (the structure was relaxed again and has no label of its new geometry yet,
+#: or its new relaxation failed): the old label's compute counts as replaced, the id
+#: leaves the labelled table, and a build labels it when its newest relaxation is ok.
+RELABEL_PENDING = "superseded: the structure was relaxed again"
 
 #: Relaxation attempts per structure (a second one continues from the first's result
 #: when the first ran out of steps).
@@ -430,6 +440,13 @@ def _needs_upgrade(rec: dict[str, Any]) -> bool:
     return rec.get("status") == "ok" and _older_generation(rec)
 
 
+def _parent_made_fields() -> dict[str, Any]:
+    """Fields of a relaxation record that the parent writes for a child that left no
+    result (timeout, crash): the protocol it ran."""
+    return {"generation": RELAX_GENERATION, "lattice_scan": RELAX_TEXT,
+            "smearing_eV": RELAX_SMEARING_EV, "ecut_eV": RELAX_ECUT_EV}
+
+
 def _earlier_wall_s(old: dict[str, Any] | None) -> float:
     """Wall time of the relaxations that a new record of the same id replaces."""
     if not old:
@@ -461,7 +478,7 @@ def _upgrade_one(ident: str, payload: dict[str, Any], kpt_density: float,
 class _Job(NamedTuple):
     """One child process: a relaxation or a labelling of one structure."""
 
-    kind: str  # "relax" or "label"
+    kind: str  # "relax", "upgrade", "label" or "z2"
     ident: str
     process: Any
     started: float
@@ -680,8 +697,9 @@ def pipeline_stage(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
     Resumes like the separate stages: results that
     children finished before an interruption are collected, and structures relaxed but
     not labelled are labelled first. Children die with the parent. A failed relaxation
-    is not tried again, except, with ``retry_timeouts``, one that hit a timeout shorter
-    than ``relax_timeout_s``.
+    of the current generation is not tried again, except, with ``retry_timeouts``, one
+    that hit a timeout shorter than ``relax_timeout_s``; failures of earlier generations
+    are relaxed again like new structures.
     """
     with _work_lock(work):
         return _pipeline(pool, ids, work, out, seed, workers=workers,
@@ -757,10 +775,13 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
         changed += 1
         if kind == "relax":
             if "generation" not in rec:  # the child left no result: timeout or crash
-                rec = {**rec, "generation": RELAX_GENERATION, "lattice_scan": RELAX_TEXT}
-            earlier = _earlier_wall_s(newest_relax.get(ident))  # an older failure, redone
-            if earlier and rec.get("generation") == RELAX_GENERATION:
-                rec = {**rec, "earlier_wall_s": earlier}
+                rec = {**rec, **_parent_made_fields()}
+            before = newest_relax.get(ident)  # an older failure, or a timeout, redone
+            if before and rec.get("generation") == RELAX_GENERATION:
+                rec = {**rec, "earlier_wall_s": _earlier_wall_s(before),
+                       "replaced_generation": int(before.get("generation", 1))}
+            if store is not None and ident in labels_now and not pending_relabel(ident):
+                supersede_label(ident)
             _append_jsonl(log, rec)
             newest_relax[ident] = rec
             if label and rec.get("status") == "ok":
@@ -780,6 +801,7 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
                                      rec["reason"], rec["wall_s"]).as_dict()
         done = LabelRecord.from_dict(rec)
         store.append(done)
+        newest_label_line[ident] = done.as_dict(arrays=False)
         consider_z2(done)
         new_labels += 1
         since_pack += 1
@@ -793,14 +815,13 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
         nonlocal since_pack, new_labels
         old = newest_relax.get(ident)
         if "relax" not in result:  # the child left no result
-            if "WorkerDied" in str(result.get("reason", "")):
-                return "upgrade: worker died, left for the next run"
             result = {"relax": {"id": ident, "status": "failed", "attempts": 0,
                                 "reason": str(result.get("reason", "no result")),
                                 "wall_s": float(result.get("wall_s") or 0.0),
-                                "lattice_scan": RELAX_TEXT, "generation": RELAX_GENERATION},
+                                **_parent_made_fields()},
                       "label": None}
-        rec = {**result["relax"], "earlier_wall_s": _earlier_wall_s(old)}
+        rec = {**result["relax"], "earlier_wall_s": _earlier_wall_s(old),
+               "replaced_generation": int((old or {}).get("generation", 1))}
         new_label = result.get("label")
         if rec.get("status") == "ok":
             relax_by_id[ident] = rec
@@ -822,10 +843,31 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
                     new_labels += 1
             consider_z2(done)
             said = f"spillage {done.spillage:.3f}" if done.ok else "label failed"
+        elif ident in labels_now and not pending_relabel(ident):  # failed: the old label goes
+            supersede_label(ident)
+            said = "old label dropped"
         _append_jsonl(log, rec)
         newest_relax[ident] = rec
+        if rec.get("status") != "ok":
+            return f"relaxed again: {rec.get('status')}: {rec.get('reason', '')}; {said}"
         strain = 100 * max((abs(u) for u in rec.get("lattice_strain", [0.0])), default=0.0)
-        return f"relaxed again: {rec.get('status')} ({strain:.2f} % from the start); {said}"
+        return f"relaxed again: ok ({strain:.2f} % from the start); {said}"
+
+    def supersede_label(ident: str) -> None:
+        """Store a stand-in for the label of a geometry since replaced."""
+        stand_in = LabelRecord.failed(ident, str(rows.loc[ident, "reduced_formula"]), settings,
+                                      RELABEL_PENDING, 0.0)
+        store.append(stand_in)
+        newest_label_line[ident] = stand_in.as_dict(arrays=False)
+
+    def pending_relabel(ident: str) -> bool:
+        return str(newest_label_line.get(ident, {}).get("error", "")) == RELABEL_PENDING
+
+    def redo(r: dict[str, Any]) -> bool:
+        """A relaxation to run again as a new one: a failure of an earlier protocol, or,
+        when asked, one that hit a shorter timeout."""
+        return ((r.get("status") != "ok" and _older_generation(r))
+                or (retry_timeouts and _timed_out_below(r, relax_timeout_s)))
 
     bar = tqdm(total=0, desc="relax + label" if label else "relaxing", unit="job",
                disable=not progress)
@@ -852,9 +894,9 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
         if kind in ("label", "z2", "upgrade") and store is None:
             continue  # a relax-only run leaves them for a run that labels
         if rec is not None and (
-                (kind == "relax" and ident not in relaxed)
+                (kind == "relax" and (ident not in relaxed or redo(newest_relax[ident])))
                 or (kind == "upgrade" and _needs_upgrade(newest_relax.get(ident, {})))
-                or (kind == "label" and ident not in labelled)
+                or (kind == "label" and (ident not in labelled or pending_relabel(ident)))
                 or (kind == "z2" and ident not in with_z2)):
             record(kind, ident, rec)
         path.unlink()  # recorded now, or already in its checkpoint, or unreadable
@@ -864,6 +906,7 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
     relax = _read_jsonl(log)
     newest_relax = _newest(relax)
     labelled = store.status() if store is not None else {}
+    labelled = {i: v for i, v in labelled.items() if not pending_relabel(i)}
     labels_now = {r.id: r for r in _label_records(work)} if store is not None else {}
     # a relaxation of an earlier generation is redone before its label and Z2 job
     label_queue[:] = [r for r in newest_relax.values() if label and r.get("status") == "ok"
@@ -874,10 +917,7 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
             if (done.id not in with_z2 and done.id in relax_by_id
                     and not _needs_upgrade(relax_by_id[done.id])):
                 consider_z2(done)
-    # failures of an earlier protocol are relaxed again like new structures
-    done_ids = {i for i, r in _newest(relax).items()
-                if not (retry_timeouts and _timed_out_below(r, relax_timeout_s))
-                and (r.get("status") == "ok" or not _older_generation(r))}
+    done_ids = {i for i, r in _newest(relax).items() if not redo(r)}
     relax_queue = [i for i in ids if i not in done_ids]
     # successful relaxations of an earlier generation, in the order they were made (a
     # relax-only run leaves them), except one whose Z2 job is queued already from a label
@@ -917,7 +957,9 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
                                           kpt_density))
             time.sleep(0.2)
             for job in list(running):
-                limit = {"relax": relax_timeout_s, "upgrade": relax_timeout_s,
+                # an upgrade relaxes and labels
+                limit = {"relax": relax_timeout_s,
+                         "upgrade": relax_timeout_s + label_timeout_s,
                          "label": label_timeout_s,
                          "z2": Z2_TIMEOUT_FACTOR * label_timeout_s}[job.kind]
                 rec = _finished(job, limit)
@@ -1079,13 +1121,16 @@ def _relax_table(relax: Sequence[dict[str, Any]], records: Sequence[Any]) -> "pd
              "virial_eV": float(r.get("virial_eV", math.nan)),
              "bfgs_steps": int(r.get("bfgs_steps", 0)),
              "earlier_wall_s": float(r.get("earlier_wall_s", 0.0)),
+             # the generation of the record this one replaced; 0 where it replaced none
+             "replaced_generation": int(r.get("replaced_generation", 0)),
              "lattice_residual": float(r.get("lattice_residual", math.nan)),
              "lattice_cycles": int(r.get("lattice_cycles", 0)),
              "label_status": label_status.get(r["id"], "not labelled")}
             for r in _newest(relax).values()]
     cols = ["id", "status", "reason", "converged", "residual_fmax_eV_per_A", "attempts",
             "wall_s", "smearing_eV", "lattice_scan", "pre_relax_kpt_density", "generation",
-            "ecut_eV", "virial_eV", "bfgs_steps", "earlier_wall_s", "lattice_residual",
+            "ecut_eV", "virial_eV", "bfgs_steps", "earlier_wall_s", "replaced_generation",
+            "lattice_residual",
             "lattice_cycles", "label_status"]
     return pd.DataFrame(rows, columns=cols).sort_values("id").reset_index(drop=True)
 
@@ -1097,14 +1142,17 @@ def _generations_text(relax: "pd.DataFrame") -> str:
     ok = relax[relax["status"] == "ok"]
     count = ok["generation"].value_counts().to_dict()
     old = sum(n for g, n in count.items() if g < RELAX_GENERATION)
-    redone = int(((relax["generation"] == RELAX_GENERATION)
-                  & (relax["earlier_wall_s"] > 0)).sum())
-    if not old and not redone:
+    redone = relax[(relax["generation"] == RELAX_GENERATION)
+                   & relax["replaced_generation"].between(1, RELAX_GENERATION - 1)]
+    if not old and not len(redone):
         return ""
-    text = (f"{redone} structures relaxed by an earlier protocol have been relaxed again this "
-            f"way, from their pool geometry, and labelled again")
+    good = int((redone["status"] == "ok").sum())
+    text = (f"{len(redone)} structures relaxed by an earlier protocol have been relaxed again "
+            f"this way, from their pool geometry: {good} successfully, and labelled (the "
+            f"labels of their earlier geometry are replaced); "
+            f"{len(redone) - good} now fail, fall apart or do not converge and are left out")
     if old:
-        text += (f"; {old} kept relaxations still come from an earlier protocol and wait for "
+        text += (f". {old} kept relaxations still come from an earlier protocol and wait for "
                  f"it: {count.get(2, 0)} of generation 2 (LCAO, the lattice from energy scans "
                  f"with the positions held fractional, then refined to zero in-plane stress "
                  f"by finite differences of the energy) and {count.get(1, 0)} of generation 1 "
@@ -1136,8 +1184,9 @@ def _rate(pos: int, n: int) -> str:
 def datasheet(pool: "pd.DataFrame", labelled: "pd.DataFrame", relax: "pd.DataFrame",
               seed: int, versions: dict[str, str], superseded_h: float = 0.0) -> str:
     """The text of ``data_open/README.md``; every number is computed from the tables
-    (``superseded_h``: core-hours of labels since replaced by a label of the refined
-    geometry, which the tables no longer hold)."""
+    (``superseded_h``: core-hours of labels since replaced, by a label of a new geometry or
+    because the structure was relaxed again and dropped, which the tables no longer
+    hold)."""
     n_pool = len(pool)
     n_keys = pool.groupby(["prototype", "reduced_formula"]).ngroups
     n_lab = len(labelled)
@@ -1163,7 +1212,8 @@ def datasheet(pool: "pd.DataFrame", labelled: "pd.DataFrame", relax: "pd.DataFra
     relax_h = float(relax["wall_s"].fillna(0).sum()) / 3600.0 if len(relax) else 0.0
     earlier_h = (float(relax["earlier_wall_s"].fillna(0).sum()) / 3600.0
                  if len(relax) and "earlier_wall_s" in relax else 0.0)
-    current = relax[relax["generation"] == RELAX_GENERATION] if len(relax) else relax
+    current = (relax[(relax["generation"] == RELAX_GENERATION) & (relax["status"] == "ok")]
+               if len(relax) else relax)
     lab_by_proto = labelled.groupby("prototype") if n_lab else None
     proto_rows = []
     for p in PROTOTYPES:
@@ -1189,8 +1239,8 @@ def datasheet(pool: "pd.DataFrame", labelled: "pd.DataFrame", relax: "pd.DataFra
     resid = (f"{relax.loc[relax['status'] == 'ok', 'residual_fmax_eV_per_A'].max():.3f}"
              if status.get("ok") else "n/a")
     generations_text = _generations_text(relax)
-    superseded_text = (f" (and {superseded_h:.2f} more for labels since replaced by a label "
-                       "of a new geometry)" if superseded_h > 0 else "")
+    superseded_text = (f" (and {superseded_h:.2f} more for labels of geometries since "
+                       "replaced)" if superseded_h > 0 else "")
     earlier_text = (f" (and {earlier_h:.2f} more for relaxations since done again)"
                     if earlier_h > 0 else "")
     return f"""# data_open: generated monolayers with spin-orbit spillage labels
@@ -1228,8 +1278,8 @@ numbers by hand (the integrity test checks the file's hash).*
 - Z2 of the positives: {z2_text}.
 - Compute: {core_h:.2f} core-hours of labelling{superseded_text} and {relax_h:.2f}
   core-hours of relaxation{earlier_text} (wall time of single-core jobs, on a shared
-  machine); median per structure: {_median(current["wall_s"])} s to relax (generation
-  {RELAX_GENERATION}), {_median(labelled["wall_s"])} s to label.
+  machine); median per structure: {_median(current["wall_s"])} s to relax (successful
+  relaxations of generation {RELAX_GENERATION}), {_median(labelled["wall_s"])} s to label.
 
 ## How it was made
 
@@ -1256,12 +1306,12 @@ python scripts/build_open_dataset.py --seed {seed} --workers 2    # or: make dat
    From the pool geometry, one BFGS run over the positions and the in-plane strain
    (ASE's `FrechetCellFilter`, strains xx, yy and xy free, so the angle between the
    in-plane vectors can change; the out-of-plane vector and so the vacuum are kept) until
-   every force is below {RELAX_FMAX} eV/A and the in-plane virial (the derivative of the
-   energy with respect to an in-plane strain) below {RELAX_VIRIAL_TOL_EV} eV per cell, at
+   every force is below {RELAX_FMAX} eV/A and each in-plane component of V sigma (the
+   derivative of the energy with respect to that strain) below {RELAX_VIRIAL_TOL_EV} eV per cell, at
    most {RELAX_PW_STEPS} steps per attempt, up to {RELAX_ATTEMPTS} attempts (columns
    `virial_eV`, `bfgs_steps`, `ecut_eV`). Structures that do not converge, or that are no
    longer one bonded, 2-periodic sheet with at least 8 A of vacuum (covalent radii x
-   1.25 bond test, also run every 10 steps), are recorded in `{RELAX_PARQUET}` and left
+   1.25 bond test, also run every {LAYER_CHECK_EVERY} steps), are recorded in `{RELAX_PARQUET}` and left
    out. {generations_text}
 4. **Labels** (`prescreen.physics.labeller.run_labelling` with default
    `LabelSettings`): LCAO PBE dzp ground state, Gamma-centred k mesh (hexagonal meshes
@@ -1307,8 +1357,10 @@ Versions: {ver}.
   starting distortion pattern, and a layer with more than one minimum may end in one
   that is not the lowest.
 - The geometries are plane-wave PBE and the labels LCAO (dzp) PBE: at a relaxed geometry
-  the LCAO forces are not zero (the dzp basis gives silicene a buckling of 0.54 A where
-  plane waves give 0.46 A, `benchmarks/relax_pw.py`).
+  the LCAO forces are not zero (the dzp basis gives silicene a buckling of 0.53-0.54 A
+  where plane waves give 0.46 A, `benchmarks/relax_pw.py`).
+- Plane waves are periodic along z: a polar layer (Janus, BiTeI-like) feels a spurious
+  field across the vacuum in its relaxation; no dipole correction is applied.
 - Relaxations of generations 1 and 2 (column `generation`), where any remain, are LCAO
   relaxations without the stress tensor.
 - A high spillage is a strong hint of a band inversion, not a proof of a topological

@@ -440,7 +440,8 @@ def test_structures_of_earlier_protocols_are_relaxed_again_and_relabelled(tmp_pa
 
     monkeypatch.setattr(dft, "relax_monolayer_pw", _fake_pw)
     assert driver.pipeline_stage(table, ids, work, tmp_path / "out", 7, workers=2,
-                                 relax_timeout_s=3, progress=False) == 2  # V's, Hf's first
+                                 relax_timeout_s=3, label_timeout_s=1,
+                                 progress=False) == 2  # V's, Hf's first
     newest = driver._newest(driver._read_jsonl(log))
     assert {i: r["generation"] for i, r in newest.items()} == {i: 3 for i in ids}
     pool_a = {i: structure_from_row(table.set_index("id").loc[i]).lattice.a for i in ids}
@@ -454,13 +455,16 @@ def test_structures_of_earlier_protocols_are_relaxed_again_and_relabelled(tmp_pa
     # failures supersede the old record too: the structure leaves the labelled table
     for metal, status, why in (("Nb", "failed", "RuntimeError: SCF did not converge"),
                                ("Zr", "not_converged", "above the tolerances"),
-                               ("Ti", "failed", "Timeout: no result within 3 s")):
+                               ("Ti", "failed", "Timeout: no result within 4 s")):
         rec = newest[pick[metal]]
         assert rec["status"] == status and why in rec["reason"], metal
-        assert rec["earlier_wall_s"] == 100.0, metal
+        assert rec["earlier_wall_s"] == 100.0 and rec["replaced_generation"] == 1, metal
+        assert rec["generation"] == 3 and rec["ecut_eV"] == driver.RELAX_ECUT_EV, metal
     lines = [json.loads(x) for x in (work / "labels" / RECORDS_FILE).read_text().splitlines()]
-    assert sorted(d["id"] for d in lines[labels_before:]) == sorted(
-        pick[m] for m in ("Mo", "W", "V", "Hf"))
+    new_lines = {d["id"]: d for d in lines[labels_before:]}
+    assert sorted(new_lines) == sorted(pick[m] for m in ("Mo", "W", "V", "Hf", "Nb", "Zr", "Ti"))
+    for metal in ("Nb", "Zr", "Ti"):  # their old labels stand for a geometry now gone
+        assert new_lines[pick[metal]]["error"] == driver.RELABEL_PENDING, metal
     z2 = driver._newest(driver._read_jsonl(work / driver.Z2_LOG))
     assert z2[pick["Mo"]]["status"] == "stale"  # belonged to the old geometry
     label = next(r for r in load_records(work / "labels") if r.id == pick["Mo"])
@@ -473,13 +477,22 @@ def test_structures_of_earlier_protocols_are_relaxed_again_and_relabelled(tmp_pa
     assert sorted(relax_df["id"]) == sorted(ids) and set(relax_df["generation"]) == {3}
     said = driver._generations_text(relax_df)
     assert said.startswith("7 structures relaxed by an earlier protocol have been relaxed")
-    assert "wait for it" not in said
+    assert "4 successfully" in said and "3 now fail" in said and "wait for it" not in said
+    status = dict(zip(relax_df["id"], relax_df["label_status"]))
+    assert status[pick["Zr"]] == f"failed: {driver.RELABEL_PENDING}"
     assert relax_df["earlier_wall_s"].sum() == pytest.approx(6 * 100.0 + 50.0)
-    # the replaced labels' compute is still counted, once (Mo's and W's)
-    assert driver._superseded_label_hours(work) == pytest.approx(2 / 3600)
+    # the replaced labels' compute is still counted, once (Mo's and W's, relabelled, and
+    # Zr's and Ti's, dropped; Nb's old label had failed)
+    assert driver._superseded_label_hours(work) == pytest.approx(4 / 3600)
     # --stage label labels the newest geometry of each id, once (here: nothing new)
     summary = driver.label_stage(driver._read_jsonl(log), work, progress=False)
     assert (summary.n_jobs, summary.n_ok + summary.n_failed) == (5, 0)
+    # a timed-out upgrade retried with a longer limit is labelled, its old label replaced
+    monkeypatch.setattr(dft, "relax_monolayer_pw", lambda s, *a, **k: (s, 0.01, True))
+    driver.pipeline_stage(table, ids, work, tmp_path / "out", 7, relax_timeout_s=60,
+                          retry_timeouts=True, progress=False)
+    ti = next(r for r in load_records(work / "labels") if r.id == pick["Ti"])
+    assert ti.ok and driver._newest(driver._read_jsonl(log))[pick["Ti"]]["status"] == "ok"
     # rerun: nothing is relaxed again
     before = log.read_text()
     driver.pipeline_stage(table, ids, work, tmp_path / "out", 7, workers=1, progress=False)
@@ -842,3 +855,28 @@ def test_a_whole_last_record_without_its_newline_is_kept(tmp_path):
     assert [r["id"] for r in driver._read_jsonl(log)] == ["a", "b"]
     driver._append_jsonl(log, {"id": "c"})
     assert [r["id"] for r in driver._read_jsonl(log)] == ["a", "b", "c"]
+
+
+def test_a_redo_of_an_old_failure_left_by_a_stopped_build_is_recorded_not_rerun(
+        tmp_path, monkeypatch):
+    import prescreen.physics.dft as dft
+
+    driver = _driver()
+    monkeypatch.setattr(dft, "label_structure", _fake_label)
+    monkeypatch.setattr(driver, "pack_stage", lambda out, work, seed: None)
+    table, pick = _mx2_sulfides()
+    work = tmp_path / "work"
+    (work / "relax_tmp").mkdir(parents=True)
+    ident = pick["Mo"]
+    driver._append_jsonl(work / "relax.jsonl", {"id": ident, "status": "failed",
+                                                "reason": "SCF", "wall_s": 50.0})
+    # the generation-3 redo finished, then the build stopped before recording it
+    (work / "relax_tmp" / f"relax-{ident}.json").write_text(json.dumps(
+        {**driver._relax_payload(table.set_index("id"), ident), "status": "ok", "reason": "",
+         "residual_fmax_eV_per_A": 0.02, "wall_s": 999.0,
+         "generation": driver.RELAX_GENERATION}))
+    monkeypatch.setattr(dft, "relax_monolayer_pw", lambda s, *a, **k: (s, 0.01, True))
+    driver.pipeline_stage(table, [ident], work, tmp_path / "out", 7, progress=False)
+    relax = driver._read_jsonl(work / "relax.jsonl")
+    assert len(relax) == 2  # the failure and the recorded redo; no third relaxation
+    assert relax[-1]["wall_s"] == 999.0 and relax[-1]["earlier_wall_s"] == 50.0
