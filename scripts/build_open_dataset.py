@@ -905,6 +905,12 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
         stale.unlink()
     relax = _read_jsonl(log)
     newest_relax = _newest(relax)
+    if store is not None:  # a label whose structure's newest relaxation failed (recorded
+        # before the stand-ins existed) belongs to a geometry that is gone
+        for ident in list(labels_now):
+            if (ident in newest_relax and newest_relax[ident].get("status") != "ok"
+                    and not pending_relabel(ident)):
+                supersede_label(ident)
     labelled = store.status() if store is not None else {}
     labelled = {i: v for i, v in labelled.items() if not pending_relabel(i)}
     labels_now = {r.id: r for r in _label_records(work)} if store is not None else {}

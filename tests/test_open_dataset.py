@@ -880,3 +880,26 @@ def test_a_redo_of_an_old_failure_left_by_a_stopped_build_is_recorded_not_rerun(
     relax = driver._read_jsonl(work / "relax.jsonl")
     assert len(relax) == 2  # the failure and the recorded redo; no third relaxation
     assert relax[-1]["wall_s"] == 999.0 and relax[-1]["earlier_wall_s"] == 50.0
+
+
+def test_a_label_left_behind_by_a_failed_relaxation_is_superseded_on_the_next_run(
+        tmp_path, monkeypatch):
+    import prescreen.physics.dft as dft
+    from prescreen.physics.labeller import load_records
+
+    driver = _driver()
+    monkeypatch.setattr(dft, "relax_monolayer_pw", lambda s, *a, **k: (s, 0.01, True))
+    monkeypatch.setattr(dft, "label_structure", _fake_label)
+    monkeypatch.setattr(driver, "pack_stage", lambda out, work, seed: None)
+    table, pick = _mx2_sulfides()
+    work = tmp_path / "work"
+    driver.pipeline_stage(table, [pick["Mo"]], work, tmp_path / "out", 7, progress=False)
+    # a newer relaxation failed and left the label in place (as builds did before the
+    # stand-ins): the label's geometry is gone
+    driver._append_jsonl(work / "relax.jsonl", {"id": pick["Mo"], "status": "failed",
+                                                "reason": "x", "wall_s": 1.0,
+                                                "generation": driver.RELAX_GENERATION})
+    driver.pipeline_stage(table, [pick["Mo"]], work, tmp_path / "out", 7, progress=False)
+    label = next(r for r in load_records(work / "labels") if r.id == pick["Mo"])
+    assert not label.ok and label.error == driver.RELABEL_PENDING
+    assert driver._superseded_label_hours(work) == pytest.approx(1 / 3600)
