@@ -526,10 +526,10 @@ def test_upgrades_and_new_relaxations_take_turns(tmp_path, monkeypatch):
     assert kinds.count("label") == 2  # the new ones; W and V were labelled in their job
 
 
-def test_an_upgrade_result_replayed_after_a_crash_is_stored_once(tmp_path, monkeypatch):
+def _mo_labelled(tmp_path, monkeypatch):
+    """A build of the 2H MoS2 layer alone (stand-in relaxation and label, no packing):
+    the driver, the pool, its sulfides by metal and the work folder."""
     import prescreen.physics.dft as dft
-    from prescreen.physics.dft import LabelRecord, LabelSettings
-    from prescreen.physics.labeller import RECORDS_FILE, RecordStore
 
     driver = _driver()
     monkeypatch.setattr(dft, "relax_monolayer_pw", lambda s, *a, **k: (s, 0.01, True))
@@ -538,6 +538,15 @@ def test_an_upgrade_result_replayed_after_a_crash_is_stored_once(tmp_path, monke
     table, pick = _mx2_sulfides()
     work = tmp_path / "work"
     driver.pipeline_stage(table, [pick["Mo"]], work, tmp_path / "out", 7, progress=False)
+    return driver, table, pick, work
+
+
+def test_an_upgrade_result_replayed_after_a_crash_is_stored_once(tmp_path, monkeypatch):
+    import prescreen.physics.dft as dft
+    from prescreen.physics.dft import LabelRecord, LabelSettings
+    from prescreen.physics.labeller import RECORDS_FILE, RecordStore
+
+    driver, table, pick, work = _mo_labelled(tmp_path, monkeypatch)
     log = work / "relax.jsonl"
     log.write_text(json.dumps(_older(driver._read_jsonl(log)[0], 1)) + "\n")
     # the parent stored the new label, then died before writing the relaxation record
@@ -884,16 +893,9 @@ def test_a_redo_of_an_old_failure_left_by_a_stopped_build_is_recorded_not_rerun(
 
 def test_a_label_left_behind_by_a_failed_relaxation_is_superseded_on_the_next_run(
         tmp_path, monkeypatch):
-    import prescreen.physics.dft as dft
     from prescreen.physics.labeller import load_records
 
-    driver = _driver()
-    monkeypatch.setattr(dft, "relax_monolayer_pw", lambda s, *a, **k: (s, 0.01, True))
-    monkeypatch.setattr(dft, "label_structure", _fake_label)
-    monkeypatch.setattr(driver, "pack_stage", lambda out, work, seed: None)
-    table, pick = _mx2_sulfides()
-    work = tmp_path / "work"
-    driver.pipeline_stage(table, [pick["Mo"]], work, tmp_path / "out", 7, progress=False)
+    driver, table, pick, work = _mo_labelled(tmp_path, monkeypatch)
     # a newer relaxation failed and left the label in place (as builds did before the
     # stand-ins): the label's geometry is gone
     driver._append_jsonl(work / "relax.jsonl", {"id": pick["Mo"], "status": "failed",
