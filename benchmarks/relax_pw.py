@@ -45,13 +45,14 @@ PUBLISHED_FROM_MEMORY = {
 def main() -> int:
     import pandas as pd
 
-    from prescreen.physics.dft import DEFAULT_PW_ECUT_EV, LabelSettings, relax_monolayer_pw
+    from prescreen.physics.dft import LabelSettings, relax_monolayer_pw
     from prescreen.prototypes import structure_from_row
 
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("--data", type=Path, default=ROOT / "data_open")
     p.add_argument("--ids", nargs="*", default=list(PUBLISHED_FROM_MEMORY))
-    p.add_argument("--ecut", nargs="*", type=float, default=[DEFAULT_PW_ECUT_EV])
+    p.add_argument("--ecut", nargs="*", type=float, default=[None],
+                   help="cutoffs (eV) to try; by default the one chosen by the elements")
     p.add_argument("--work", type=Path, default=ROOT / "data_work" / "open_dataset")
     args = p.parse_args()
     build = build_module()
@@ -102,7 +103,8 @@ def main() -> int:
                     print(f"{ident:20s} failed: {exc}", flush=True)
                     continue
             wall = time.perf_counter() - t0
-            print(f"{ident:20s} {row['reduced_formula']:8s} {ecut:5.0f} {ab(start):>15s} "
+            print(f"{ident:20s} {row['reduced_formula']:8s} {details['ecut_eV']:5.0f} "
+                  f"{ab(start):>15s} "
                   f"{ab(after):>15s} {lcao:>15s} {height(after):9.3f} {lcao_h} "
                   f"{details['steps']:5d} "
                   f"{details['virial_eV']:9.4f} {wall:7.1f} "

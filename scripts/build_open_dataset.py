@@ -66,6 +66,8 @@ from prescreen.io.atomic import replacing, write_json, write_text  # noqa: E402
 from prescreen.process import die_with_parent, folder_lock  # noqa: E402
 from prescreen.physics.dft import (  # noqa: E402
     DEFAULT_PW_ECUT_EV,
+    HARD_ELEMENTS,
+    HARD_PW_ECUT_EV,
     DEFAULT_VIRIAL_TOL_EV,
     LAYER_CHECK_EVERY,
 )
@@ -117,7 +119,7 @@ RELAX_SMEARING_EV = 0.1
 #: Plane-wave cutoff (eV), in-plane virial tolerance (eV per cell) and BFGS steps per
 #: attempt of the relaxations (``relax_monolayer_pw``); the cutoff from the convergence
 #: test in docs/labeller.md.
-RELAX_ECUT_EV = DEFAULT_PW_ECUT_EV
+RELAX_ECUT_EV = DEFAULT_PW_ECUT_EV  # HARD_PW_ECUT_EV for layers with HARD_ELEMENTS
 RELAX_VIRIAL_TOL_EV = DEFAULT_VIRIAL_TOL_EV
 RELAX_PW_STEPS = 150
 
@@ -130,14 +132,19 @@ RELAX_FMAX = 0.05
 #:    which they were relaxed;
 #: 2. (2026-12-03) LCAO; the same scans, then refined to zero in-plane stress by finite
 #:    differences of the energy (``relax_monolayer``);
-#: 3. (since 2026-12-03) plane waves with the stress tensor, positions and in-plane cell
-#:    in one BFGS run from the pool geometry (``relax_monolayer_pw``).
+#: 3. (2026-12-03, a few hours) plane waves with the stress tensor, positions and
+#:    in-plane cell in one BFGS run from the pool geometry, without a Pulay correction:
+#:    at 500 eV the lattices of layers with N, O or F came out several per cent short;
+#: 4. (since 2026-12-03) the same with GPAW's estimate of the Pulay stress added
+#:    (``relax_monolayer_pw``, ``pulay_virial_eV``).
 #:
 #: A build relaxes the structures of older generations again, from their pool geometry,
 #: taking turns with new relaxations, and labels them again.
-RELAX_GENERATION = 3
-#: What the ``lattice_scan`` column says of a generation-3 relaxation.
-RELAX_TEXT = (f"stress tensor (plane waves, {RELAX_ECUT_EV:g} eV): BFGS over positions and "
+RELAX_GENERATION = 4
+#: What the ``lattice_scan`` column says of a relaxation of the current generation.
+RELAX_TEXT = (f"stress tensor (plane waves, {RELAX_ECUT_EV:g} eV, {HARD_PW_ECUT_EV:g} eV with "
+              f"{', '.join(sorted(HARD_ELEMENTS))}; Pulay stress estimate added): BFGS over "
+              f"positions and "
               f"in-plane strain to {RELAX_FMAX} eV/A and an in-plane virial below "
               f"{RELAX_VIRIAL_TOL_EV} eV")
 
@@ -347,14 +354,15 @@ def stratified_order(pool: "pd.DataFrame", seed: int, max_atoms: int = DEFAULT_M
 # --- relaxation ---------------------------------------------------------------------
 def _relaxation(ident: str, row: dict[str, Any], kpt_density: float) -> tuple[dict[str, Any], Any]:
     """Relax one structure from ``row``'s geometry (``relax_monolayer_pw``); returns its
-    generation-3 record (any status) and the relaxed structure (None if it failed)."""
+    record of the current generation (any status) and the relaxed structure (None if it
+    failed)."""
     from pymatgen.io.ase import AseAtomsAdaptor
 
     from prescreen.physics.dft import LabelSettings, LayerBroke, relax_monolayer_pw
 
     t0 = time.perf_counter()
     rec: dict[str, Any] = {"id": ident, "attempts": 0, "smearing_eV": RELAX_SMEARING_EV,
-                           "lattice_scan": RELAX_TEXT, "ecut_eV": RELAX_ECUT_EV,
+                           "lattice_scan": RELAX_TEXT,
                            "generation": RELAX_GENERATION}
     structure = None
     try:
@@ -371,7 +379,7 @@ def _relaxation(ident: str, row: dict[str, Any], kpt_density: float) -> tuple[di
             details.clear()
             try:
                 structure, residual, converged = relax_monolayer_pw(
-                    structure, settings, ecut_eV=RELAX_ECUT_EV, fmax=RELAX_FMAX,
+                    structure, settings, fmax=RELAX_FMAX,
                     virial_tol_eV=RELAX_VIRIAL_TOL_EV, steps=RELAX_PW_STEPS,
                     check_layer=check, details=details)
             except LayerBroke as exc:
@@ -387,6 +395,8 @@ def _relaxation(ident: str, row: dict[str, Any], kpt_density: float) -> tuple[di
                    **structure_columns(structure))
         if "virial_eV" in details:
             rec.update(virial_eV=round(float(details["virial_eV"]), 5), bfgs_steps=steps,
+                       ecut_eV=float(details["ecut_eV"]),
+                       pulay_virial_eV=round(float(details["pulay_virial_eV"]), 4),
                        lattice_strain=[round(float(x), 6) for x in np.log(
                            np.asarray(structure.lattice.abc[:2]) / start.lattice.abc[:2])])
         if not intact:
@@ -444,7 +454,7 @@ def _parent_made_fields() -> dict[str, Any]:
     """Fields of a relaxation record that the parent writes for a child that left no
     result (timeout, crash): the protocol it ran."""
     return {"generation": RELAX_GENERATION, "lattice_scan": RELAX_TEXT,
-            "smearing_eV": RELAX_SMEARING_EV, "ecut_eV": RELAX_ECUT_EV}
+            "smearing_eV": RELAX_SMEARING_EV}
 
 
 def _earlier_wall_s(old: dict[str, Any] | None) -> float:
@@ -1119,12 +1129,13 @@ def _relax_table(relax: Sequence[dict[str, Any]], records: Sequence[Any]) -> "pd
              # relaxations recorded before the fine scan existed used the coarse scan only
              "lattice_scan": str(r.get("lattice_scan", "coarse only")),
              # relaxations recorded before the coarse pre-relaxation used the scan's mesh;
-             # those with the stress tensor (generation 3) have no pre-relaxation
+             # those with the stress tensor (generation 3 on) have no pre-relaxation
              "pre_relax_kpt_density": (math.nan if int(r.get("generation", 1)) >= 3 else
                                        float(r.get("pre_relax_kpt_density", RELAX_KPT_DENSITY))),
              "generation": int(r.get("generation", 1)),
              "ecut_eV": float(r.get("ecut_eV", math.nan)),
              "virial_eV": float(r.get("virial_eV", math.nan)),
+             "pulay_virial_eV": float(r.get("pulay_virial_eV", math.nan)),
              "bfgs_steps": int(r.get("bfgs_steps", 0)),
              "earlier_wall_s": float(r.get("earlier_wall_s", 0.0)),
              # the generation of the record this one replaced; 0 where it replaced none
@@ -1135,7 +1146,8 @@ def _relax_table(relax: Sequence[dict[str, Any]], records: Sequence[Any]) -> "pd
             for r in _newest(relax).values()]
     cols = ["id", "status", "reason", "converged", "residual_fmax_eV_per_A", "attempts",
             "wall_s", "smearing_eV", "lattice_scan", "pre_relax_kpt_density", "generation",
-            "ecut_eV", "virial_eV", "bfgs_steps", "earlier_wall_s", "replaced_generation",
+            "ecut_eV", "virial_eV", "pulay_virial_eV", "bfgs_steps", "earlier_wall_s",
+            "replaced_generation",
             "lattice_residual",
             "lattice_cycles", "label_status"]
     return pd.DataFrame(rows, columns=cols).sort_values("id").reset_index(drop=True)
@@ -1159,7 +1171,8 @@ def _generations_text(relax: "pd.DataFrame") -> str:
             f"{len(redone) - good} now fail, fall apart or do not converge and are left out")
     if old:
         text += (f". {old} kept relaxations still come from an earlier protocol and wait for "
-                 f"it: {count.get(2, 0)} of generation 2 (LCAO, the lattice from energy scans "
+                 f"it: {count.get(3, 0)} of generation 3 (plane waves without the Pulay "
+                 f"correction), {count.get(2, 0)} of generation 2 (LCAO, the lattice from energy scans "
                  f"with the positions held fractional, then refined to zero in-plane stress "
                  f"by finite differences of the energy) and {count.get(1, 0)} of generation 1 "
                  f"(LCAO, the scans alone, biased toward the lattice at which the positions "
@@ -1307,7 +1320,8 @@ python scripts/build_open_dataset.py --seed {seed} --workers 2    # or: make dat
    turn takes the candidate whose elements are least covered so far (seeded order).
 3. **Relaxation** (`prescreen.physics.dft.relax_monolayer_pw`, generation
    {RELAX_GENERATION} in `{RELAX_PARQUET}`): the labels' functional (PBE) and PAW setups in GPAW's
-   plane-wave mode ({RELAX_ECUT_EV:g} eV cutoff), which has the stress tensor; k-point density
+   plane-wave mode ({RELAX_ECUT_EV:g} eV cutoff, {HARD_PW_ECUT_EV:g} eV for layers with
+   {', '.join(sorted(HARD_ELEMENTS))}), which has the stress tensor; k-point density
    {RELAX_KPT_DENSITY} per reciprocal angstrom, Fermi-Dirac width {RELAX_SMEARING_EV} eV.
    From the pool geometry, one BFGS run over the positions and the in-plane strain
    (ASE's `FrechetCellFilter`, strains xx, yy and xy free, so the angle between the
@@ -1315,7 +1329,9 @@ python scripts/build_open_dataset.py --seed {seed} --workers 2    # or: make dat
    every force is below {RELAX_FMAX} eV/A and each in-plane component of V sigma (the
    derivative of the energy with respect to that strain) below {RELAX_VIRIAL_TOL_EV} eV per cell, at
    most {RELAX_PW_STEPS} steps per attempt, up to {RELAX_ATTEMPTS} attempts (columns
-   `virial_eV`, `bfgs_steps`, `ecut_eV`). Structures that do not converge, or that are no
+   `virial_eV`, `bfgs_steps`, `ecut_eV`). GPAW's estimate of the Pulay stress of the
+   finite cutoff, from the free atoms' kinetic-energy tails, is added to the stress
+   (`pulay_virial_eV`, large for N, O and F at this cutoff). Structures that do not converge, or that are no
    longer one bonded, 2-periodic sheet with at least 8 A of vacuum (covalent radii x
    1.25 bond test, also run every {LAYER_CHECK_EVERY} steps), are recorded in `{RELAX_PARQUET}` and left
    out. {generations_text}

@@ -238,7 +238,7 @@ def test_stratified_order_small_cells_first_and_prototypes_take_turns(pool):
     assert driver.stratified_order(pool, seed=1) == order  # same seed, same order
 
 
-def _fake_relax(structure, settings, *, ecut_eV, fmax, virial_tol_eV, steps, check_layer=None,
+def _fake_relax(structure, settings, *, fmax, virial_tol_eV, steps, check_layer=None,
                 details=None):
     """Stand-in for relax_monolayer_pw: behaviour chosen by the first element."""
     import time as _time
@@ -371,7 +371,7 @@ def test_pipeline_labels_each_relaxed_structure_once_and_resumes(tmp_path, monke
     assert len(driver._read_jsonl(work / "relax.jsonl")) == 5
 
 
-def _fake_pw(structure, settings, *, ecut_eV, fmax, virial_tol_eV, steps, check_layer=None,
+def _fake_pw(structure, settings, *, fmax, virial_tol_eV, steps, check_layer=None,
              details=None):
     """Stand-in for relax_monolayer_pw, by the metal: Mo's lattice grows by 2 %, W's stays;
     Nb raises; Zr does not converge; Ti takes longer than any timeout in these tests."""
@@ -385,7 +385,8 @@ def _fake_pw(structure, settings, *, ecut_eV, fmax, virial_tol_eV, steps, check_
     if symbol == "Ti":
         _time.sleep(30)
     strain = {"Mo": 0.02, "Zr": 0.05}.get(symbol, 0.0)
-    details.update(steps=7, virial_eV=0.01, lattice_strain=[strain, strain], ecut_eV=ecut_eV,
+    details.update(steps=7, virial_eV=0.01, pulay_virial_eV=-0.5,
+                   lattice_strain=[strain, strain], ecut_eV=500.0,
                    lattice_converged=symbol != "Zr")
     matrix = structure.lattice.matrix.copy()
     matrix[:2] *= 1 + strain  # in-plane, positions fractional
@@ -443,13 +444,15 @@ def test_structures_of_earlier_protocols_are_relaxed_again_and_relabelled(tmp_pa
                                  relax_timeout_s=3, label_timeout_s=1,
                                  progress=False) == 2  # V's, Hf's first
     newest = driver._newest(driver._read_jsonl(log))
-    assert {i: r["generation"] for i, r in newest.items()} == {i: 3 for i in ids}
+    assert {i: r["generation"] for i, r in newest.items()} == {
+        i: driver.RELAX_GENERATION for i in ids}
     pool_a = {i: structure_from_row(table.set_index("id").loc[i]).lattice.a for i in ids}
     mo = newest[pick["Mo"]]
     # from the pool geometry, not from the old record's (1 % off)
     assert mo["a_A"] == pytest.approx(pool_a[pick["Mo"]] * 1.02)
     assert mo["lattice_strain"] == pytest.approx([np.log(1.02)] * 2, abs=1e-6)  # rounded
     assert mo["earlier_wall_s"] == 100.0 and mo["virial_eV"] == 0.01
+    assert mo["ecut_eV"] == 500.0 and mo["pulay_virial_eV"] == -0.5
     assert newest[pick["W"]]["a_A"] == pytest.approx(pool_a[pick["W"]])
     assert newest[pick["Hf"]]["status"] == "ok" and newest[pick["Hf"]]["earlier_wall_s"] == 50.0
     # failures supersede the old record too: the structure leaves the labelled table
@@ -459,7 +462,8 @@ def test_structures_of_earlier_protocols_are_relaxed_again_and_relabelled(tmp_pa
         rec = newest[pick[metal]]
         assert rec["status"] == status and why in rec["reason"], metal
         assert rec["earlier_wall_s"] == 100.0 and rec["replaced_generation"] == 1, metal
-        assert rec["generation"] == 3 and rec["ecut_eV"] == driver.RELAX_ECUT_EV, metal
+        assert rec["generation"] == driver.RELAX_GENERATION, metal
+        assert rec["lattice_scan"] == driver.RELAX_TEXT, metal
     lines = [json.loads(x) for x in (work / "labels" / RECORDS_FILE).read_text().splitlines()]
     new_lines = {d["id"]: d for d in lines[labels_before:]}
     assert sorted(new_lines) == sorted(pick[m] for m in ("Mo", "W", "V", "Hf", "Nb", "Zr", "Ti"))
@@ -474,7 +478,8 @@ def test_structures_of_earlier_protocols_are_relaxed_again_and_relabelled(tmp_pa
     assert sorted(labelled["id"]) == sorted(pick[m] for m in ("Mo", "W", "Cr", "V", "Hf"))
     # the tables keep one row per structure, the newest; the datasheet says what happened
     relax_df = driver._relax_table(driver._read_jsonl(log), load_records(work / "labels"))
-    assert sorted(relax_df["id"]) == sorted(ids) and set(relax_df["generation"]) == {3}
+    assert sorted(relax_df["id"]) == sorted(ids) and set(relax_df["generation"]) == {
+        driver.RELAX_GENERATION}
     said = driver._generations_text(relax_df)
     assert said.startswith("7 structures relaxed by an earlier protocol have been relaxed")
     assert "4 successfully" in said and "3 now fail" in said and "wait for it" not in said
@@ -559,7 +564,8 @@ def test_an_upgrade_result_replayed_after_a_crash_is_stored_once(tmp_path, monke
     driver.pipeline_stage(table, [pick["Mo"]], work, tmp_path / "out", 7, progress=False)
     lines = (work / "labels" / RECORDS_FILE).read_text().splitlines()
     assert len(lines) == 2  # the first label and the new one, not the new one twice
-    assert driver._newest(driver._read_jsonl(log))[pick["Mo"]]["generation"] == 3
+    assert driver._newest(driver._read_jsonl(log))[pick["Mo"]]["generation"] == \
+        driver.RELAX_GENERATION
     assert driver._superseded_label_hours(work) == pytest.approx(1 / 3600)
 
 
@@ -879,7 +885,7 @@ def test_a_redo_of_an_old_failure_left_by_a_stopped_build_is_recorded_not_rerun(
     ident = pick["Mo"]
     driver._append_jsonl(work / "relax.jsonl", {"id": ident, "status": "failed",
                                                 "reason": "SCF", "wall_s": 50.0})
-    # the generation-3 redo finished, then the build stopped before recording it
+    # the redo finished, then the build stopped before recording it
     (work / "relax_tmp" / f"relax-{ident}.json").write_text(json.dumps(
         {**driver._relax_payload(table.set_index("id"), ident), "status": "ok", "reason": "",
          "residual_fmax_eV_per_A": 0.02, "wall_s": 999.0,

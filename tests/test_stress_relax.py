@@ -116,3 +116,34 @@ def test_a_cell_whose_third_vector_is_tilted_is_refused():
     layer.set_cell(cell)
     with pytest.raises(InputError, match="c along z"):
         stress_relax(layer, FMAX, VIRIAL_TOL, 10)
+
+
+def test_the_pulay_term_is_gpaws_own_estimate_summed_over_the_atoms():
+    # Reference: GPAW's own tool for the energy's variation with the plane-wave cutoff,
+    # ``python -m gpaw.utilities.ekin -d ECUT NAME`` (LDA setups), run as a subprocess;
+    # GPAW's older plane-wave mode adds (2/3) ecut dE/d(ecut) to V sigma
+    # (gpaw/old/wavefunctions/pw.py and gpaw/old/stress.py).
+    import re
+    import subprocess
+    import sys
+
+    pytest.importorskip("gpaw")
+    from prescreen.physics.dft import pulay_virial_eV
+
+    def tool(name, ecut):
+        out = subprocess.run([sys.executable, "-m", "gpaw.utilities.ekin", "-d", str(ecut),
+                              name], capture_output=True, text=True, check=True).stdout
+        return float(re.search(r"=\s*(-?[0-9.]+)", out).group(1))
+
+    expected = 2 / 3 * 500 * (2 * tool("O", 500) + tool("Ta", 500))
+    assert pulay_virial_eV(["Ta", "O", "O"], 500.0, xc="LDA") == pytest.approx(expected,
+                                                                              rel=1e-3)
+    assert expected < -1.0  # oxygen's tail is far from converged at 500 eV
+
+
+def test_layers_with_n_o_or_f_get_the_higher_cutoff():
+    from prescreen.physics.dft import DEFAULT_PW_ECUT_EV, HARD_PW_ECUT_EV, plane_wave_cutoff_eV
+
+    assert plane_wave_cutoff_eV(["Mo", "S", "S"]) == DEFAULT_PW_ECUT_EV
+    assert plane_wave_cutoff_eV(["Ta", "Ta", "N", "O", "O"]) == HARD_PW_ECUT_EV
+    assert plane_wave_cutoff_eV(["Sc", "F"]) == HARD_PW_ECUT_EV

@@ -1191,11 +1191,24 @@ def relax_monolayer(structure: "Structure | Atoms",
     return relaxed, residual, bool(ok and lattice_ok)
 
 
-#: Plane-wave cutoff (eV) of :func:`relax_monolayer_pw`. Measured on 2026-12-03
-#: (``benchmarks/relax_pw.py --ecut 500 700``, table in docs/labeller.md): from 500 to
-#: 700 eV the relaxed lattice moved by 0.001 % for silicene and 0.09 % for 1T-CrSe2.
-#: GPAW 26.7 does not correct the Pulay stress, so this convergence is what counts.
+#: Plane-wave cutoffs (eV) of :func:`relax_monolayer_pw`: the default, and the one for
+#: layers with any of :data:`HARD_ELEMENTS`, whose 2p states need more plane waves.
+#: Measured on 2026-12-03 (``benchmarks/relax_pw.py --ecut 500 700``, table in
+#: docs/labeller.md), the Pulay term added: from 500 to 700 eV the relaxed lattice moved
+#: by 0.001 % for silicene and 0.09 % for 1T-CrSe2 (both without the term, which is
+#: negligible for them), but by 0.85 % for Ta2NO2; at 700 eV Ta2NO2 moved by 0.1 % with
+#: and without the term.
 DEFAULT_PW_ECUT_EV: float = 500.0
+HARD_PW_ECUT_EV: float = 700.0
+#: Elements whose Pulay term at 500 eV exceeds 0.5 eV per atom (:func:`pulay_virial_eV`:
+#: N -1.9, O -1.4, F -0.7; each of the other 55 elements of the open dataset's pool
+#: below 0.4 in size, the largest Co at -0.39).
+HARD_ELEMENTS: frozenset[str] = frozenset({"N", "O", "F"})
+
+
+def plane_wave_cutoff_eV(symbols: Any) -> float:
+    """The relaxation cutoff (eV) for a layer of these chemical symbols."""
+    return HARD_PW_ECUT_EV if HARD_ELEMENTS & set(symbols) else DEFAULT_PW_ECUT_EV
 
 #: Largest in-plane virial (eV per cell, the derivative of the energy with respect to an
 #: in-plane strain) at which :func:`relax_monolayer_pw` stops. 0.05 eV leaves a strain
@@ -1255,9 +1268,53 @@ def stress_relax(atoms: "Atoms", fmax: float, virial_tol_eV: float, steps: int,
     return False, int(opt.nsteps)
 
 
+def pulay_virial_eV(symbols: list[str], ecut_eV: float, xc: str = "PBE") -> float:
+    """GPAW's estimate of the Pulay term of V sigma (eV per cell) at cutoff ``ecut_eV``:
+    (2/3) ecut dE/d(ecut), with dE/d(ecut) summed over the atoms from the kinetic-energy
+    tail of each free-atom setup. It is what GPAW's older plane-wave mode adds to the
+    diagonal of V sigma with ``PW(ecut, dedecut="estimate")`` (``gpaw/old/stress.py``); GPAW
+    26.7's default code does not, so :func:`relax_monolayer_pw` adds it itself. Negative:
+    an incomplete basis pulls the lattice in. At 500 eV it is about -1.9 eV per N atom,
+    -1.4 per O, -0.7 per F and below 0.1 in size for most heavier elements."""
+    from ase.units import Ha
+    from gpaw.setup import create_setup
+    from gpaw.utilities.ekin import dekindecut, ekin
+    from gpaw.xc import XC
+
+    functional = XC(xc)
+    per_atom: dict[str, float] = {}
+    for symbol in symbols:
+        if symbol not in per_atom:
+            G, de, _ = ekin(create_setup(symbol, functional))
+            per_atom[symbol] = -float(dekindecut(G, de, ecut_eV / Ha))
+    return 2.0 / 3.0 * float(ecut_eV) * sum(per_atom[x] for x in symbols)
+
+
+def _pulay_corrected(calc: Any, dedepsilon_eV: float) -> Any:
+    """An ASE calculator around the GPAW plane-wave one ``calc`` that adds
+    ``dedepsilon_eV`` (the Pulay term of V sigma, :func:`pulay_virial_eV`) to the diagonal
+    of V sigma; energy and forces are ``calc``'s."""
+    from ase.calculators.calculator import Calculator, all_changes
+
+    class PulayCorrected(Calculator):
+        implemented_properties = ["energy", "free_energy", "forces", "stress"]
+
+        def calculate(self, atoms: Any = None, properties: Any = ("energy",),
+                      system_changes: Any = all_changes) -> None:
+            super().calculate(atoms, properties, system_changes)
+            a = self.atoms
+            stress = np.array(calc.get_stress(a), dtype=float)
+            stress[:3] += dedepsilon_eV / a.get_volume()
+            self.results = {"energy": calc.get_potential_energy(a),
+                            "free_energy": calc.get_property("free_energy", a),
+                            "forces": calc.get_forces(a), "stress": stress}
+
+    return PulayCorrected()
+
+
 def relax_monolayer_pw(structure: "Structure | Atoms",
                        settings: LabelSettings = LabelSettings(), *,
-                       ecut_eV: float = DEFAULT_PW_ECUT_EV,
+                       ecut_eV: float | None = None,
                        fmax: float = DEFAULT_FMAX_EV_PER_A,
                        virial_tol_eV: float = DEFAULT_VIRIAL_TOL_EV,
                        steps: int = 150,
@@ -1286,7 +1343,8 @@ def relax_monolayer_pw(structure: "Structure | Atoms",
         Level of theory: ``xc``, the k mesh (``kpts`` or ``kpt_density``), the
         Fermi-Dirac width, the vacuum and the spin; ``basis`` is not used.
     ecut_eV
-        Plane-wave cutoff (eV).
+        Plane-wave cutoff (eV); None chooses it by the elements
+        (:func:`plane_wave_cutoff_eV`).
     fmax
         Force tolerance (eV/Angstrom).
     virial_tol_eV
@@ -1300,7 +1358,8 @@ def relax_monolayer_pw(structure: "Structure | Atoms",
         steps: a non-empty answer stops the relaxation with :class:`LayerBroke`.
     details
         Optional dict, filled with ``steps``, ``virial_eV`` (the largest in-plane
-        component at the end), ``lattice_strain`` (log of the change of each in-plane
+        component at the end, Pulay term included), ``pulay_virial_eV`` (that term,
+        :func:`pulay_virial_eV`), ``lattice_strain`` (log of the change of each in-plane
         length), ``ecut_eV`` and ``lattice_converged``.
 
     Returns
@@ -1310,20 +1369,24 @@ def relax_monolayer_pw(structure: "Structure | Atoms",
     """
     from gpaw import PW, FermiDirac, GPAW
 
+    atoms = prepare_monolayer(structure, settings.vacuum_A)
+    if ecut_eV is None:
+        ecut_eV = plane_wave_cutoff_eV(atoms.get_chemical_symbols())
     if fmax <= 0 or virial_tol_eV <= 0 or ecut_eV <= 0 or steps < 1:
         raise InputError("bad relaxation parameters", value=(ecut_eV, fmax, virial_tol_eV, steps),
                          expected="ecut_eV, fmax and virial_tol_eV > 0, steps >= 1")
-    atoms = prepare_monolayer(structure, settings.vacuum_A)
     start = atoms.cell.lengths()[:2].copy()
     kmesh = choose_kpts(atoms, settings)
     if settings.spinpol:
         atoms.set_initial_magnetic_moments([settings.initial_magmom_muB] * len(atoms))
     with _run_in(workdir) as folder, _one_thread():
         try:
-            atoms.calc = GPAW(mode=PW(float(ecut_eV)), xc=settings.xc,
-                              kpts={"size": kmesh, "gamma": True},
-                              occupations=FermiDirac(settings.smearing_eV),
-                              spinpol=settings.spinpol, txt=str(folder / "relax-pw.txt"))
+            dft = GPAW(mode=PW(float(ecut_eV)), xc=settings.xc,
+                       kpts={"size": kmesh, "gamma": True},
+                       occupations=FermiDirac(settings.smearing_eV),
+                       spinpol=settings.spinpol, txt=str(folder / "relax-pw.txt"))
+            pulay = pulay_virial_eV(atoms.get_chemical_symbols(), ecut_eV, settings.xc)
+            atoms.calc = _pulay_corrected(dft, pulay)
             ok, n = stress_relax(atoms, fmax, virial_tol_eV, steps, check_layer,
                                  str(folder / "bfgs-pw.log"), structure)
             residual = float(np.linalg.norm(atoms.get_forces(), axis=1).max())
@@ -1335,6 +1398,7 @@ def relax_monolayer_pw(structure: "Structure | Atoms",
                                  f"{type(exc).__name__}: {exc}") from exc
     if details is not None:
         details.update(steps=int(n), virial_eV=float(np.abs(virial).max()),
+                       pulay_virial_eV=float(pulay),
                        lattice_strain=[float(x) for x in
                                        np.log(atoms.cell.lengths()[:2] / start)],
                        ecut_eV=float(ecut_eV), lattice_converged=bool(ok))
