@@ -461,6 +461,13 @@ def _parent_made_fields() -> dict[str, Any]:
             "smearing_eV": RELAX_SMEARING_EV}
 
 
+def _replaced_fields(old: dict[str, Any]) -> dict[str, Any]:
+    """What a new relaxation record says of the record ``old`` of the same id it replaces:
+    the wall time spent before and the generation replaced."""
+    return {"earlier_wall_s": _earlier_wall_s(old),
+            "replaced_generation": int(old.get("generation", 1))}
+
+
 def _earlier_wall_s(old: dict[str, Any] | None) -> float:
     """Wall time of the relaxations that a new record of the same id replaces."""
     if not old:
@@ -793,8 +800,7 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
                 rec = {**rec, **_parent_made_fields()}
             before = newest_relax.get(ident)  # an older failure, or a timeout, redone
             if before and rec.get("generation") == RELAX_GENERATION:
-                rec = {**rec, "earlier_wall_s": _earlier_wall_s(before),
-                       "replaced_generation": int(before.get("generation", 1))}
+                rec = {**rec, **_replaced_fields(before)}
             if store is not None and ident in labels_now and not pending_relabel(ident):
                 supersede_label(ident)
             _append_jsonl(log, rec)
@@ -815,8 +821,7 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
             rec = LabelRecord.failed(ident, str(rows.loc[ident, "reduced_formula"]), settings,
                                      rec["reason"], rec["wall_s"]).as_dict()
         done = LabelRecord.from_dict(rec)
-        store.append(done)
-        newest_label_line[ident] = done.as_dict(arrays=False)
+        store_label(done)
         consider_z2(done)
         new_labels += 1
         since_pack += 1
@@ -835,8 +840,7 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
                                 "wall_s": float(result.get("wall_s") or 0.0),
                                 **_parent_made_fields()},
                       "label": None}
-        rec = {**result["relax"], "earlier_wall_s": _earlier_wall_s(old),
-               "replaced_generation": int((old or {}).get("generation", 1))}
+        rec = {**result["relax"], **_replaced_fields(old or {})}
         new_label = result.get("label")
         if rec.get("status") == "ok":
             relax_by_id[ident] = rec
@@ -851,8 +855,7 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
             done = LabelRecord.from_dict(new_label)
             replay = replaying and newest_label_line.get(ident) == done.as_dict(arrays=False)
             if not replay:  # (a replayed result whose label is the newest stored already)
-                store.append(done)
-                newest_label_line[ident] = done.as_dict(arrays=False)
+                store_label(done)
                 since_pack += 1
                 if ident not in labels_now:  # its first label
                     new_labels += 1
@@ -870,10 +873,13 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
 
     def supersede_label(ident: str) -> None:
         """Store a stand-in for the label of a geometry since replaced."""
-        stand_in = LabelRecord.failed(ident, str(rows.loc[ident, "reduced_formula"]), settings,
-                                      RELABEL_PENDING, 0.0)
-        store.append(stand_in)
-        newest_label_line[ident] = stand_in.as_dict(arrays=False)
+        store_label(LabelRecord.failed(ident, str(rows.loc[ident, "reduced_formula"]),
+                                       settings, RELABEL_PENDING, 0.0))
+
+    def store_label(done: Any) -> None:
+        """Append a label record to the checkpoint and remember it as the id's newest."""
+        store.append(done)
+        newest_label_line[done.id] = done.as_dict(arrays=False)
 
     def pending_relabel(ident: str) -> bool:
         return str(newest_label_line.get(ident, {}).get("error", "")) == RELABEL_PENDING

@@ -1210,6 +1210,7 @@ def plane_wave_cutoff_eV(symbols: Any) -> float:
     """The relaxation cutoff (eV) for a layer of these chemical symbols."""
     return HARD_PW_ECUT_EV if HARD_ELEMENTS & set(symbols) else DEFAULT_PW_ECUT_EV
 
+
 #: Largest in-plane virial (eV per cell, the derivative of the energy with respect to an
 #: in-plane strain) at which :func:`relax_monolayer_pw` stops. 0.05 eV leaves a strain
 #: error of 0.05 eV over the layer's in-plane stiffness d2E/de2 (tens to hundreds of eV
@@ -1218,6 +1219,11 @@ DEFAULT_VIRIAL_TOL_EV: float = 0.05
 
 #: BFGS steps between two calls of ``check_layer`` in :func:`relax_monolayer_pw`.
 LAYER_CHECK_EVERY: int = 4
+
+
+def _in_plane_virial(atoms: "Atoms") -> np.ndarray:
+    """V sigma (eV per cell) for the in-plane strains xx, yy, xy."""
+    return atoms.get_volume() * atoms.get_stress(voigt=True)[[0, 1, 5]]
 
 
 def stress_relax(atoms: "Atoms", fmax: float, virial_tol_eV: float, steps: int,
@@ -1254,7 +1260,7 @@ def stress_relax(atoms: "Atoms", fmax: float, virial_tol_eV: float, steps: int,
     for _ in opt.irun(fmax=0.0, steps=steps):  # ASE's own test never stops it: ours does
         n = int(opt.nsteps)
         force = float(np.linalg.norm(atoms.get_forces(), axis=1).max())
-        virial = atoms.get_volume() * atoms.get_stress(voigt=True)[[0, 1, 5]]
+        virial = _in_plane_virial(atoms)
         if force < fmax and float(np.abs(virial).max()) < virial_tol_eV:
             return True, n
         if check_layer is not None and n and n % LAYER_CHECK_EVERY == 0:
@@ -1390,7 +1396,7 @@ def relax_monolayer_pw(structure: "Structure | Atoms",
             ok, n = stress_relax(atoms, fmax, virial_tol_eV, steps, check_layer,
                                  str(folder / "bfgs-pw.log"), structure)
             residual = float(np.linalg.norm(atoms.get_forces(), axis=1).max())
-            virial = atoms.get_volume() * atoms.get_stress(voigt=True)[[0, 1, 5]]
+            virial = _in_plane_virial(atoms)
         except LayerBroke:
             raise
         except Exception as exc:
