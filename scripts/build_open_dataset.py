@@ -1010,15 +1010,19 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
 # --- labelling ----------------------------------------------------------------------
 def label_stage(relaxed: Sequence[dict[str, Any]], work: Path, *, workers: int = 1,
                 timeout_s: float = 1800.0, progress: bool = True) -> Any:
-    """Label the relaxed structures with status ``ok`` (resumable; see labeller)."""
+    """Label the relaxed structures with status ``ok`` (resumable; see labeller). A
+    structure whose label is a stand-in for one of an earlier geometry
+    (``RELABEL_PENDING``) is labelled again."""
     from prescreen.physics.dft import LabelSettings
-    from prescreen.physics.labeller import run_labelling
+    from prescreen.physics.labeller import record_lines, run_labelling
 
     jobs = [(r["id"], structure_from_row(r)) for r in _newest(relaxed).values()
             if r.get("status") == "ok"]
+    newest_line = {d["id"]: d for d in record_lines(work / "labels")}
+    redo = [i for i, _ in jobs if newest_line.get(i, {}).get("error") == RELABEL_PENDING]
     with _work_lock(work):
         return run_labelling(jobs, work / "labels", settings=LabelSettings(), workers=workers,
-                             timeout_s=timeout_s, progress=progress)
+                             timeout_s=timeout_s, progress=progress, redo=redo)
 
 
 def _label_records(work: Path) -> list[Any]:

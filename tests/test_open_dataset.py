@@ -413,6 +413,7 @@ def _older(record, generation):
 def test_structures_of_earlier_protocols_are_relaxed_again_and_relabelled(tmp_path,
                                                                           monkeypatch):
     import prescreen.physics.dft as dft
+    import prescreen.physics.labeller as labeller
     from prescreen.physics.labeller import RECORDS_FILE, load_records
     from prescreen.prototypes import structure_from_row
 
@@ -492,6 +493,16 @@ def test_structures_of_earlier_protocols_are_relaxed_again_and_relabelled(tmp_pa
     # --stage label labels the newest geometry of each id, once (here: nothing new)
     summary = driver.label_stage(driver._read_jsonl(log), work, progress=False)
     assert (summary.n_jobs, summary.n_ok + summary.n_failed) == (5, 0)
+    # relaxed once more by --stage relax, the timed-out one keeps its stand-in label,
+    # which --stage label then replaces (the stand-in is not a finished label)
+    monkeypatch.setattr(dft, "relax_monolayer_pw", lambda s, *a, **k: (s, 0.01, True))
+    driver.relax_stage(table, ids, work, timeout_s=60, retry_timeouts=True, progress=False)
+    assert driver._newest(driver._read_jsonl(log))[pick["Ti"]]["status"] == "ok"
+    asked = {}
+    monkeypatch.setattr(labeller, "run_labelling",
+                        lambda jobs, out, **kw: asked.update(ids=[i for i, _ in jobs], **kw))
+    driver.label_stage(driver._read_jsonl(log), work, progress=False)
+    assert pick["Ti"] in asked["ids"] and list(asked["redo"]) == [pick["Ti"]]
     # a timed-out upgrade retried with a longer limit is labelled, its old label replaced
     monkeypatch.setattr(dft, "relax_monolayer_pw", lambda s, *a, **k: (s, 0.01, True))
     driver.pipeline_stage(table, ids, work, tmp_path / "out", 7, relax_timeout_s=60,
