@@ -153,6 +153,9 @@ RELAX_TEXT = (f"stress tensor (plane waves, {RELAX_ECUT_EV:g} eV, {HARD_PW_ECUT_
 #: or its new relaxation failed): the old label's compute counts as replaced, the id
 #: leaves the labelled table, and a build labels it when its newest relaxation is ok.
 RELABEL_PENDING = "superseded: the structure was relaxed again"
+#: Share of the relaxations started that go to structures of an earlier protocol
+#: (``upgrade``) while new structures wait too: 0.5 takes turns.
+DEFAULT_UPGRADE_SHARE = 0.5
 
 #: Relaxation attempts per structure (a second one continues from the first's result
 #: when the first ran out of steps).
@@ -706,7 +709,8 @@ def pipeline_stage(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
                    *, workers: int = 1, relax_timeout_s: float = 3600.0,
                    label_timeout_s: float = 1800.0, kpt_density: float = RELAX_KPT_DENSITY,
                    pack_every: int = 10, progress: bool = True,
-                   retry_timeouts: bool = False) -> int:
+                   retry_timeouts: bool = False,
+                   upgrade_share: float = DEFAULT_UPGRADE_SHARE) -> int:
     """Relax and label ``ids`` as one stream; returns the number of new label records.
 
     A free worker takes the label of a finished relaxation first, else the next
@@ -720,13 +724,17 @@ def pipeline_stage(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
     not labelled are labelled first. Children die with the parent. A failed relaxation
     of the current generation is not tried again, except, with ``retry_timeouts``, one
     that hit a timeout shorter than ``relax_timeout_s``; failures of earlier generations
-    are relaxed again like new structures.
+    are relaxed again like new structures. ``upgrade_share`` (0 to 1) is the share of
+    the relaxations started that go to structures of earlier protocols while new ones
+    wait too.
     """
+    if not 0.0 <= upgrade_share <= 1.0:
+        raise InputError("bad upgrade share", value=upgrade_share, expected="0 to 1")
     with _work_lock(work):
         return _pipeline(pool, ids, work, out, seed, workers=workers,
                          relax_timeout_s=relax_timeout_s, label_timeout_s=label_timeout_s,
                          kpt_density=kpt_density, pack_every=pack_every, progress=progress,
-                         retry_timeouts=retry_timeouts)[0]
+                         retry_timeouts=retry_timeouts, upgrade_share=upgrade_share)[0]
 
 
 def _pipeline(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Path | None,
@@ -747,14 +755,15 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
                    seed: int, *, workers: int, relax_timeout_s: float = 3600.0,
                    label_timeout_s: float = 1800.0, kpt_density: float = RELAX_KPT_DENSITY,
                    pack_every: int = 10, label: bool = True, progress: bool = True,
-                   retry_timeouts: bool = False) -> tuple[int, list[dict[str, Any]]]:
+                   retry_timeouts: bool = False,
+                   upgrade_share: float = DEFAULT_UPGRADE_SHARE) -> tuple[int, list[dict[str, Any]]]:
     """The scheduler behind both stages; returns (new labels, all relaxation records).
 
     Job kinds, in order of priority: the label of a finished relaxation, the Z2
     invariant of a new positive whose bands with SOC are apart at every k
-    (``<work>/z2.jsonl``; parities or Wilson loops), then, taking turns, the relaxation
-    and label anew of a structure relaxed by an earlier protocol (``upgrade``) and the
-    next relaxation. ``label=False`` relaxes only (and upgrades nothing).
+    (``<work>/z2.jsonl``; parities or Wilson loops), then, taking turns in the ratio
+    ``upgrade_share``, the relaxation and label anew of a structure relaxed by an earlier
+    protocol (``upgrade``) and the next relaxation. ``label=False`` relaxes only (and upgrades nothing).
     """
     from tqdm.auto import tqdm
 
@@ -970,8 +979,8 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
                     rec = z2_queue.pop(0)
                     payload = {k: rec[k] for k in ("lattice", "species", "frac_coords")}
                     running.append(_start("z2", rec["id"], payload, tmpdir, kpt_density))
-                elif upgrade_queue and (not relax_queue
-                                        or started["upgrade"] <= started["relax"]):
+                elif upgrade_queue and (not relax_queue or started["upgrade"] < upgrade_share
+                                        * (started["upgrade"] + started["relax"] + 1)):
                     started["upgrade"] += 1
                     ident = upgrade_queue.pop(0)
                     payload = {**_relax_payload(rows, ident),
@@ -1468,6 +1477,10 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--retry-timeouts", action="store_true",
                    help="relax again the structures whose relaxation hit a timeout shorter "
                         "than --relax-timeout (other failures are never retried)")
+    p.add_argument("--upgrade-share", type=float, default=DEFAULT_UPGRADE_SHARE,
+                   help="share (0 to 1) of the relaxations started that relax again a "
+                        "structure of an earlier protocol, while new ones wait too (default "
+                        f"{DEFAULT_UPGRADE_SHARE})")
     p.add_argument("--relax-kpt-density", type=float, default=RELAX_KPT_DENSITY)
     p.add_argument("--out", type=Path, default=ROOT / "data_open")
     p.add_argument("--work", type=Path, default=ROOT / "data_work" / "open_dataset",
@@ -1511,7 +1524,8 @@ def run(args: argparse.Namespace) -> int:
         pipeline_stage(pool, order, args.work, args.out, args.seed, workers=args.workers,
                        relax_timeout_s=args.relax_timeout, label_timeout_s=args.timeout,
                        kpt_density=args.relax_kpt_density, pack_every=args.batch,
-                       progress=progress, retry_timeouts=args.retry_timeouts)
+                       progress=progress, retry_timeouts=args.retry_timeouts,
+                       upgrade_share=args.upgrade_share)
     return 0
 
 

@@ -515,7 +515,14 @@ def test_structures_of_earlier_protocols_are_relaxed_again_and_relabelled(tmp_pa
     assert log.read_text() == before
 
 
-def test_upgrades_and_new_relaxations_take_turns(tmp_path, monkeypatch):
+@pytest.mark.parametrize("share, new_metals, expected", [
+    (0.5, ["Mo", "Cr"], "URUR"),  # the default: turns
+    (0.25, ["Mo", "Cr", "Ta", "Hf", "Pt", "Ni"], "URRRURRR"),
+    (0.0, ["Mo", "Cr"], "RRUU"),  # upgrades once no new structure waits
+    (1.0, ["Mo", "Cr"], "UURR"),
+])
+def test_upgrades_and_new_relaxations_take_turns(tmp_path, monkeypatch, share, new_metals,
+                                                 expected):
     import prescreen.physics.dft as dft
 
     driver = _driver()
@@ -536,10 +543,13 @@ def test_upgrades_and_new_relaxations_take_turns(tmp_path, monkeypatch):
         return real_start(kind, *args, **kwargs)
 
     monkeypatch.setattr(driver, "_start", spy)
-    driver.pipeline_stage(table, old_ids + [pick["Mo"], pick["Cr"]], work, tmp_path / "out", 7,
-                          workers=1, progress=False)
-    assert [k for k in kinds if k in ("upgrade", "relax")] == ["upgrade", "relax"] * 2
-    assert kinds.count("label") == 2  # the new ones; W and V were labelled in their job
+    driver.pipeline_stage(table, old_ids + [pick[m] for m in new_metals], work,
+                          tmp_path / "out", 7, workers=1, progress=False, upgrade_share=share)
+    assert "".join(k[0].upper() for k in kinds if k in ("upgrade", "relax")) == expected
+    # the new ones; W and V were labelled in their job
+    assert kinds.count("label") == len(new_metals)
+    with pytest.raises(InputError, match="bad upgrade share"):
+        driver.pipeline_stage(table, old_ids, work, tmp_path / "out", 7, upgrade_share=1.5)
 
 
 def _mo_labelled(tmp_path, monkeypatch):
