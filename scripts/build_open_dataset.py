@@ -15,10 +15,12 @@ pool
 relax
     Walk the stratified subset (cells of at most ``--max-atoms`` atoms first, round
     robin over prototypes, rarest elements first; see :func:`stratified_order`) and relax
-    each candidate with :func:`prescreen.physics.dft.relax_monolayer` (PBE, LCAO dzp,
-    coarser k mesh). Each outcome, with its residual force, is appended to
-    ``<work>/relax.jsonl``; structures that do not converge or that fall apart
-    (:func:`prescreen.prototypes.check_intact_monolayer`) are recorded and left out.
+    each candidate with :func:`prescreen.physics.dft.relax_monolayer_pw` (PBE, plane
+    waves with the stress tensor, positions and in-plane cell together; coarser k mesh
+    than the labels). Each outcome, with its residual force and in-plane virial, is
+    appended to ``<work>/relax.jsonl``; structures that do not converge or that fall
+    apart (:func:`prescreen.prototypes.check_intact_monolayer`) are recorded and left
+    out. Failures of earlier protocols (``RELAX_GENERATION``) are relaxed again.
 label
     Label the relaxed structures with :func:`prescreen.physics.labeller.run_labelling`
     (resumable; JSONL records and one ``.npz`` per id in ``<work>/labels``).
@@ -29,7 +31,10 @@ pack
 all
     pool, then relaxations and labels as one stream (:func:`pipeline_stage`: a free
     worker labels a finished relaxation first, so no core waits for a batch), packing
-    after every ``--batch`` new labels, until ``--limit`` is reached.
+    after every ``--batch`` labels (new ones and relabels), until ``--limit`` is reached.
+    The Z2 invariant of each new positive with gapped bands is computed too, and
+    structures of the subset relaxed by an earlier protocol are relaxed and labelled
+    again, taking turns with new ones (``--upgrade-share``).
 
 Everything is checkpointed per structure: killing the command (even ``kill -9``) loses
 at most the structures in progress, and rerunning it skips what is done.
@@ -955,12 +960,15 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
                 consider_z2(done)
     done_ids = {i for i, r in _newest(relax).items() if not redo(r)}
     relax_queue = [i for i in ids if i not in done_ids]
-    # successful relaxations of an earlier generation, in the order they were made (a
-    # relax-only run leaves them), except one whose Z2 job is queued already from a label
-    # result collected above: the next run relaxes it again
+    # successful relaxations of an earlier generation among ``ids`` (so ``--limit`` bounds
+    # them too), in the order they were made (a relax-only run leaves them), except one
+    # whose Z2 job is queued already from a label result collected above: the next run
+    # relaxes it again
     waiting = {r["id"] for r in z2_queue}
+    wanted = set(ids)
     upgrade_queue = [r["id"] for r in newest_relax.values()
-                     if label and _needs_upgrade(r) and r["id"] not in waiting]
+                     if label and _needs_upgrade(r) and r["id"] not in waiting
+                     and r["id"] in wanted]
     bar.total = len(label_queue) + len(z2_queue) + len(upgrade_queue) + len(relax_queue)
     running: list[_Job] = []
     # old structures relaxed again and new relaxations take turns, so that neither the
@@ -1303,7 +1311,7 @@ numbers by hand (the integrity test checks the file's hash).*
 | `{POOL_XYZ}` | the same starting geometries as compressed extended XYZ (`id`, `prototype` per frame; positions printed to 8 decimals, the Parquet file keeps full double precision) |
 | `{LABELLED_PARQUET}` | relaxed and labelled monolayers: pool columns, `spillage` (max over k of gamma(k), electrons), `high_spillage` (spillage >= {POSITIVE_THRESHOLD}), `k_max`, `gap_nosoc_eV`, `gap_soc_eV`, `direct_gap_soc_eV` (smallest direct gap with SOC on the mesh; empty for labels from before it was stored), `is_metal`, `magmom_muB`, `kmesh`, `wall_s`, `core_hours`, `relax_wall_s`, `residual_fmax_eV_per_A`, relaxed `lattice`/`species`/`frac_coords`, `gamma_k` and `kpts` (the whole gamma(k) on the mesh), `settings`, `versions`, `z2` (0 or 1, empty where not computed), `z2_method` (`parity` or `wilson`) and `z2_status` |
 | `{LABELLED_XYZ}` | relaxed labelled structures as compressed extended XYZ (`id`, `spillage` per frame) |
-| `{RELAX_PARQUET}` | every relaxation attempted, with `status` (ok, not_converged, fell_apart, failed), `reason`, residual force and the labelling outcome |
+| `{RELAX_PARQUET}` | the newest relaxation of every structure attempted (earlier ones are counted in `earlier_wall_s` and `replaced_generation`), with `status` (ok, not_converged, fell_apart, failed), `reason`, residual force and the labelling outcome |
 | `{MANIFEST}` | SHA-256 and size of every file above and of this datasheet |
 
 ## Counts
@@ -1313,7 +1321,7 @@ numbers by hand (the integrity test checks the file's hash).*
   {int((pool["n_atoms"] <= DEFAULT_MAX_ATOMS).sum())} cells of at most {DEFAULT_MAX_ATOMS} atoms;
   {int((pool["family"] == "polar-trilayer").sum())} of the Janus 1T layers are BiTeI-like polar trilayers
   (pnictogen metal, one chalcogen and one halogen side).
-- Relaxations attempted: {len(relax)} ({status_text}); largest residual force among the
+- Structures relaxed: {len(relax)} ({status_text}, the newest relaxation of each); largest residual force among the
   kept ones: {resid} eV/A.
 - Labelled: **{n_lab}**; positives at spillage >= {POSITIVE_THRESHOLD}: {n_pos}
   (positive rate {_rate(n_pos, n_lab)}); {n_pos_gapped} of the positives have a band gap
@@ -1355,7 +1363,7 @@ python scripts/build_open_dataset.py --seed {seed} --workers 2    # or: make dat
    most {RELAX_PW_STEPS} steps per attempt, up to {RELAX_ATTEMPTS} attempts (columns
    `virial_eV`, `bfgs_steps`, `ecut_eV`). GPAW's estimate of the Pulay stress of the
    finite cutoff, from the free atoms' kinetic-energy tails, is added to the stress
-   (`pulay_virial_eV`, large for N, O and F at this cutoff). Structures that do not converge, or that are no
+   (`pulay_virial_eV`; it is why layers with N, O or F use the higher cutoff). Structures that do not converge, or that are no
    longer one bonded, 2-periodic sheet with at least 8 A of vacuum (covalent radii x
    1.25 bond test, also run every {LAYER_CHECK_EVERY} steps), are recorded in `{RELAX_PARQUET}` and left
    out. {generations_text}
@@ -1408,7 +1416,8 @@ Versions: {ver}.
 - Plane waves are periodic along z: a polar layer (Janus, BiTeI-like) feels a spurious
   field across the vacuum in its relaxation; no dipole correction is applied.
 - Relaxations of generations 1 and 2 (column `generation`), where any remain, are LCAO
-  relaxations without the stress tensor.
+  relaxations without the stress tensor; those of generation 3 are plane-wave ones
+  without the Pulay stress (lattices of layers with N, O or F several per cent short).
 - A high spillage is a strong hint of a band inversion, not a proof of a topological
   phase; confirm with an invariant.
 - The labelled subset is stratified over prototypes and elements but biased towards

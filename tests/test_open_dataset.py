@@ -552,6 +552,26 @@ def test_upgrades_and_new_relaxations_take_turns(tmp_path, monkeypatch, share, n
         driver.pipeline_stage(table, old_ids, work, tmp_path / "out", 7, upgrade_share=1.5)
 
 
+def test_upgrades_stay_within_the_ids_asked_for(tmp_path, monkeypatch):
+    import prescreen.physics.dft as dft
+
+    driver = _driver()
+    monkeypatch.setattr(dft, "label_structure", _fake_label)
+    monkeypatch.setattr(driver, "pack_stage", lambda out, work, seed: None)
+    monkeypatch.setattr(dft, "relax_monolayer_pw", _fake_pw)
+    table, pick = _mx2_sulfides()
+    work = tmp_path / "work"
+    driver.pipeline_stage(table, [pick["W"], pick["V"]], work, tmp_path / "out", 7,
+                          progress=False)
+    log = work / "relax.jsonl"
+    log.write_text("".join(json.dumps(_older(r, 2)) + "\n" for r in driver._read_jsonl(log)))
+    # as with --limit 1 on a subset whose first structure is W: V waits
+    driver.pipeline_stage(table, [pick["W"]], work, tmp_path / "out", 7, progress=False)
+    newest = driver._newest(driver._read_jsonl(log))
+    assert newest[pick["W"]]["generation"] == driver.RELAX_GENERATION
+    assert newest[pick["V"]]["generation"] == 2
+
+
 def _mo_labelled(tmp_path, monkeypatch):
     """A build of the 2H MoS2 layer alone (stand-in relaxation and label, no packing):
     the driver, the pool, its sulfides by metal and the work folder."""
