@@ -515,14 +515,10 @@ def test_structures_of_earlier_protocols_are_relaxed_again_and_relabelled(tmp_pa
     assert log.read_text() == before
 
 
-@pytest.mark.parametrize("share, new_metals, expected", [
-    (0.5, ["Mo", "Cr"], "URUR"),  # the default: turns
-    (0.25, ["Mo", "Cr", "Ta", "Hf", "Pt", "Ni"], "URRRURRR"),
-    (0.0, ["Mo", "Cr"], "RRUU"),  # upgrades once no new structure waits
-    (1.0, ["Mo", "Cr"], "UURR"),
-])
-def test_upgrades_and_new_relaxations_take_turns(tmp_path, monkeypatch, share, new_metals,
-                                                 expected):
+def _w_and_v_of_generation_2(tmp_path, monkeypatch):
+    """A build whose W and V sulfides were relaxed by generation 2 (stand-in relaxations
+    and labels, no packing): the driver, the pool, its sulfides by metal, the work folder
+    and its relaxation log."""
     import prescreen.physics.dft as dft
 
     driver = _driver()
@@ -531,10 +527,23 @@ def test_upgrades_and_new_relaxations_take_turns(tmp_path, monkeypatch, share, n
     monkeypatch.setattr(dft, "relax_monolayer_pw", _fake_pw)
     table, pick = _mx2_sulfides()
     work = tmp_path / "work"
-    old_ids = [pick["W"], pick["V"]]
-    driver.pipeline_stage(table, old_ids, work, tmp_path / "out", 7, progress=False)
+    driver.pipeline_stage(table, [pick["W"], pick["V"]], work, tmp_path / "out", 7,
+                          progress=False)
     log = work / "relax.jsonl"
     log.write_text("".join(json.dumps(_older(r, 2)) + "\n" for r in driver._read_jsonl(log)))
+    return driver, table, pick, work, log
+
+
+@pytest.mark.parametrize("share, new_metals, expected", [
+    (0.5, ["Mo", "Cr"], "URUR"),  # the default: turns
+    (0.25, ["Mo", "Cr", "Ta", "Hf", "Pt", "Ni"], "URRRURRR"),
+    (0.0, ["Mo", "Cr"], "RRUU"),  # upgrades once no new structure waits
+    (1.0, ["Mo", "Cr"], "UURR"),
+])
+def test_upgrades_and_new_relaxations_take_turns(tmp_path, monkeypatch, share, new_metals,
+                                                 expected):
+    driver, table, pick, work, _ = _w_and_v_of_generation_2(tmp_path, monkeypatch)
+    old_ids = [pick["W"], pick["V"]]
     kinds = []
     real_start = driver._start
 
@@ -553,18 +562,7 @@ def test_upgrades_and_new_relaxations_take_turns(tmp_path, monkeypatch, share, n
 
 
 def test_upgrades_stay_within_the_ids_asked_for(tmp_path, monkeypatch):
-    import prescreen.physics.dft as dft
-
-    driver = _driver()
-    monkeypatch.setattr(dft, "label_structure", _fake_label)
-    monkeypatch.setattr(driver, "pack_stage", lambda out, work, seed: None)
-    monkeypatch.setattr(dft, "relax_monolayer_pw", _fake_pw)
-    table, pick = _mx2_sulfides()
-    work = tmp_path / "work"
-    driver.pipeline_stage(table, [pick["W"], pick["V"]], work, tmp_path / "out", 7,
-                          progress=False)
-    log = work / "relax.jsonl"
-    log.write_text("".join(json.dumps(_older(r, 2)) + "\n" for r in driver._read_jsonl(log)))
+    driver, table, pick, work, log = _w_and_v_of_generation_2(tmp_path, monkeypatch)
     # as with --limit 1 on a subset whose first structure is W: V waits
     driver.pipeline_stage(table, [pick["W"]], work, tmp_path / "out", 7, progress=False)
     newest = driver._newest(driver._read_jsonl(log))
