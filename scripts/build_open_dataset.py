@@ -457,6 +457,11 @@ def _older_generation(rec: dict[str, Any]) -> bool:
     return int(rec.get("generation", 1)) < RELAX_GENERATION
 
 
+def _is_positive(label: Any) -> bool:
+    """A successful label record at or above the positive threshold (None: no label)."""
+    return label is not None and label.ok and label.spillage >= POSITIVE_THRESHOLD
+
+
 def _needs_upgrade(rec: dict[str, Any]) -> bool:
     """A successful relaxation of an earlier protocol: relaxed and labelled again."""
     return rec.get("status") == "ok" and _older_generation(rec)
@@ -961,14 +966,15 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
     done_ids = {i for i, r in _newest(relax).items() if not redo(r)}
     relax_queue = [i for i in ids if i not in done_ids]
     # successful relaxations of an earlier generation among ``ids`` (so ``--limit`` bounds
-    # them too), in the order they were made (a relax-only run leaves them), except one
-    # whose Z2 job is queued already from a label result collected above: the next run
-    # relaxes it again
+    # them too), except one whose Z2 job is queued already from a label result collected
+    # above (the next run relaxes it again): the labelled positives first, whose geometry
+    # decides the rarer class and their Z2 jobs, then in the order they were made
     waiting = {r["id"] for r in z2_queue}
     wanted = set(ids)
-    upgrade_queue = [r["id"] for r in newest_relax.values()
-                     if label and _needs_upgrade(r) and r["id"] not in waiting
-                     and r["id"] in wanted]
+    upgrade_queue = sorted(
+        (r["id"] for r in newest_relax.values()
+         if label and _needs_upgrade(r) and r["id"] not in waiting and r["id"] in wanted),
+        key=lambda i: not _is_positive(labels_now.get(i)))
     bar.total = len(label_queue) + len(z2_queue) + len(upgrade_queue) + len(relax_queue)
     running: list[_Job] = []
     # old structures relaxed again and new relaxations take turns, so that neither the

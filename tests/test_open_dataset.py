@@ -561,6 +561,30 @@ def test_upgrades_and_new_relaxations_take_turns(tmp_path, monkeypatch, share, n
         driver.pipeline_stage(table, old_ids, work, tmp_path / "out", 7, upgrade_share=1.5)
 
 
+def test_labelled_positives_are_relaxed_again_first(tmp_path, monkeypatch):
+    from dataclasses import replace as replaced
+
+    from prescreen.physics.dft import LabelSettings
+    from prescreen.physics.labeller import RecordStore, load_records
+
+    driver, table, pick, work, _ = _w_and_v_of_generation_2(tmp_path, monkeypatch)
+    v_label = next(r for r in load_records(work / "labels") if r.id == pick["V"])
+    assert v_label.spillage < driver.POSITIVE_THRESHOLD  # W's and V's: both negative
+    RecordStore(work / "labels", LabelSettings()).append(replaced(v_label, spillage=0.9))
+    started = []
+    real_start = driver._start
+
+    def spy(kind, ident, *args, **kwargs):
+        started.append((kind, ident))
+        return real_start(kind, ident, *args, **kwargs)
+
+    monkeypatch.setattr(driver, "_start", spy)
+    driver.pipeline_stage(table, [pick["W"], pick["V"]], work, tmp_path / "out", 7,
+                          workers=1, progress=False)
+    # W was relaxed first, but V is now a positive
+    assert [i for k, i in started if k == "upgrade"] == [pick["V"], pick["W"]]
+
+
 def test_upgrades_stay_within_the_ids_asked_for(tmp_path, monkeypatch):
     driver, table, pick, work, log = _w_and_v_of_generation_2(tmp_path, monkeypatch)
     # as with --limit 1 on a subset whose first structure is W: V waits
