@@ -26,6 +26,7 @@ import sys
 import tempfile
 import time
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
@@ -183,20 +184,16 @@ def table_structures(table, root: Path) -> tuple[list | None, str]:
     return structures, "formula and structure"
 
 
-def part_cv(seed: int, data: Path) -> None:
+def load_labelled(data: Path) -> tuple[Path, list[str], np.ndarray, Any, str] | None:
+    """The labelled table under ``data`` (or the file ``data``): its path, formulas, 0/1
+    labels at the spillage threshold, features and a note on them; None if there is none."""
     import pandas as pd
 
     from prescreen import SPILLAGE_THRESHOLD
-    from prescreen.errors import InputError
-    from prescreen.baselines import BaseRateBaseline, ElementLinearBaseline, MagpieForestBaseline, RandomBaseline
-    from prescreen.model import SpillageClassifier
-    from prescreen.validation import cross_validate
 
     table_path = data if data.is_file() else find_labelled_table(data)
-    print(f"\n== grouped 5-fold cross-validation (folds by chemical system and reduced formula), seed {seed}")
     if table_path is None:
-        print(f"   NOT RUN: no labelled table (a 'spillage' column with 'formula' or 'id') under {data}/ yet")
-        return
+        return None
     table = pd.read_parquet(table_path) if table_path.suffix == ".parquet" else pd.read_csv(table_path)
     table = table.dropna(subset=["spillage"]).reset_index(drop=True)
     if "formula" not in table.columns:  # labels keyed by id: formulas from the pool
@@ -218,10 +215,32 @@ def part_cv(seed: int, data: Path) -> None:
 
         features = magpie_features(formulas)
         feature_note = f"matminer magpie features only ({type(exc).__name__}: {exc})"
+    return table_path, formulas, y, features, feature_note
+
+
+def describe_data(table_path: Path, y: np.ndarray, feature_note: str) -> None:
+    """Print which labelled table was read and what the model reads."""
+    from prescreen import SPILLAGE_THRESHOLD
+
     print(f"   data: {table_path.relative_to(REPO) if table_path.is_relative_to(REPO) else table_path}: "
           f"{len(y)} labelled rows, {y.sum()} positives (spillage >= {SPILLAGE_THRESHOLD}), "
           f"base rate {y.mean():.3f}")
     print(f"   our model reads {feature_note}")
+
+
+def part_cv(seed: int, data: Path) -> None:
+    from prescreen.errors import InputError
+    from prescreen.baselines import BaseRateBaseline, ElementLinearBaseline, MagpieForestBaseline, RandomBaseline
+    from prescreen.model import SpillageClassifier
+    from prescreen.validation import cross_validate
+
+    print(f"\n== grouped 5-fold cross-validation (folds by chemical system and reduced formula), seed {seed}")
+    loaded = load_labelled(data)
+    if loaded is None:
+        print(f"   NOT RUN: no labelled table (a 'spillage' column with 'formula' or 'id') under {data}/ yet")
+        return
+    table_path, formulas, y, features, feature_note = loaded
+    describe_data(table_path, y, feature_note)
     models = {
         "SpillageClassifier": (lambda: SpillageClassifier(random_state=seed, n_jobs=THREADS), features),
         "random": (lambda: RandomBaseline(random_state=seed), formulas),

@@ -10,8 +10,8 @@ steps, the final virial and the wall time. For five layers it also
 prints a published PBE plane-wave lattice constant, recalled from memory (not read):
 these are the rows whose last column is filled.
 
-Run: ``python benchmarks/relax_pw.py [--ids ID ...] [--ecut 500 700]`` (about a minute
-per structure and cutoff on one core).
+Run: ``python benchmarks/relax_pw.py [--ids ID ...] [--ecut 500 700]`` (one to fifteen
+minutes per structure and cutoff on one core; about 20 minutes for the default five).
 """
 
 from __future__ import annotations

@@ -1,7 +1,8 @@
 """Benchmark: would a universal interatomic potential do instead of the DFT relaxation?
 
-The open dataset relaxes every monolayer at the labeller's level of theory (GPAW LCAO
-PBE dzp), which costs minutes per structure and bounds how many labels a machine makes.
+The open dataset relaxes every monolayer with the labeller's functional (GPAW PBE; LCAO
+dzp until 2026-12-03, plane waves with the stress tensor since), which costs minutes per
+structure and bounds how many labels a machine makes.
 A universal potential would take seconds. This script measures what it would change:
 it relaxes the *starting* geometry of every labelled monolayer in ``data_open/`` with
 CHGNet (weights ship in its wheel; in-plane cell and positions, ASE's FrechetCellFilter
@@ -10,9 +11,9 @@ the in-plane lattice against the DFT-relaxed one, plus a summary: median and lar
 relative difference, how many land within 1 % and 2 %, and how many changed phase
 (more than 10 % off, or no longer one bonded sheet).
 
-The potential is free to change the in-plane cell shape (xx, yy, xy strain), while the
-DFT relaxation scales the cell isotropically; the "changed phase" cases are near-isotropic
-changes, so this does not explain them, but compare shapes with that in mind. CHGNet's
+The potential is free to change the in-plane cell shape (xx, yy, xy strain), as the
+plane-wave relaxation is; the earlier LCAO relaxation scaled the cell isotropically (the
+"changed phase" cases, measured against those, are near-isotropic changes). CHGNet's
 weights were fitted by its authors to relaxations of another project's database; only
 geometries computed here are compared, nothing of it enters ``data_open/``.
 

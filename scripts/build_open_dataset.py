@@ -15,10 +15,12 @@ pool
 relax
     Walk the stratified subset (cells of at most ``--max-atoms`` atoms first, round
     robin over prototypes, rarest elements first; see :func:`stratified_order`) and relax
-    each candidate with :func:`prescreen.physics.dft.relax_monolayer` (PBE, LCAO dzp,
-    coarser k mesh). Each outcome, with its residual force, is appended to
-    ``<work>/relax.jsonl``; structures that do not converge or that fall apart
-    (:func:`prescreen.prototypes.check_intact_monolayer`) are recorded and left out.
+    each candidate with :func:`prescreen.physics.dft.relax_monolayer_pw` (PBE, plane
+    waves with the stress tensor, positions and in-plane cell together; coarser k mesh
+    than the labels). Each outcome, with its residual force and in-plane virial, is
+    appended to ``<work>/relax.jsonl``; structures that do not converge or that fall
+    apart (:func:`prescreen.prototypes.check_intact_monolayer`) are recorded and left
+    out. Failures of earlier protocols (``RELAX_GENERATION``) are relaxed again.
 label
     Label the relaxed structures with :func:`prescreen.physics.labeller.run_labelling`
     (resumable; JSONL records and one ``.npz`` per id in ``<work>/labels``).
@@ -29,7 +31,10 @@ pack
 all
     pool, then relaxations and labels as one stream (:func:`pipeline_stage`: a free
     worker labels a finished relaxation first, so no core waits for a batch), packing
-    after every ``--batch`` new labels, until ``--limit`` is reached.
+    after every ``--batch`` labels (new ones and relabels), until ``--limit`` is reached.
+    The Z2 invariant of each new positive with gapped bands is computed too, and
+    structures of the subset relaxed by an earlier protocol are relaxed and labelled
+    again, taking turns with new ones (``--upgrade-share``).
 
 Everything is checkpointed per structure: killing the command (even ``kill -9``) loses
 at most the structures in progress, and rerunning it skips what is done.
@@ -153,6 +158,9 @@ RELAX_TEXT = (f"stress tensor (plane waves, {RELAX_ECUT_EV:g} eV, {HARD_PW_ECUT_
 #: or its new relaxation failed): the old label's compute counts as replaced, the id
 #: leaves the labelled table, and a build labels it when its newest relaxation is ok.
 RELABEL_PENDING = "superseded: the structure was relaxed again"
+#: Share of the relaxations started that go to structures of an earlier protocol
+#: (``upgrade``) while new structures wait too: 0.5 takes turns.
+DEFAULT_UPGRADE_SHARE = 0.5
 
 #: Relaxation attempts per structure (a second one continues from the first's result
 #: when the first ran out of steps).
@@ -449,6 +457,11 @@ def _older_generation(rec: dict[str, Any]) -> bool:
     return int(rec.get("generation", 1)) < RELAX_GENERATION
 
 
+def _is_positive(label: Any) -> bool:
+    """A successful label record at or above the positive threshold (None: no label)."""
+    return label is not None and label.ok and label.spillage >= POSITIVE_THRESHOLD
+
+
 def _needs_upgrade(rec: dict[str, Any]) -> bool:
     """A successful relaxation of an earlier protocol: relaxed and labelled again."""
     return rec.get("status") == "ok" and _older_generation(rec)
@@ -706,7 +719,8 @@ def pipeline_stage(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
                    *, workers: int = 1, relax_timeout_s: float = 3600.0,
                    label_timeout_s: float = 1800.0, kpt_density: float = RELAX_KPT_DENSITY,
                    pack_every: int = 10, progress: bool = True,
-                   retry_timeouts: bool = False) -> int:
+                   retry_timeouts: bool = False,
+                   upgrade_share: float = DEFAULT_UPGRADE_SHARE) -> int:
     """Relax and label ``ids`` as one stream; returns the number of new label records.
 
     A free worker takes the label of a finished relaxation first, else the next
@@ -720,13 +734,17 @@ def pipeline_stage(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
     not labelled are labelled first. Children die with the parent. A failed relaxation
     of the current generation is not tried again, except, with ``retry_timeouts``, one
     that hit a timeout shorter than ``relax_timeout_s``; failures of earlier generations
-    are relaxed again like new structures.
+    are relaxed again like new structures. ``upgrade_share`` (0 to 1) is the share of
+    the relaxations started that go to structures of earlier protocols while new ones
+    wait too.
     """
+    if not 0.0 <= upgrade_share <= 1.0:
+        raise InputError("bad upgrade share", value=upgrade_share, expected="0 to 1")
     with _work_lock(work):
         return _pipeline(pool, ids, work, out, seed, workers=workers,
                          relax_timeout_s=relax_timeout_s, label_timeout_s=label_timeout_s,
                          kpt_density=kpt_density, pack_every=pack_every, progress=progress,
-                         retry_timeouts=retry_timeouts)[0]
+                         retry_timeouts=retry_timeouts, upgrade_share=upgrade_share)[0]
 
 
 def _pipeline(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Path | None,
@@ -747,14 +765,15 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
                    seed: int, *, workers: int, relax_timeout_s: float = 3600.0,
                    label_timeout_s: float = 1800.0, kpt_density: float = RELAX_KPT_DENSITY,
                    pack_every: int = 10, label: bool = True, progress: bool = True,
-                   retry_timeouts: bool = False) -> tuple[int, list[dict[str, Any]]]:
+                   retry_timeouts: bool = False,
+                   upgrade_share: float = DEFAULT_UPGRADE_SHARE) -> tuple[int, list[dict[str, Any]]]:
     """The scheduler behind both stages; returns (new labels, all relaxation records).
 
     Job kinds, in order of priority: the label of a finished relaxation, the Z2
     invariant of a new positive whose bands with SOC are apart at every k
-    (``<work>/z2.jsonl``; parities or Wilson loops), then, taking turns, the relaxation
-    and label anew of a structure relaxed by an earlier protocol (``upgrade``) and the
-    next relaxation. ``label=False`` relaxes only (and upgrades nothing).
+    (``<work>/z2.jsonl``; parities or Wilson loops), then, taking turns in the ratio
+    ``upgrade_share``, the relaxation and label anew of a structure relaxed by an earlier
+    protocol (``upgrade``) and the next relaxation. ``label=False`` relaxes only (and upgrades nothing).
     """
     from tqdm.auto import tqdm
 
@@ -946,12 +965,16 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
                 consider_z2(done)
     done_ids = {i for i, r in _newest(relax).items() if not redo(r)}
     relax_queue = [i for i in ids if i not in done_ids]
-    # successful relaxations of an earlier generation, in the order they were made (a
-    # relax-only run leaves them), except one whose Z2 job is queued already from a label
-    # result collected above: the next run relaxes it again
+    # successful relaxations of an earlier generation among ``ids`` (so ``--limit`` bounds
+    # them too), except one whose Z2 job is queued already from a label result collected
+    # above (the next run relaxes it again): the labelled positives first, whose geometry
+    # decides the rarer class and their Z2 jobs, then in the order they were made
     waiting = {r["id"] for r in z2_queue}
-    upgrade_queue = [r["id"] for r in newest_relax.values()
-                     if label and _needs_upgrade(r) and r["id"] not in waiting]
+    wanted = set(ids)
+    upgrade_queue = sorted(
+        (r["id"] for r in newest_relax.values()
+         if label and _needs_upgrade(r) and r["id"] not in waiting and r["id"] in wanted),
+        key=lambda i: not _is_positive(labels_now.get(i)))
     bar.total = len(label_queue) + len(z2_queue) + len(upgrade_queue) + len(relax_queue)
     running: list[_Job] = []
     # old structures relaxed again and new relaxations take turns, so that neither the
@@ -970,8 +993,8 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
                     rec = z2_queue.pop(0)
                     payload = {k: rec[k] for k in ("lattice", "species", "frac_coords")}
                     running.append(_start("z2", rec["id"], payload, tmpdir, kpt_density))
-                elif upgrade_queue and (not relax_queue
-                                        or started["upgrade"] <= started["relax"]):
+                elif upgrade_queue and (not relax_queue or started["upgrade"] < upgrade_share
+                                        * (started["upgrade"] + started["relax"] + 1)):
                     started["upgrade"] += 1
                     ident = upgrade_queue.pop(0)
                     payload = {**_relax_payload(rows, ident),
@@ -1010,15 +1033,19 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
 # --- labelling ----------------------------------------------------------------------
 def label_stage(relaxed: Sequence[dict[str, Any]], work: Path, *, workers: int = 1,
                 timeout_s: float = 1800.0, progress: bool = True) -> Any:
-    """Label the relaxed structures with status ``ok`` (resumable; see labeller)."""
+    """Label the relaxed structures with status ``ok`` (resumable; see labeller). A
+    structure whose label is a stand-in for one of an earlier geometry
+    (``RELABEL_PENDING``) is labelled again."""
     from prescreen.physics.dft import LabelSettings
-    from prescreen.physics.labeller import run_labelling
+    from prescreen.physics.labeller import record_lines, run_labelling
 
     jobs = [(r["id"], structure_from_row(r)) for r in _newest(relaxed).values()
             if r.get("status") == "ok"]
+    newest_line = {d["id"]: d for d in record_lines(work / "labels")}
+    redo = [i for i, _ in jobs if newest_line.get(i, {}).get("error") == RELABEL_PENDING]
     with _work_lock(work):
         return run_labelling(jobs, work / "labels", settings=LabelSettings(), workers=workers,
-                             timeout_s=timeout_s, progress=progress)
+                             timeout_s=timeout_s, progress=progress, redo=redo)
 
 
 def _label_records(work: Path) -> list[Any]:
@@ -1290,7 +1317,7 @@ numbers by hand (the integrity test checks the file's hash).*
 | `{POOL_XYZ}` | the same starting geometries as compressed extended XYZ (`id`, `prototype` per frame; positions printed to 8 decimals, the Parquet file keeps full double precision) |
 | `{LABELLED_PARQUET}` | relaxed and labelled monolayers: pool columns, `spillage` (max over k of gamma(k), electrons), `high_spillage` (spillage >= {POSITIVE_THRESHOLD}), `k_max`, `gap_nosoc_eV`, `gap_soc_eV`, `direct_gap_soc_eV` (smallest direct gap with SOC on the mesh; empty for labels from before it was stored), `is_metal`, `magmom_muB`, `kmesh`, `wall_s`, `core_hours`, `relax_wall_s`, `residual_fmax_eV_per_A`, relaxed `lattice`/`species`/`frac_coords`, `gamma_k` and `kpts` (the whole gamma(k) on the mesh), `settings`, `versions`, `z2` (0 or 1, empty where not computed), `z2_method` (`parity` or `wilson`) and `z2_status` |
 | `{LABELLED_XYZ}` | relaxed labelled structures as compressed extended XYZ (`id`, `spillage` per frame) |
-| `{RELAX_PARQUET}` | every relaxation attempted, with `status` (ok, not_converged, fell_apart, failed), `reason`, residual force and the labelling outcome |
+| `{RELAX_PARQUET}` | the newest relaxation of every structure attempted (earlier ones are counted in `earlier_wall_s` and `replaced_generation`), with `status` (ok, not_converged, fell_apart, failed), `reason`, residual force and the labelling outcome |
 | `{MANIFEST}` | SHA-256 and size of every file above and of this datasheet |
 
 ## Counts
@@ -1300,7 +1327,7 @@ numbers by hand (the integrity test checks the file's hash).*
   {int((pool["n_atoms"] <= DEFAULT_MAX_ATOMS).sum())} cells of at most {DEFAULT_MAX_ATOMS} atoms;
   {int((pool["family"] == "polar-trilayer").sum())} of the Janus 1T layers are BiTeI-like polar trilayers
   (pnictogen metal, one chalcogen and one halogen side).
-- Relaxations attempted: {len(relax)} ({status_text}); largest residual force among the
+- Structures relaxed: {len(relax)} ({status_text}, the newest relaxation of each); largest residual force among the
   kept ones: {resid} eV/A.
 - Labelled: **{n_lab}**; positives at spillage >= {POSITIVE_THRESHOLD}: {n_pos}
   (positive rate {_rate(n_pos, n_lab)}); {n_pos_gapped} of the positives have a band gap
@@ -1342,7 +1369,7 @@ python scripts/build_open_dataset.py --seed {seed} --workers 2    # or: make dat
    most {RELAX_PW_STEPS} steps per attempt, up to {RELAX_ATTEMPTS} attempts (columns
    `virial_eV`, `bfgs_steps`, `ecut_eV`). GPAW's estimate of the Pulay stress of the
    finite cutoff, from the free atoms' kinetic-energy tails, is added to the stress
-   (`pulay_virial_eV`, large for N, O and F at this cutoff). Structures that do not converge, or that are no
+   (`pulay_virial_eV`; it is why layers with N, O or F use the higher cutoff). Structures that do not converge, or that are no
    longer one bonded, 2-periodic sheet with at least 8 A of vacuum (covalent radii x
    1.25 bond test, also run every {LAYER_CHECK_EVERY} steps), are recorded in `{RELAX_PARQUET}` and left
    out. {generations_text}
@@ -1395,7 +1422,8 @@ Versions: {ver}.
 - Plane waves are periodic along z: a polar layer (Janus, BiTeI-like) feels a spurious
   field across the vacuum in its relaxation; no dipole correction is applied.
 - Relaxations of generations 1 and 2 (column `generation`), where any remain, are LCAO
-  relaxations without the stress tensor.
+  relaxations without the stress tensor; those of generation 3 are plane-wave ones
+  without the Pulay stress (lattices of layers with N, O or F several per cent short).
 - A high spillage is a strong hint of a band inversion, not a proof of a topological
   phase; confirm with an invariant.
 - The labelled subset is stratified over prototypes and elements but biased towards
@@ -1464,6 +1492,10 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--retry-timeouts", action="store_true",
                    help="relax again the structures whose relaxation hit a timeout shorter "
                         "than --relax-timeout (other failures are never retried)")
+    p.add_argument("--upgrade-share", type=float, default=DEFAULT_UPGRADE_SHARE,
+                   help="share (0 to 1) of the relaxations started that relax again a "
+                        "structure of an earlier protocol, while new ones wait too (default "
+                        f"{DEFAULT_UPGRADE_SHARE})")
     p.add_argument("--relax-kpt-density", type=float, default=RELAX_KPT_DENSITY)
     p.add_argument("--out", type=Path, default=ROOT / "data_open")
     p.add_argument("--work", type=Path, default=ROOT / "data_work" / "open_dataset",
@@ -1507,7 +1539,8 @@ def run(args: argparse.Namespace) -> int:
         pipeline_stage(pool, order, args.work, args.out, args.seed, workers=args.workers,
                        relax_timeout_s=args.relax_timeout, label_timeout_s=args.timeout,
                        kpt_density=args.relax_kpt_density, pack_every=args.batch,
-                       progress=progress, retry_timeouts=args.retry_timeouts)
+                       progress=progress, retry_timeouts=args.retry_timeouts,
+                       upgrade_share=args.upgrade_share)
     return 0
 
 

@@ -256,6 +256,17 @@ def test_a_settings_file_with_unknown_fields_is_named(tmp_path, log):
                       progress=False)
 
 
+def test_ids_to_redo_are_recomputed_whatever_their_record(tmp_path, log):
+    out = tmp_path / "run"
+    jobs = _jobs(["a", "b", "fail-1"])
+    run_labelling(jobs, out, settings=SETTINGS, compute=fake_compute, progress=False)
+    s = run_labelling(jobs, out, settings=SETTINGS, compute=fake_compute, progress=False,
+                      redo=["b", "fail-1"])
+    assert (s.n_ok, s.n_failed, s.n_skipped) == (1, 1, 1)
+    assert sorted(_calls(log)) == ["a", "b", "b", "fail-1", "fail-1"]
+    assert len(load_records(out)) == 3  # the newest record per id
+
+
 @pytest.mark.parametrize(
     "jobs, kwargs, match",
     [
@@ -263,6 +274,7 @@ def test_a_settings_file_with_unknown_fields_is_named(tmp_path, log):
         ([("../x", None)], {}, "identifier"),
         ([("a", None)], {"workers": 0}, "workers must be a positive integer"),
         ([("a", None)], {"timeout_s": 0}, "timeout_s must be positive"),
+        ([("a", None)], {"redo": ["b"]}, "not among the jobs"),
     ],
 )
 def test_bad_jobs_and_options_are_refused(tmp_path, jobs, kwargs, match):

@@ -413,6 +413,7 @@ def _older(record, generation):
 def test_structures_of_earlier_protocols_are_relaxed_again_and_relabelled(tmp_path,
                                                                           monkeypatch):
     import prescreen.physics.dft as dft
+    import prescreen.physics.labeller as labeller
     from prescreen.physics.labeller import RECORDS_FILE, load_records
     from prescreen.prototypes import structure_from_row
 
@@ -492,6 +493,16 @@ def test_structures_of_earlier_protocols_are_relaxed_again_and_relabelled(tmp_pa
     # --stage label labels the newest geometry of each id, once (here: nothing new)
     summary = driver.label_stage(driver._read_jsonl(log), work, progress=False)
     assert (summary.n_jobs, summary.n_ok + summary.n_failed) == (5, 0)
+    # relaxed once more by --stage relax, the timed-out one keeps its stand-in label,
+    # which --stage label then replaces (the stand-in is not a finished label)
+    monkeypatch.setattr(dft, "relax_monolayer_pw", lambda s, *a, **k: (s, 0.01, True))
+    driver.relax_stage(table, ids, work, timeout_s=60, retry_timeouts=True, progress=False)
+    assert driver._newest(driver._read_jsonl(log))[pick["Ti"]]["status"] == "ok"
+    asked = {}
+    monkeypatch.setattr(labeller, "run_labelling",
+                        lambda jobs, out, **kw: asked.update(ids=[i for i, _ in jobs], **kw))
+    driver.label_stage(driver._read_jsonl(log), work, progress=False)
+    assert pick["Ti"] in asked["ids"] and list(asked["redo"]) == [pick["Ti"]]
     # a timed-out upgrade retried with a longer limit is labelled, its old label replaced
     monkeypatch.setattr(dft, "relax_monolayer_pw", lambda s, *a, **k: (s, 0.01, True))
     driver.pipeline_stage(table, ids, work, tmp_path / "out", 7, relax_timeout_s=60,
@@ -504,7 +515,10 @@ def test_structures_of_earlier_protocols_are_relaxed_again_and_relabelled(tmp_pa
     assert log.read_text() == before
 
 
-def test_upgrades_and_new_relaxations_take_turns(tmp_path, monkeypatch):
+def _w_and_v_of_generation_2(tmp_path, monkeypatch):
+    """A build whose W and V sulfides were relaxed by generation 2 (stand-in relaxations
+    and labels, no packing): the driver, the pool, its sulfides by metal, the work folder
+    and its relaxation log."""
     import prescreen.physics.dft as dft
 
     driver = _driver()
@@ -513,10 +527,23 @@ def test_upgrades_and_new_relaxations_take_turns(tmp_path, monkeypatch):
     monkeypatch.setattr(dft, "relax_monolayer_pw", _fake_pw)
     table, pick = _mx2_sulfides()
     work = tmp_path / "work"
-    old_ids = [pick["W"], pick["V"]]
-    driver.pipeline_stage(table, old_ids, work, tmp_path / "out", 7, progress=False)
+    driver.pipeline_stage(table, [pick["W"], pick["V"]], work, tmp_path / "out", 7,
+                          progress=False)
     log = work / "relax.jsonl"
     log.write_text("".join(json.dumps(_older(r, 2)) + "\n" for r in driver._read_jsonl(log)))
+    return driver, table, pick, work, log
+
+
+@pytest.mark.parametrize("share, new_metals, expected", [
+    (0.5, ["Mo", "Cr"], "URUR"),  # the default: turns
+    (0.25, ["Mo", "Cr", "Ta", "Hf", "Pt", "Ni"], "URRRURRR"),
+    (0.0, ["Mo", "Cr"], "RRUU"),  # upgrades once no new structure waits
+    (1.0, ["Mo", "Cr"], "UURR"),
+])
+def test_upgrades_and_new_relaxations_take_turns(tmp_path, monkeypatch, share, new_metals,
+                                                 expected):
+    driver, table, pick, work, _ = _w_and_v_of_generation_2(tmp_path, monkeypatch)
+    old_ids = [pick["W"], pick["V"]]
     kinds = []
     real_start = driver._start
 
@@ -525,10 +552,46 @@ def test_upgrades_and_new_relaxations_take_turns(tmp_path, monkeypatch):
         return real_start(kind, *args, **kwargs)
 
     monkeypatch.setattr(driver, "_start", spy)
-    driver.pipeline_stage(table, old_ids + [pick["Mo"], pick["Cr"]], work, tmp_path / "out", 7,
+    driver.pipeline_stage(table, old_ids + [pick[m] for m in new_metals], work,
+                          tmp_path / "out", 7, workers=1, progress=False, upgrade_share=share)
+    assert "".join(k[0].upper() for k in kinds if k in ("upgrade", "relax")) == expected
+    # the new ones; W and V were labelled in their job
+    assert kinds.count("label") == len(new_metals)
+    with pytest.raises(InputError, match="bad upgrade share"):
+        driver.pipeline_stage(table, old_ids, work, tmp_path / "out", 7, upgrade_share=1.5)
+
+
+def test_labelled_positives_are_relaxed_again_first(tmp_path, monkeypatch):
+    from dataclasses import replace as replaced
+
+    from prescreen.physics.dft import LabelSettings
+    from prescreen.physics.labeller import RecordStore, load_records
+
+    driver, table, pick, work, _ = _w_and_v_of_generation_2(tmp_path, monkeypatch)
+    v_label = next(r for r in load_records(work / "labels") if r.id == pick["V"])
+    assert v_label.spillage < driver.POSITIVE_THRESHOLD  # W's and V's: both negative
+    RecordStore(work / "labels", LabelSettings()).append(replaced(v_label, spillage=0.9))
+    started = []
+    real_start = driver._start
+
+    def spy(kind, ident, *args, **kwargs):
+        started.append((kind, ident))
+        return real_start(kind, ident, *args, **kwargs)
+
+    monkeypatch.setattr(driver, "_start", spy)
+    driver.pipeline_stage(table, [pick["W"], pick["V"]], work, tmp_path / "out", 7,
                           workers=1, progress=False)
-    assert [k for k in kinds if k in ("upgrade", "relax")] == ["upgrade", "relax"] * 2
-    assert kinds.count("label") == 2  # the new ones; W and V were labelled in their job
+    # W was relaxed first, but V is now a positive
+    assert [i for k, i in started if k == "upgrade"] == [pick["V"], pick["W"]]
+
+
+def test_upgrades_stay_within_the_ids_asked_for(tmp_path, monkeypatch):
+    driver, table, pick, work, log = _w_and_v_of_generation_2(tmp_path, monkeypatch)
+    # as with --limit 1 on a subset whose first structure is W: V waits
+    driver.pipeline_stage(table, [pick["W"]], work, tmp_path / "out", 7, progress=False)
+    newest = driver._newest(driver._read_jsonl(log))
+    assert newest[pick["W"]]["generation"] == driver.RELAX_GENERATION
+    assert newest[pick["V"]]["generation"] == 2
 
 
 def _mo_labelled(tmp_path, monkeypatch):

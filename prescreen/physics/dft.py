@@ -964,7 +964,8 @@ def refine_lattice(atoms: "Atoms", attach: Any, relax: Any, *,
 
 
 #: Most scale points added past an edge of the coarse lattice scan (see
-#: :func:`_bracketed_scan`); 3 steps of 0.05 reach 25 % from the start (chosen here).
+#: :func:`_bracketed_scan`), each one step of the scan's smallest spacing: with the
+#: default scales (spacing 0.02) 3 reach 0.90-1.10 (chosen here).
 MAX_SCAN_EXTENSIONS: int = 3
 
 #: Force tolerance (eV/Angstrom) and step cap of the pre-relaxation at the input cell,

@@ -32,7 +32,7 @@ import traceback
 from dataclasses import dataclass
 from multiprocessing.connection import Connection, wait
 from pathlib import Path
-from typing import TYPE_CHECKING, Any, Callable, Iterable
+from typing import TYPE_CHECKING, Any, Callable, Collection, Iterable
 
 import numpy as np
 
@@ -277,7 +277,8 @@ def _validate_jobs(jobs: Iterable[tuple[str, Any]]) -> list[tuple[str, Any]]:
 def run_labelling(jobs: Iterable[tuple[str, "Structure | Atoms"]], out_dir: Path, *,
                   settings: LabelSettings = LabelSettings(), workers: int = 1,
                   timeout_s: float = 1800.0, compute: Compute = label_structure,
-                  progress: bool = True, retry_failed: bool = False) -> LabelSummary:
+                  progress: bool = True, retry_failed: bool = False,
+                  redo: Collection[str] = ()) -> LabelSummary:
     """Label structures in parallel with checkpointing; safe to rerun after a crash.
 
     Parameters
@@ -300,6 +301,9 @@ def run_labelling(jobs: Iterable[tuple[str, "Structure | Atoms"]], out_dir: Path
         Show a tqdm progress bar.
     retry_failed
         Recompute structures whose newest record is a failure.
+    redo
+        Ids to recompute whatever their newest record says (a structure whose geometry
+        changed, say); an id in ``redo`` but not in ``jobs`` is an error.
 
     Returns
     -------
@@ -319,21 +323,25 @@ def run_labelling(jobs: Iterable[tuple[str, "Structure | Atoms"]], out_dir: Path
         raise InputError("timeout_s must be positive", value=timeout_s, expected="> 0 s")
     t0 = time.perf_counter()
     all_jobs = _validate_jobs(jobs)
+    unknown = sorted(set(redo) - {i for i, _ in all_jobs})
+    if unknown:
+        raise InputError("ids to recompute that are not among the jobs", value=unknown[:5],
+                         expected="every id in redo also in jobs")
     with folder_lock(out_dir, "labelling run"):  # a second run would compute the same ids
         return _run_locked(all_jobs, Path(out_dir), settings, workers, timeout_s, compute,
-                           progress, retry_failed, t0)
+                           progress, retry_failed, frozenset(redo), t0)
 
 
 def _run_locked(all_jobs: list[tuple[str, Any]], out_dir: Path, settings: LabelSettings,
                 workers: int, timeout_s: float, compute: Compute, progress: bool,
-                retry_failed: bool, t0: float) -> LabelSummary:
+                retry_failed: bool, redo: frozenset[str], t0: float) -> LabelSummary:
     """The body of :func:`run_labelling`, run while holding the folder's lock."""
     from tqdm.auto import tqdm
 
     store = RecordStore(out_dir, settings)
     done = store.status()
     pending = [(i, s) for i, s in all_jobs
-               if i not in done or (retry_failed and done[i] == "failed")]
+               if i not in done or i in redo or (retry_failed and done[i] == "failed")]
     n_skipped = len(all_jobs) - len(pending)
     n_ok = n_failed = 0
     core_hours = 0.0
