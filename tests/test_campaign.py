@@ -362,6 +362,15 @@ def test_a_settings_file_from_before_a_field_existed_gains_its_default(campaign)
     assert json.loads(path.read_text()) == LabelSettings(kpt_density=6.0).as_dict()
 
 
+def test_plane_wave_labels_are_asked_for_with_their_mode(campaign):
+    from prescreen.physics.dft import LabelSettings
+
+    assert campaign.label_settings(mode="pw", ecut_eV=600.0) == LabelSettings(
+        mode="pw", ecut_eV=600.0)
+    with pytest.raises(InputError, match="ecut_eV out of range.*mode='pw'"):
+        campaign.label_settings(ecut_eV=600.0)  # a cutoff without plane waves
+
+
 def test_other_settings_are_refused_by_name_including_an_explicit_mesh(campaign):
     from prescreen.physics.dft import LabelSettings
 

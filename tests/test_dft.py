@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import json
 import math
+from dataclasses import replace
 
 import numpy as np
 import pytest
@@ -58,20 +59,26 @@ def _same_k(k1: np.ndarray, k2: np.ndarray) -> bool:
     return bool(np.allclose(d - np.round(d), 0.0, atol=1e-6))
 
 
+REFERENCES = {
+    # QSH, inversion at Gamma of one Kramers pair -> gamma ~ 2 (facts above)
+    "Bi2-buckled": (True, (1.5, 2.5), [(0, 0, 0)]),
+    # QSH, Dirac point at K without SOC -> gamma ~ 1 at K or K'
+    "Sn2-buckled": (True, (0.7, 1.3), [(1 / 3, 1 / 3, 0), (-1 / 3, -1 / 3, 0)]),
+    "BN": (False, (0.0, 0.05), None),  # trivial wide-gap insulator
+    "MoS2-2H": (False, (0.0, 0.1), None),  # trivial insulator
+}
+#: The plane-wave labeller on the same mesh; 400 eV keeps the test short (the facts
+#: above do not hang on the last tenth of an eV).
+COARSE_PW = LabelSettings(kpts=(6, 6, 1), mode="pw", ecut_eV=400.0)
+
+
 @pytest.mark.dft
-@pytest.mark.parametrize(
-    "name, topological, gamma_range, k_expected",
-    [
-        # QSH, inversion at Gamma of one Kramers pair -> gamma ~ 2 (facts above)
-        ("Bi2-buckled", True, (1.5, 2.5), [(0, 0, 0)]),
-        # QSH, Dirac point at K without SOC -> gamma ~ 1 at K or K'
-        ("Sn2-buckled", True, (0.7, 1.3), [(1 / 3, 1 / 3, 0), (-1 / 3, -1 / 3, 0)]),
-        ("BN", False, (0.0, 0.05), None),  # trivial wide-gap insulator
-        ("MoS2-2H", False, (0.0, 0.1), None),  # trivial insulator
-    ],
-)
-def test_spillage_of_reference_monolayers(name, topological, gamma_range, k_expected):
-    rec = label_structure(STRUCTURES[name](), COARSE, id=name)
+@pytest.mark.parametrize("name, settings", [(n, COARSE) for n in REFERENCES]
+                         + [(n, COARSE_PW) for n in ("Bi2-buckled", "Sn2-buckled", "MoS2-2H")],
+                         ids=lambda x: x if isinstance(x, str) else x.mode)
+def test_spillage_of_reference_monolayers(name, settings):
+    topological, gamma_range, k_expected = REFERENCES[name]
+    rec = label_structure(STRUCTURES[name](), settings, id=name)
     assert rec.ok and rec.id == name
     assert (rec.spillage >= SPILLAGE_THRESHOLD) is topological
     assert gamma_range[0] <= rec.spillage <= gamma_range[1]
@@ -90,13 +97,15 @@ def test_spillage_of_reference_monolayers(name, topological, gamma_range, k_expe
 
 
 @pytest.mark.dft
-def test_spillage_vanishes_without_soc():
+@pytest.mark.parametrize("settings", [COARSE, COARSE_PW], ids=["lcao", "pw"])
+def test_spillage_vanishes_without_soc(settings):
     # With the SOC term scaled to zero the SOC states are the spinor states without SOC,
     # so gamma(k) = 0 at every k: checks the interleaved basis layout and the occupations.
-    rec = label_structure(STRUCTURES["Bi2-buckled"](),
-                          LabelSettings(kpts=(6, 6, 1), soc_scale=0.0))
+    rec = label_structure(STRUCTURES["Bi2-buckled"](), replace(settings, soc_scale=0.0))
     assert rec.spillage == pytest.approx(0.0, abs=1e-6)
     assert rec.gap_soc_eV == pytest.approx(rec.gap_nosoc_eV, abs=1e-6)
+    assert rec.settings["mode"] == settings.mode
+    assert rec.settings["ecut_eV"] == (400.0 if settings.mode == "pw" else None)
 
 
 @pytest.mark.dft
@@ -253,6 +262,10 @@ def test_direct_gap_stays_open_in_a_band_inverted_semimetal():
         ({"spinpol": "no"}, "spinpol must be True or False"),
         ({"initial_magmom_muB": float("nan")}, "initial_magmom_muB must be a finite"),
         ({"smearing_eV": True}, "smearing_eV out of range"),
+        ({"mode": "PW"}, "mode unknown"),
+        ({"ecut_eV": 500.0}, "ecut_eV out of range"),  # a cutoff is for plane waves
+        ({"mode": "pw", "ecut_eV": -1.0}, "ecut_eV out of range"),
+        ({"mode": "pw", "ecut_eV": True}, "ecut_eV out of range"),
     ],
 )
 def test_bad_settings_are_refused(kwargs, match):
@@ -263,6 +276,11 @@ def test_bad_settings_are_refused(kwargs, match):
 def test_settings_and_failed_record_round_trip():
     s = LabelSettings(kpts=(9, 9, 1), spinpol=True)
     assert LabelSettings.from_dict(json.loads(json.dumps(s.as_dict()))) == s
+    pw = LabelSettings(mode="pw", ecut_eV=600.0)
+    assert LabelSettings.from_dict(json.loads(json.dumps(pw.as_dict()))) == pw
+    # settings written before the plane-wave mode existed read as LCAO
+    old = {k: v for k, v in LabelSettings().as_dict().items() if k not in ("mode", "ecut_eV")}
+    assert LabelSettings.from_dict(old) == LabelSettings()
     with pytest.raises(InputError, match="unknown label settings"):
         LabelSettings.from_dict({"ecut": 400})
     rec = LabelRecord.failed("x1", "MoS2", s, "LabellingError: boom", wall_s=3.0)
@@ -278,11 +296,31 @@ def test_settings_and_failed_record_round_trip():
      ["points per inverse", "spin-paired"]),
     ({"soc_scale": 0.0}, ["switched off"], ["added"]),
     ({"soc_scale": 0.5}, ["scaled by 0.5"], ["switched off"]),
+    ({"mode": "pw"}, ["plane waves (500 eV, 700 eV with N, O or F)"], ["dzp", "LCAO"]),
+    ({"mode": "pw", "ecut_eV": 600.0}, ["plane waves (600 eV)"], ["dzp"]),
 ])
 def test_settings_are_described_as_computed(kwargs, says, never):
     text = LabelSettings(**kwargs).describe()
     assert all(s in text for s in says) and not any(s in text for s in never)
     assert "mesh" not in LabelSettings(**kwargs).describe(mesh=False)
+
+
+def test_plane_wave_settings_build_a_plane_wave_calculator_and_z2_stays_lcao():
+    pytest.importorskip("gpaw")
+    from prescreen.physics import dft
+
+    pw = LabelSettings(mode="pw")
+    # the relaxation's cutoff choice: 700 eV with N, O or F (plane_wave_cutoff_eV)
+    assert dft.label_cutoff_eV(pw, ["Mo", "S", "S"]) == dft.DEFAULT_PW_ECUT_EV
+    assert dft.label_cutoff_eV(pw, ["Ta", "N", "O"]) == dft.HARD_PW_ECUT_EV
+    assert dft.label_cutoff_eV(replace(pw, ecut_eV=450.0), ["N"]) == 450.0
+    assert dft.label_cutoff_eV(LabelSettings(), ["N"]) is None
+    calc = dft._gpaw_calculator(pw, (6, 6, 1), None, False, symbols=["Mo", "S", "S"])
+    assert calc.parameters.mode.name == "pw" and calc.parameters.mode.ecut == 500.0
+    assert calc.parameters.nbands == dft.PW_LABEL_NBANDS
+    lcao = dft._gpaw_calculator(LabelSettings(), (6, 6, 1), None, False)
+    assert lcao.parameters.mode.name == "lcao" and lcao.parameters.nbands == "nao"
+    assert dft.in_lcao(replace(pw, ecut_eV=450.0, soc_scale=0.5)) == LabelSettings(soc_scale=0.5)
 
 
 @pytest.mark.parametrize(("minimum", "n_extra", "edge"), [

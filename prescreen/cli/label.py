@@ -36,6 +36,13 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     theory.add_argument("--basis", choices=BASES,
                         help="GPAW LCAO basis set: the double-zeta polarised sets gpaw-data "
                         "ships, or the smaller sets GPAW takes from them")
+    theory.add_argument("--mode", choices=("lcao", "pw"),
+                        help="basis of the spillage calculation: lcao (the --basis; the "
+                        "default) or pw (plane waves, as the open dataset relaxes; Z2 runs "
+                        "in LCAO either way)")
+    theory.add_argument("--ecut", type=float, metavar="EV",
+                        help="plane-wave cutoff in eV with --mode pw (default: 500 eV, "
+                        "700 eV for layers with N, O or F)")
     theory.add_argument("--smearing", type=float, metavar="EV",
                         help="Fermi-Dirac width k_B T in eV")
     theory.add_argument("--vacuum", type=float, metavar="A",
@@ -54,7 +61,8 @@ def run(args: argparse.Namespace) -> int:
     with Campaign.open(args.campaign) as campaign:
         settings = campaign.label_settings(
             kpt_density=args.kpt_density, basis=args.basis, smearing_eV=args.smearing,
-            vacuum_A=args.vacuum, spinpol=args.spin_polarised)
+            vacuum_A=args.vacuum, spinpol=args.spin_polarised, mode=args.mode,
+            ecut_eV=args.ecut)
         wanted = args.ids or campaign.pending_ids()
         if not wanted and args.z2:
             from prescreen.errors import CampaignError

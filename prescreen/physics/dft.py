@@ -34,7 +34,7 @@ import tempfile
 import time
 from dataclasses import asdict, dataclass, field, fields, replace
 from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, Sequence
 
 import numpy as np
 
@@ -59,6 +59,8 @@ __all__ = [
     "label_structure",
     "relax_monolayer",
     "relax_monolayer_pw",
+    "in_lcao",
+    "label_cutoff_eV",
     "honeycomb_monolayer",
 ]
 
@@ -107,7 +109,7 @@ class LabelSettings:
     ----------
     basis
         GPAW LCAO basis-set name (``"dzp"``: double-zeta polarised, shipped in
-        ``gpaw-data``).
+        ``gpaw-data``); used when ``mode`` is ``"lcao"``.
     xc
         Exchange-correlation functional (``"PBE"``).
     kpts
@@ -129,6 +131,17 @@ class LabelSettings:
     soc_scale
         Factor (dimensionless) on the spin-orbit term: 1 is physical; 0 switches SOC
         off, a check of the pipeline (the spillage must then vanish).
+    mode
+        ``"lcao"`` (the ``basis``; every Kohn-Sham state of the basis enters the SOC
+        Hamiltonian) or ``"pw"``: plane waves, :data:`PW_LABEL_NBANDS` of the occupied
+        count, all but the top :data:`PW_LABEL_UNCONVERGED` converged. The spillage does
+        not depend on the basis (the states with SOC are written in the states without
+        it); the band energies do (``benchmarks/label_basis.py``). The Z2 methods work
+        from LCAO coefficients and always run in LCAO.
+    ecut_eV
+        Plane-wave cutoff (eV) when ``mode`` is ``"pw"``; None picks
+        :func:`plane_wave_cutoff_eV` of the structure's elements (the dataset
+        relaxation's choice). Must be None in LCAO mode.
     """
 
     basis: str = "dzp"
@@ -140,6 +153,8 @@ class LabelSettings:
     spinpol: bool = False
     initial_magmom_muB: float = 1.0
     soc_scale: float = 1.0
+    mode: str = "lcao"
+    ecut_eV: float | None = None
 
     def __post_init__(self) -> None:
         if self.kpts is not None:
@@ -168,6 +183,15 @@ class LabelSettings:
         if not isinstance(self.basis, str) or not isinstance(self.xc, str):
             raise InputError("basis and xc must be strings", value=(self.basis, self.xc),
                              expected="e.g. basis='dzp', xc='PBE'")
+        if self.mode not in ("lcao", "pw"):
+            raise InputError("LabelSettings.mode unknown", value=self.mode,
+                             expected="'lcao' or 'pw'")
+        if self.ecut_eV is not None and (
+                self.mode != "pw" or isinstance(self.ecut_eV, bool)
+                or not isinstance(self.ecut_eV, (int, float))
+                or not (math.isfinite(self.ecut_eV) and self.ecut_eV > 0)):
+            raise InputError("LabelSettings.ecut_eV out of range", value=(self.mode, self.ecut_eV),
+                             expected="None, or a cutoff > 0 eV with mode='pw'")
 
     def as_dict(self) -> dict[str, Any]:
         """JSON-friendly dictionary (``kpts`` as a list or None)."""
@@ -181,7 +205,9 @@ class LabelSettings:
         ``mesh=False`` leaves out the k mesh (for a calculation on a mesh of its own, such
         as the parity method's even mesh).
         """
-        parts = [self.xc, f"GPAW LCAO {self.basis} basis"]
+        parts = [self.xc, f"GPAW LCAO {self.basis} basis" if self.mode == "lcao" else
+                 "GPAW plane waves (" + (f"{self.ecut_eV:g} eV" if self.ecut_eV else
+                                         "500 eV, 700 eV with N, O or F") + ")"]
         if mesh:
             parts.append(f"a {self.kpts[0]}x{self.kpts[1]} Gamma-centred k mesh"
                          if self.kpts is not None else
@@ -587,14 +613,41 @@ def kramers_occupied(name: str, n_electrons: float) -> int:
     return n_occ
 
 
-def _gpaw_calculator(settings: LabelSettings, kmesh: tuple[int, int, int],
-                     txt: str | Path | None, magnetic: bool, **extra: Any) -> Any:
-    from gpaw import GPAW, FermiDirac
+#: Bands of a plane-wave label, as a share of the occupied count (GPAW's notation), and
+#: how many of the top ones are left unconverged (chosen here: SOC mixes the occupied
+#: states mostly with the lowest empty ones).
+PW_LABEL_NBANDS: str = "200%"
+PW_LABEL_UNCONVERGED: int = 4
 
-    return GPAW(mode="lcao", basis=settings.basis, xc=settings.xc,
-                kpts={"size": kmesh, "gamma": True}, nbands="nao",
+
+def in_lcao(settings: LabelSettings) -> LabelSettings:
+    """``settings`` in LCAO mode (the rest kept): for the methods that need the LCAO
+    coefficients (the Z2 invariants)."""
+    return replace(settings, mode="lcao", ecut_eV=None)
+
+
+def label_cutoff_eV(settings: LabelSettings, symbols: Sequence[str]) -> float | None:
+    """The plane-wave cutoff of a label of these elements (None in LCAO mode)."""
+    if settings.mode != "pw":
+        return None
+    return float(settings.ecut_eV) if settings.ecut_eV else plane_wave_cutoff_eV(symbols)
+
+
+def _gpaw_calculator(settings: LabelSettings, kmesh: tuple[int, int, int],
+                     txt: str | Path | None, magnetic: bool, *,
+                     symbols: Sequence[str] = (), **extra: Any) -> Any:
+    """GPAW in the mode of ``settings``; ``symbols`` pick a plane-wave cutoff left open."""
+    from gpaw import GPAW, PW, FermiDirac
+
+    if settings.mode == "pw":
+        ecut = label_cutoff_eV(settings, symbols)
+        basis = dict(mode=PW(ecut), nbands=PW_LABEL_NBANDS,
+                     convergence={"bands": -PW_LABEL_UNCONVERGED})
+    else:
+        basis = dict(mode="lcao", basis=settings.basis, nbands="nao")
+    return GPAW(xc=settings.xc, kpts={"size": kmesh, "gamma": True},
                 occupations=FermiDirac(settings.smearing_eV), spinpol=magnetic,
-                txt=txt, **extra)
+                txt=txt, **basis, **extra)
 
 
 def _run_in(workdir: Path | None):
@@ -658,7 +711,10 @@ def label_structure(structure: "Structure | Atoms",
     LabellingError
         If GPAW is not installed or the calculation fails; the cause is chained.
     """
-    from prescreen.physics.spillage import occupations_at_fermi_level, spillage_from_overlap
+    from prescreen.physics.spillage import (
+        occupations_at_fermi_level,
+        spillage_from_overlap,
+    )
 
     t0, c0 = time.perf_counter(), time.process_time()
     atoms = prepare_monolayer(structure, settings.vacuum_A, name=id)
@@ -674,7 +730,8 @@ def label_structure(structure: "Structure | Atoms",
         atoms.set_initial_magnetic_moments([settings.initial_magmom_muB] * len(atoms))
     with _run_in(workdir) as folder, _one_thread():
         try:
-            calc = _gpaw_calculator(settings, kmesh, folder / "gpaw.txt", settings.spinpol)
+            calc = _gpaw_calculator(settings, kmesh, folder / "gpaw.txt", settings.spinpol,
+                                    symbols=atoms.get_chemical_symbols())
             atoms.calc = calc
             atoms.get_potential_energy()
             nspins = calc.get_number_of_spins()
@@ -708,7 +765,13 @@ def label_structure(structure: "Structure | Atoms",
     direct_soc = direct_band_gap(e_soc, n_electrons)
     wall = time.perf_counter() - t0
     sdict = settings.as_dict()
-    sdict.update(kmesh=list(kmesh), mode="lcao", nbands="nao",
+    if settings.mode == "pw":
+        sdict.update(ecut_eV=label_cutoff_eV(settings, atoms.get_chemical_symbols()),
+                     nbands=f"{PW_LABEL_NBANDS} of the occupied, all but the top "
+                            f"{PW_LABEL_UNCONVERGED} converged")
+    else:
+        sdict.update(nbands="nao")
+    sdict.update(kmesh=list(kmesh),
                  occupations=f"Fermi-Dirac {settings.smearing_eV} eV; spillage weights "
                              "from each Fermi level")
     k_arg = int(np.argmax(gamma))
@@ -1374,7 +1437,7 @@ def relax_monolayer_pw(structure: "Structure | Atoms",
     (relaxed, residual_fmax_eV_per_A, converged)
         As :func:`relax_monolayer`; ``converged`` is False if BFGS ran out of steps.
     """
-    from gpaw import PW, FermiDirac, GPAW
+    from gpaw import GPAW, PW, FermiDirac
 
     atoms = prepare_monolayer(structure, settings.vacuum_A)
     if ecut_eV is None:

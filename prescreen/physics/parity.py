@@ -60,6 +60,7 @@ from prescreen.physics.dft import (
     choose_kpts,
     code_versions,
     direct_band_gap,
+    in_lcao,
     kramers_occupied,
     prepare_monolayer,
 )
@@ -302,6 +303,7 @@ def z2_from_parities(structure: "Structure | Atoms", settings: LabelSettings = L
         raise InputError("the parity method needs time-reversal symmetry", value="spinpol=True",
                          expected="a non-magnetic calculation (spinpol=False)")
     t0 = time.perf_counter()
+    settings = in_lcao(settings)  # the parities are taken from LCAO coefficients
     inversion = inversion_map(prepare_monolayer(structure, settings.vacuum_A))
     atoms, partner, shift = inversion.atoms, inversion.partner, inversion.shift
     formula = _formula(atoms)

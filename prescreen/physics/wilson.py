@@ -60,6 +60,7 @@ from prescreen.physics.dft import (
     choose_kpts,
     code_versions,
     direct_band_gap,
+    in_lcao,
     kramers_occupied,
     prepare_monolayer,
 )
@@ -316,6 +317,7 @@ def z2_from_wilson_loops(structure: "Structure | Atoms", settings: LabelSettings
                          expected="nk1 >= 4, n_lines >= 2, max_lines >= n_lines, "
                          "max_nk1 >= nk1")
     t0 = time.perf_counter()
+    settings = in_lcao(settings)  # the loops are built from LCAO coefficients
     atoms = prepare_monolayer(structure, settings.vacuum_A)
     formula = _formula(atoms)
     name = id or formula
