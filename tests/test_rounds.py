@@ -393,18 +393,23 @@ def test_campaign_filter_keeps_matching_results_only(trained):
                               campaign_filter={"basis": "dzp"})
 
 
-def test_cost_model_prefers_the_campaigns_own_recorded_costs(tmp_path):
+@pytest.mark.parametrize("code, shape", [
+    ("theirs", "plane-wave shape"),
+    ("GPAW 26.7.0", "LCAO shape"),  # the built-in labeller in its default LCAO mode
+    ("GPAW 26.7.0" + rounds.PW_CODE_SUFFIX, "plane-wave shape"),
+])
+def test_cost_model_prefers_the_campaigns_own_recorded_costs(tmp_path, code, shape):
     camp = Campaign.create(tmp_path / "costs")
     items = _structures()[:8]
     camp.add_candidates([Candidate(c, f, "gen", s) for c, f, s in items])
     hours = [0.5, 0.7, 1.1, 0.9, 2.0, 1.4]
-    camp.ingest_results(([ResultRow(id=c, spillage=0.0, functional="PBE", code="theirs",
+    camp.ingest_results(([ResultRow(id=c, spillage=0.0, functional="PBE", code=code,
                                     kmesh=None, core_hours=h, notes=None, source=f"r:{i}")
                           for i, ((c, _, _), h) in enumerate(zip(items, hours))], []))
     empty = tmp_path / "no_open_data"
     empty.mkdir()
-    model = rounds.cost_model(camp, data_open=empty)
-    assert model.n_fitted == len(hours)
+    model, source = rounds.cost_model_with_source(camp, data_open=empty)
+    assert model.n_fitted == len(hours) and shape in source
     # With a cost_model.json in the folder, that file wins.
     from prescreen.acquire.cost import CostModel
 

@@ -470,6 +470,11 @@ def _cost_cache(kpoints: dict[str, Any]) -> str:
     return COST_DESCRIPTOR_CACHE + ("" if density == DEFAULT_KPT_DENSITY else f"-k{density:g}")
 
 
+#: What the built-in labeller appends to the ``code`` of a plane-wave result (its cost
+#: scales like a plane-wave code's, not like LCAO's).
+PW_CODE_SUFFIX = " (plane waves)"
+
+
 def cost_records(campaign: Campaign, *, data_open: str | Path | None = None) -> pd.DataFrame:
     """Recorded core-hours with the cost descriptors of their structures.
 
@@ -513,7 +518,8 @@ def cost_model_with_source(campaign: Campaign, *,
        :meth:`prescreen.acquire.cost.CostModel.save`);
     2. fitted to the campaign's own results that record ``core_hours`` (your code and
        cluster), when there are at least :data:`MIN_COST_RECORDS`; LCAO-shaped when all
-       of them came from GPAW (the built-in labeller), plane-wave-shaped otherwise;
+       of them came from GPAW's LCAO mode (the built-in labeller's default),
+       plane-wave-shaped otherwise;
     3. the LCAO-shaped model fitted to the wall times the built-in labeller recorded for
        the open dataset, so predicted costs mean core-hours of the built-in labeller;
     4. the unfitted default (placeholder scale, see :mod:`prescreen.acquire.cost`).
@@ -527,7 +533,8 @@ def cost_model_with_source(campaign: Campaign, *,
     if len(records):
         own = records[records["origin"] == "campaign"]
         if len(own) >= MIN_COST_RECORDS:
-            lcao = own["code"].fillna("").str.startswith("GPAW").all()
+            codes = own["code"].fillna("")
+            lcao = (codes.str.startswith("GPAW") & ~codes.str.endswith(PW_CODE_SUFFIX)).all()
             base = CostModel.for_code("lcao") if lcao else CostModel()
             shape = "LCAO" if lcao else "plane-wave"
             return base.fit(own.drop(columns=["code"])), (
@@ -981,14 +988,15 @@ def label_pending(
             failures.append((cid, rec.error or "failed"))
             continue
         kmesh = rec.settings.get("kmesh") or rec.settings.get("kpts")
+        pw = rec.settings.get("mode") == "pw"
         rows.append(ResultRow(
             id=cid, spillage=float(rec.spillage), functional=str(rec.settings.get("xc", "PBE")),
-            code=f"GPAW {rec.versions.get('gpaw', '')}".strip(),
+            code=f"GPAW {rec.versions.get('gpaw', '')}".strip() + (PW_CODE_SUFFIX if pw else ""),
             kmesh="x".join(str(k) for k in kmesh) if kmesh else None,
             core_hours=float(rec.core_hours), gap_soc_eV=float(rec.gap_soc_eV),
             direct_gap_soc_eV=(float(rec.direct_gap_soc_eV)
                                if math.isfinite(rec.direct_gap_soc_eV) else None),
-            notes="prescreen DFT labeller (LCAO, non-self-"
+            notes=f"prescreen DFT labeller ({'plane waves' if pw else 'LCAO'}, non-self-"
             "consistent spin-orbit coupling)", source=f"{out_dir / 'records.jsonl'}:{cid}",
         ))
     report = campaign.ingest_results((rows, []), on_conflict="keep")
