@@ -52,6 +52,7 @@ import multiprocessing as mp
 import os
 import platform
 import re
+import shutil
 import signal
 import sys
 import time
@@ -534,13 +535,25 @@ def _label_one(ident: str, payload: dict[str, Any], result_path: str) -> None:
     write_json(result_path, rec.as_dict())
 
 
-def _child(target: Any, parent: int, *args: Any) -> None:
-    """Child process entry: die with the parent (no orphan runs on), then do the job."""
+def _scratch(result: Path) -> Path:
+    """The child's folder for temporary files (GPAW's logs) next to its result file: a
+    child killed on a timeout or a stop cannot clean up after itself, so the parent
+    removes the folder once the child has ended."""
+    return result.with_suffix(".scratch")
+
+
+def _child(target: Any, parent: int, scratch: str, *args: Any) -> None:
+    """Child process entry: die with the parent (no orphan runs on), then do the job
+    with its temporary files in ``scratch``."""
+    import tempfile
+
     die_with_parent(parent)
     # Ctrl-C and `kill` reach the parent, which stops the children itself; a child must not
     # run the parent's SIGTERM handler (it would unwind into the parent's loop)
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     signal.signal(signal.SIGTERM, signal.SIG_DFL)
+    Path(scratch).mkdir(parents=True, exist_ok=True)
+    tempfile.tempdir = scratch
     target(*args)
 
 
@@ -651,7 +664,8 @@ def _start(kind: str, ident: str, payload: dict[str, Any], tmpdir: Path,
         target, args = _z2_one, (ident, payload, str(result))
     else:
         target, args = _label_one, (ident, payload, str(result))
-    proc = mp.get_context("fork").Process(target=_child, args=(target, os.getpid(), *args))
+    proc = mp.get_context("fork").Process(
+        target=_child, args=(target, os.getpid(), str(_scratch(result)), *args))
     proc.start()
     return _Job(kind, ident, proc, time.perf_counter(), result)
 
@@ -662,6 +676,7 @@ def _stop(jobs: Sequence[_Job]) -> None:
         if job.process.is_alive():
             job.process.kill()
         job.process.join()
+        shutil.rmtree(_scratch(job.result), ignore_errors=True)
 
 
 def _work_lock(work: Path) -> Any:
@@ -683,6 +698,7 @@ def _finished(job: _Job, timeout_s: float) -> dict[str, Any] | None:
     if job.process.is_alive():
         job.process.kill()
     job.process.join()
+    shutil.rmtree(_scratch(job.result), ignore_errors=True)
     if job.result.exists():  # deleted by the caller once recorded
         return json.loads(job.result.read_text(encoding="utf-8"))
     if job.process.exitcode in (-signal.SIGINT, -signal.SIGTERM, -signal.SIGHUP):
@@ -943,6 +959,8 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
     replaying = False
     for stale in tmpdir.glob("*.tmp"):
         stale.unlink()
+    for stale in tmpdir.glob("*.scratch"):  # of children killed with an earlier run
+        shutil.rmtree(stale, ignore_errors=True)
     relax = _read_jsonl(log)
     newest_relax = _newest(relax)
     if store is not None:  # a label whose structure's newest relaxation failed (recorded

@@ -259,7 +259,13 @@ def _fake_relax(structure, settings, *, fmax, virial_tol_eV, steps, check_layer=
             reason = check_layer(AseAtomsAdaptor.get_atoms(broken))
             raise LayerBroke(f"broke: {reason}", reason, broken)
         return broken, 0.01, True
-    if symbol == "Ti":
+    if symbol == "Ti":  # leaves a temporary folder, as GPAW's log folder, when killed
+        import os
+        import tempfile
+
+        made = tempfile.mkdtemp(prefix="prescreen-gpaw-")
+        if os.environ.get("PRESCREEN_FAKE_TMPLOG"):
+            Path(os.environ["PRESCREEN_FAKE_TMPLOG"]).write_text(made)
         _time.sleep(30)
     raise RuntimeError("SCF did not converge")
 
@@ -274,7 +280,13 @@ def test_relax_stage_records_outcomes_and_resumes(tmp_path, monkeypatch):
     pick = {json.loads(d)["M"]: i for d, i in zip(table["decoration"], table["id"])
             if json.loads(d)["X"] == "S"}
     ids = [pick[m] for m in ("Mo", "W", "Cr", "Nb", "Ti", "V")]
+    made = tmp_path / "ti-tmp.txt"
+    monkeypatch.setenv("PRESCREEN_FAKE_TMPLOG", str(made))
     records = driver.relax_stage(table, ids, tmp_path, workers=2, timeout_s=5, progress=False)
+    # the timed-out child's temporary files were in its scratch folder, removed with it
+    assert Path(made.read_text()).parent.parent == tmp_path / "relax_tmp"
+    assert not Path(made.read_text()).exists()
+    assert not list((tmp_path / "relax_tmp").glob("*.scratch"))
     status = {r["id"]: r["status"] for r in records}
     assert status == {pick["Mo"]: "ok", pick["W"]: "not_converged", pick["Cr"]: "fell_apart",
                       pick["Nb"]: "failed", pick["Ti"]: "failed", pick["V"]: "fell_apart"}
