@@ -4,11 +4,11 @@ The open dataset relaxes with plane waves and labels with GPAW's LCAO dzp basis
 (``prescreen.physics.dft.label_structure``). The spillage formula itself does not depend
 on the basis: ``soc_eigenstates`` writes the states with spin-orbit coupling in the
 basis of the Kohn-Sham states without it, and the spillage sums the squares of those
-coefficients over the occupied ones. So the same labeller can run in plane-wave mode by
-swapping its GPAW calculator: plane waves at the cutoff of the relaxation, twice as many
-bands as occupied ones (all but the top four converged), everything else as in
-:class:`~prescreen.physics.dft.LabelSettings` (PBE, k density 5 per inverse Angstrom,
-Fermi-Dirac 0.01 eV, non-self-consistent SOC).
+coefficients over the occupied ones. So the same labeller runs in plane-wave mode
+(``LabelSettings(mode="pw")``): plane waves at the cutoff of the relaxation, twice as
+many bands as occupied ones (all but the top four converged), everything else as in the
+default :class:`~prescreen.physics.dft.LabelSettings` (PBE, k density 5 per inverse
+Angstrom, Fermi-Dirac 0.01 eV, non-self-consistent SOC).
 
 For each given structure (its newest plane-wave relaxation in the build's checkpoint
 ``relax.jsonl``) it prints the spillage, the gap with SOC and the wall time of both, and
@@ -27,33 +27,13 @@ import os
 import sys
 import time
 import warnings
+from dataclasses import replace
 from pathlib import Path
-from typing import Any
 
 os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
-
-#: Bands of the plane-wave label: this share of the occupied count, all but the top
-#: PW_UNCONVERGED converged (chosen here).
-PW_NBANDS = "200%"
-PW_UNCONVERGED = 4
-
-
-def plane_wave_calculator(ecut_eV: float):
-    """A stand-in for ``dft._gpaw_calculator`` that builds a plane-wave calculator."""
-
-    def make(settings: Any, kmesh: tuple[int, int, int], txt: Any, magnetic: bool,
-             **extra: Any) -> Any:
-        from gpaw import GPAW, PW, FermiDirac
-
-        return GPAW(mode=PW(ecut_eV), xc=settings.xc, kpts={"size": kmesh, "gamma": True},
-                    nbands=PW_NBANDS, convergence={"bands": -PW_UNCONVERGED},
-                    occupations=FermiDirac(settings.smearing_eV), spinpol=magnetic,
-                    txt=txt, **extra)
-
-    return make
 
 
 def main() -> int:
@@ -77,7 +57,6 @@ def main() -> int:
               f"{bad} in {args.work / 'relax.jsonl'}")
         return 2
     settings = dft.LabelSettings()
-    lcao_calculator = dft._gpaw_calculator
     print(f"load average {os.getloadavg()[0]:.1f} on {os.cpu_count()} CPUs; "
           f"label settings {settings.as_dict()}", flush=True)
     print(f"{'id':20s} {'formula':8s} {'ecut':>5s} {'spillage LCAO':>13s} {'PW':>7s} "
@@ -88,19 +67,17 @@ def main() -> int:
         rec = newest[ident]
         structure = structure_from_row(rec)
         out = {}
-        for name, make in (("lcao", lcao_calculator),
-                           ("pw", plane_wave_calculator(float(rec["ecut_eV"])))):
-            dft._gpaw_calculator = make
+        for name, level in (("lcao", settings),
+                            ("pw", replace(settings, mode="pw",
+                                           ecut_eV=float(rec["ecut_eV"])))):
             t0 = time.perf_counter()
             try:
                 with warnings.catch_warnings():
                     warnings.simplefilter("ignore")
-                    out[name] = (dft.label_structure(structure, settings, id=ident),
+                    out[name] = (dft.label_structure(structure, level, id=ident),
                                  time.perf_counter() - t0)
             except Exception as exc:  # a benchmark reports and goes on
                 print(f"{ident:20s} {name} failed: {exc}", flush=True)
-            finally:
-                dft._gpaw_calculator = lcao_calculator
         if len(out) < 2:
             continue
         (lc, lt), (pw, pt) = out["lcao"], out["pw"]
