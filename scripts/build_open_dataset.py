@@ -1429,11 +1429,11 @@ Versions: {ver}.
   basis**: band gaps are underestimated, and inversions close to the Fermi level can
   appear or vanish with a better functional or basis.
 - The spillage of a structure that is a **metal without SOC** (`gap_nosoc_eV` 0) depends
-  on where the Fermi level falls within tens of meV: on nine layers labelled both in
-  LCAO and in plane waves at the same geometry, the two insulators agreed within 0.03,
-  while two of the seven metals moved across 0.5 (HgTe 0.20 against 1.02, MoIBr 0.36
-  against 0.62; `benchmarks/label_basis.py`, `docs/labeller.md`). Read their labels,
-  and the positives without a gap, as indicative.
+  on where the Fermi level falls within tens of meV: of twelve layers labelled both in
+  LCAO and in plane waves at the same geometry, two metals without SOC moved across 0.5
+  (HgTe 0.20 against 1.02, MoIBr 0.36 against 0.62), while the five with a gap moved by
+  0.11 at most (`benchmarks/label_basis.py`, `docs/labeller.md`). Read their labels, and
+  the positives without a gap, as indicative.
 - Spin-paired calculations: magnetic ground states are not sought; labels of magnetic
   compounds describe the non-magnetic state.
 - Each relaxation finds the minimum nearest its pool geometry: symmetric starts keep
