@@ -18,6 +18,21 @@ def build_module() -> ModuleType:
     return module
 
 
+def plane_wave_relaxations(work: Path, ids: list[str], caller: str) -> dict[str, dict] | None:
+    """The newest relaxation record of each of ``ids`` in ``<work>/relax.jsonl`` (the
+    build's own reader), or None after saying which ids have no successful plane-wave
+    relaxation as their newest record."""
+    build = build_module()
+    newest = build._newest(build._read_jsonl(work / "relax.jsonl"))
+    bad = [i for i in ids
+           if newest.get(i, {}).get("status") != "ok" or "ecut_eV" not in newest[i]]
+    if bad:
+        print(f"{caller}: no successful plane-wave relaxation as the newest record of "
+              f"{bad} in {work / 'relax.jsonl'}")
+        return None
+    return {i: newest[i] for i in ids}
+
+
 def checkpoint_arguments(description: str) -> tuple[Path, list[dict]]:
     """Parse ``--work`` (the build's checkpoint folder) and read its ``relax.jsonl``:
     returns the folder and the relaxation records, oldest first."""

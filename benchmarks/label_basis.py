@@ -22,7 +22,6 @@ core; the plane-wave label costs several times the LCAO one).
 from __future__ import annotations
 
 import argparse
-import json
 import os
 import sys
 import time
@@ -34,6 +33,9 @@ os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+
+from _build import plane_wave_relaxations  # noqa: E402
 
 
 def main() -> int:
@@ -45,16 +47,8 @@ def main() -> int:
     p.add_argument("ids", nargs="+")
     p.add_argument("--work", type=Path, default=ROOT / "data_work" / "open_dataset")
     args = p.parse_args()
-    newest: dict = {}
-    for line in (args.work / "relax.jsonl").read_text(encoding="utf-8").splitlines():
-        r = json.loads(line) if line else {}
-        if r.get("id"):
-            newest[r["id"]] = r
-    bad = [i for i in args.ids
-           if newest.get(i, {}).get("status") != "ok" or "ecut_eV" not in newest[i]]
-    if bad:
-        print(f"label_basis: no successful plane-wave relaxation as the newest record of "
-              f"{bad} in {args.work / 'relax.jsonl'}")
+    newest = plane_wave_relaxations(args.work, args.ids, "label_basis")
+    if newest is None:
         return 2
     settings = dft.LabelSettings()
     print(f"load average {os.getloadavg()[0]:.1f} on {os.cpu_count()} CPUs; "

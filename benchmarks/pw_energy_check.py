@@ -2,7 +2,7 @@
 
 ``relax_monolayer_pw`` stops where the in-plane stress, with GPAW's estimate of the
 Pulay stress added, vanishes. The Pulay term is an estimate from free atoms; the energy
-at a fixed cutoff needs none. This script takes the newest plane-wave relaxation of
+at a fixed cutoff needs none. This script takes the newest relaxation (a plane-wave one) of
 each given structure in the build's checkpoint (``relax.jsonl``), scales its in-plane
 cell isotropically (positions fractional), relaxes the positions at each scale with the
 same cutoff, k mesh (that of the relaxed cell, kept fixed) and smearing, and prints the
@@ -18,7 +18,6 @@ Run: ``python benchmarks/pw_energy_check.py ID [ID ...] [--scales 0.96 0.98 1 1.
 from __future__ import annotations
 
 import argparse
-import json
 import os
 import sys
 import time
@@ -33,7 +32,7 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
-from _build import build_module  # noqa: E402
+from _build import build_module, plane_wave_relaxations  # noqa: E402
 
 
 def main() -> int:
@@ -51,15 +50,8 @@ def main() -> int:
     p.add_argument("--fmax", type=float, default=0.02, help="eV/A for the positions")
     args = p.parse_args()
     build = build_module()
-    newest: dict = {}
-    for line in (args.work / "relax.jsonl").read_text(encoding="utf-8").splitlines():
-        r = json.loads(line) if line else {}
-        if r.get("status") == "ok" and "ecut_eV" in r:
-            newest[r["id"]] = r
-    missing = [i for i in args.ids if i not in newest]
-    if missing:
-        print(f"pw_energy_check: no successful plane-wave relaxation of {missing} in "
-              f"{args.work / 'relax.jsonl'}")
+    newest = plane_wave_relaxations(args.work, args.ids, "pw_energy_check")
+    if newest is None:
         return 2
     settings = LabelSettings(kpt_density=build.RELAX_KPT_DENSITY,
                              smearing_eV=build.RELAX_SMEARING_EV)
