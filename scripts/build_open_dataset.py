@@ -1034,6 +1034,7 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
          if label and _needs_upgrade(r) and r["id"] not in waiting and r["id"] in wanted),
         key=lambda i: not _is_positive(labels_now.get(i)))
     bar.total = len(label_queue) + len(z2_queue) + len(upgrade_queue) + len(relax_queue)
+    bar.refresh()
     running: list[_Job] = []
     # old structures relaxed again and new relaxations take turns, so that neither the
     # dataset's growth nor its upgrade waits for the other
