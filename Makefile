@@ -53,7 +53,7 @@ BENCH_OUT ?= benchmarks/out
 # "NOT RUN" (exit 2) until data_open/ has enough labels; any other failure stops make.
 benchmarks: venv
 	mkdir -p $(BENCH_OUT)
-	for b in ingest featurise store model learning_curve; do echo "== $$b"; $(PY) benchmarks/$$b.py || exit 1; done
+	for b in ingest featurise store model learning_curve order_cost; do echo "== $$b"; $(PY) benchmarks/$$b.py || exit 1; done
 	$(PY) benchmarks/phase_diagram.py $(BENCH_OUT)/phase_diagram.png
 	$(PY) benchmarks/replay.py $(BENCH_OUT)/replay.png || [ $$? -eq 2 ]
 

@@ -13,8 +13,9 @@ pool
     Generate the candidate pool (:mod:`prescreen.prototypes`) and write
     ``pool.parquet`` and ``pool.extxyz.gz``. Reused when present with the same seed.
 relax
-    Walk the stratified subset (cells of at most ``--max-atoms`` atoms first, round
-    robin over prototypes, rarest elements first; see :func:`stratified_order`) and relax
+    Walk the stratified subset (cells of at most ``--max-atoms`` atoms first, a round
+    robin over prototypes weighted toward cheaper cells, rarest elements first; see
+    :func:`stratified_order`) and relax
     each candidate with :func:`prescreen.physics.dft.relax_monolayer_pw` (PBE, plane
     waves with the stress tensor, positions and in-plane cell together; coarser k mesh
     than the labels). Each outcome, with its residual force and in-plane virial, is
@@ -100,6 +101,7 @@ __all__ = [
     "RELAX_SMEARING_EV",
     "RELAX_ECUT_EV",
     "RELAX_GENERATION",
+    "cell_cost_weight",
     "stratified_order",
     "build_pool",
     "relax_stage",
@@ -169,6 +171,15 @@ RELAX_ATTEMPTS = 2
 
 #: Cells of at most this many atoms are relaxed and labelled first.
 DEFAULT_MAX_ATOMS = 6
+#: Structures relaxed before :func:`stratified_order` weighted the turns by cost: the
+#: build chose them with equal turns per prototype.
+EQUAL_TURNS_RELAXED = 182
+
+#: Relaxation cost of a layer with N, O or F (700 eV cutoff) over one of the same size
+#: without (500 eV): 1.73 from the 33 relaxations of generation 4 that ended ok, fitting
+#: log(wall time) = c + 2 log(n_atoms) + log(factor) [N, O or F] (2026-12-03,
+#: ``benchmarks/order_cost.py``).
+HARD_COST_FACTOR = 1.7
 
 #: Licence of everything in data_open/.
 LICENCE = "CC-BY-4.0"
@@ -313,14 +324,34 @@ def build_pool(out: Path, seed: int, *, force: bool = False, progress: bool = Tr
     return table
 
 
-def stratified_order(pool: "pd.DataFrame", seed: int, max_atoms: int = DEFAULT_MAX_ATOMS) -> list[str]:
+def cell_cost_weight(n_atoms: int, elements: Iterable[str]) -> float:
+    """How often a candidate's prototype waits for its next turn in
+    :func:`stratified_order`: the square root of the relative cost of its relaxation,
+    ``n_atoms`` times :data:`HARD_COST_FACTOR` ** 0.5 for layers with N, O or F.
+
+    The cost model, n_atoms squared times the factor, is a fit to the plane-wave
+    relaxations of generation 4 (``benchmarks/order_cost.py`` prints it).
+    """
+    hard = HARD_COST_FACTOR if HARD_ELEMENTS & set(elements) else 1.0
+    return float(n_atoms) * math.sqrt(hard)
+
+
+def stratified_order(pool: "pd.DataFrame", seed: int, max_atoms: int = DEFAULT_MAX_ATOMS,
+                     weight: Any = None) -> list[str]:
     """Order in which candidates are relaxed and labelled.
 
     Cells with at most ``max_atoms`` atoms come first, then the rest, each tier
-    ordered the same way: prototypes take turns (round robin in table order), and each
-    turn picks, among the prototype's remaining candidates in a seeded random order,
-    the first one whose rarest-so-far element count is smallest (looking ahead at most
-    64 candidates), so that elements are covered evenly.
+    ordered the same way. Prototypes take turns by a weighted round robin: each has a
+    clock that a pick advances by the picked candidate's :func:`cell_cost_weight`, and
+    the next turn goes to the prototype with the earliest clock (ties in table order).
+    The first round so visits every prototype once; after that a prototype of 2-atom
+    cells comes about three times as often as one of 6-atom cells. Turn frequencies
+    inverse to the cost would give every prototype the same compute and the large cells
+    very few labels; equal turns give every prototype the same count and spend most of
+    the compute on the large cells; the square root of the cost sits between the two.
+    Each turn picks, among the prototype's remaining candidates in a seeded random
+    order, the first one whose rarest-so-far element count is smallest (looking ahead at
+    most 64 candidates), so that elements are covered evenly.
 
     Parameters
     ----------
@@ -330,33 +361,42 @@ def stratified_order(pool: "pd.DataFrame", seed: int, max_atoms: int = DEFAULT_M
         Seed of the random order.
     max_atoms
         Size of the cells in the first tier.
+    weight
+        ``weight(n_atoms, elements) -> float`` in place of :func:`cell_cost_weight`;
+        a constant gives equal turns (the order of builds before 2026-12-04).
 
     Returns
     -------
     list of str
         Every pool id exactly once.
     """
+    weight = cell_cost_weight if weight is None else weight
     rng = np.random.default_rng(seed)
     names = [p.name for p in PROTOTYPES]
     order: list[str] = []
     for tier in (pool[pool["n_atoms"] <= max_atoms], pool[pool["n_atoms"] > max_atoms]):
-        queues: dict[str, list[tuple[str, tuple[str, ...]]]] = {}
+        queues: dict[str, list[tuple[str, tuple[str, ...], float]]] = {}
         for name in names:
             sub = tier[tier["prototype"] == name]
             perm = rng.permutation(len(sub))
-            queues[name] = [(sub["id"].iat[i], tuple(sub["elements"].iat[i].split())) for i in perm]
+            queues[name] = []
+            for i in perm:
+                els = tuple(sub["elements"].iat[i].split())
+                queues[name].append((sub["id"].iat[i], els,
+                                     float(weight(int(sub["n_atoms"].iat[i]), els))))
+        clock = {name: 0.0 for name in names}
         seen: Counter[str] = Counter()
         while any(queues.values()):
-            for name in names:
-                q = queues[name]
-                if not q:
-                    continue
-                look = q[:64]
-                scores = [max(seen[e] for e in els) * 1000 + sum(seen[e] for e in els) for _, els in look]
-                k = int(np.argmin(scores))
-                ident, els = q.pop(k)
-                seen.update(els)
-                order.append(ident)
+            name = min((n for n in names if queues[n]), key=lambda n: clock[n])
+            q = queues[name]
+            look = q[:64]
+            scores = [max(seen[e] for e in els) * 1000 + sum(seen[e] for e in els)
+                      for _, els, _ in look]
+            k = int(np.argmin(scores))
+            ident, els, step = q.pop(k)
+            clock[name] += step
+            seen.update(els)
+            order.append(ident)
     return order
 
 
@@ -994,6 +1034,7 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
          if label and _needs_upgrade(r) and r["id"] not in waiting and r["id"] in wanted),
         key=lambda i: not _is_positive(labels_now.get(i)))
     bar.total = len(label_queue) + len(z2_queue) + len(upgrade_queue) + len(relax_queue)
+    bar.refresh()
     running: list[_Job] = []
     # old structures relaxed again and new relaxations take turns, so that neither the
     # dataset's growth nor its upgrade waits for the other
@@ -1373,7 +1414,11 @@ python scripts/build_open_dataset.py --seed {seed} --workers 2    # or: make dat
    Identifiers `o2d-<prototype code>-<10 hex digits of BLAKE2b(seed, prototype,
    decoration)>` are this project's own.
 2. **Subset**: cells of at most {DEFAULT_MAX_ATOMS} atoms first; prototypes take turns and each
-   turn takes the candidate whose elements are least covered so far (seeded order).
+   turn takes the candidate whose elements are least covered so far (seeded order). A
+   prototype's next turn waits in proportion to the square root of its last pick's
+   estimated cost (the number of atoms, times {math.sqrt(HARD_COST_FACTOR):.2f} with N, O or F), so
+   a prototype of 2-atom cells comes about three times as often as one of 6-atom cells.
+   The first {EQUAL_TURNS_RELAXED} structures relaxed were chosen with equal turns.
 3. **Relaxation** (`prescreen.physics.dft.relax_monolayer_pw`, generation
    {RELAX_GENERATION} in `{RELAX_PARQUET}`): the labels' functional (PBE) and PAW setups in GPAW's
    plane-wave mode ({RELAX_ECUT_EV:g} eV cutoff, {HARD_PW_ECUT_EV:g} eV for layers with

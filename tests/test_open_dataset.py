@@ -238,6 +238,39 @@ def test_stratified_order_small_cells_first_and_prototypes_take_turns(pool):
     assert driver.stratified_order(pool, seed=1) == order  # same seed, same order
 
 
+def test_stratified_order_gives_small_cells_more_turns(pool):
+    driver = _driver()
+    small = pool[pool["n_atoms"] <= 6]
+    rows = small.set_index("id")
+    order = driver.stratified_order(small, seed=1, max_atoms=6)
+    # before the first prototype runs out, every prototype's clock (the sum of its
+    # picks' weights) stays within one largest weight of every other's
+    sizes = small["prototype"].value_counts()
+    weights = {i: driver.cell_cost_weight(int(rows.at[i, "n_atoms"]),
+                                          rows.at[i, "elements"].split()) for i in order}
+    clock: dict[str, float] = dict.fromkeys(sizes.index, 0.0)
+    taken: dict[str, int] = dict.fromkeys(sizes.index, 0)
+    for ident in order:
+        proto = rows.at[ident, "prototype"]
+        clock[proto] += weights[ident]
+        taken[proto] += 1
+        if taken[proto] == sizes[proto]:
+            break
+        assert max(clock.values()) - min(clock.values()) <= max(weights.values()) + 1e-9
+    # so a prototype of 2-atom cells comes about three times as often as one of 6
+    two = small[small["prototype"].isin(["honeycomb-flat-AB", "MX2-1Tprime"])
+                & ~small["elements"].str.contains(r"\b(?:N|O|F)\b")]
+    picks = rows.loc[driver.stratified_order(two, seed=1, max_atoms=6), "prototype"]
+    head = picks.iloc[:40].value_counts()
+    assert head["honeycomb-flat-AB"] == 30 and head["MX2-1Tprime"] == 10
+    # layers with N, O or F weigh more than others of the same size
+    assert driver.cell_cost_weight(3, ["Mo", "O"]) > driver.cell_cost_weight(3, ["Mo", "S"])
+    # a constant weight gives equal turns: each prototype once per round
+    equal = driver.stratified_order(small, seed=1, max_atoms=6, weight=lambda n, e: 1.0)
+    first = rows.loc[equal[:2 * len(sizes)], "prototype"].value_counts()
+    assert (first == 2).all() and len(first) == len(sizes)
+
+
 def _fake_relax(structure, settings, *, fmax, virial_tol_eV, steps, check_layer=None,
                 details=None):
     """Stand-in for relax_monolayer_pw: behaviour chosen by the first element."""

@@ -1,0 +1,122 @@
+"""Benchmark: what the build's order of candidates costs, per label.
+
+Reads the build's checkpoints (``data_work/open_dataset``: ``relax.jsonl`` and
+``labels/records.jsonl``) and the pool (``data_open/pool.parquet``).
+
+1. Fits the wall time of the plane-wave relaxations of generation 4 that ended ok, and of
+   the labels of those geometries, to ``log t = c + p log(n_atoms) + log(h) [N, O or F]``,
+   once with ``p`` free and once with ``p = 2`` (the form behind the build's
+   ``HARD_COST_FACTOR``), and prints c, p, h and the scatter.
+2. Takes the next ``--next`` candidates not yet relaxed in two orders of the same pool and
+   seed: equal turns per prototype (the build's order before 2026-12-04) and the
+   cost-weighted turns of ``stratified_order``. For each it prints the predicted
+   core-hours (relaxation + label, from fit 1), labels per core-hour, the prototypes
+   and elements covered, and the spread of cell sizes.
+
+The prediction is a fit to a few dozen jobs, not a measurement of the orders: it
+ranks them, and the build's own timings over the next sessions will check it.
+
+Run: ``python benchmarks/order_cost.py [--next 200] [--work data_work/open_dataset]``
+(seconds).
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from pathlib import Path
+
+import numpy as np
+
+REPO = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(REPO))
+sys.path.insert(0, str(REPO / "benchmarks"))
+
+from _build import build_module  # noqa: E402
+
+GENERATION = 4  # the build's RELAX_GENERATION
+
+
+def fit(n_atoms: np.ndarray, hard: np.ndarray, wall: np.ndarray,
+        exponent: float | None) -> tuple[float, float, float, float]:
+    """Least squares of log(wall) on log(n_atoms) and the hard-element flag:
+    (c, p, h, rms of the log residual); ``exponent`` fixes p."""
+    y = np.log(wall)
+    if exponent is None:
+        x = np.c_[np.ones_like(y), np.log(n_atoms), hard]
+        coef, *_ = np.linalg.lstsq(x, y, rcond=None)
+        c, p, logh = coef
+    else:
+        x = np.c_[np.ones_like(y), hard]
+        coef, *_ = np.linalg.lstsq(x, y - exponent * np.log(n_atoms), rcond=None)
+        (c, logh), p = coef, exponent
+    rms = float(np.sqrt(np.mean((y - (c + p * np.log(n_atoms) + logh * hard)) ** 2)))
+    return float(c), float(p), float(np.exp(logh)), rms
+
+
+def main() -> int:
+    import pandas as pd
+
+    from prescreen.physics.labeller import record_lines
+
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--work", type=Path, default=REPO / "data_work" / "open_dataset")
+    ap.add_argument("--pool", type=Path, default=REPO / "data_open" / "pool.parquet")
+    ap.add_argument("--next", type=int, default=200, help="candidates to predict")
+    args = ap.parse_args()
+    build = build_module()
+    pool = pd.read_parquet(args.pool)
+    rows = pool.set_index("id")
+    relax = build._newest(build._read_jsonl(args.work / "relax.jsonl"))
+    labels = {d["id"]: d for d in record_lines(args.work / "labels")
+              if d.get("status") == "ok"}
+    ok = [r for r in relax.values() if r.get("generation") == GENERATION
+          and r["status"] == "ok" and r["id"] in rows.index]
+    if len(ok) < 5:
+        print(f"only {len(ok)} generation-{GENERATION} relaxations that ended ok in "
+              f"{args.work / 'relax.jsonl'}: too few to fit")
+        return 2
+
+    def hard_flag(ids: list[str]) -> np.ndarray:
+        return np.array([bool(build.HARD_ELEMENTS & set(rows.at[i, "elements"].split()))
+                         for i in ids], dtype=float)
+
+    models = {}
+    for kind, recs in (("relaxation", ok),
+                       ("label", [labels[r["id"]] for r in ok if r["id"] in labels])):
+        ids = [r["id"] for r in recs]
+        n = rows.loc[ids, "n_atoms"].to_numpy(dtype=float)
+        wall = np.array([float(r["wall_s"]) for r in recs])
+        print(f"{kind} wall time, {len(ids)} jobs: median {np.median(wall):.0f} s, "
+              f"total {wall.sum() / 3600:.2f} core-h")
+        for exponent in (None, 2.0):
+            c, p, h, rms = fit(n, hard_flag(ids), wall, exponent)
+            print(f"  fit {'p free ' if exponent is None else 'p fixed'}: t = {np.exp(c):.2f} s"
+                  f" x n_atoms^{p:.2f} x {h:.2f} [N, O or F]; rms of log t {rms:.2f}")
+        models[kind] = fit(n, hard_flag(ids), wall, 2.0)
+    print(f"build: HARD_COST_FACTOR {build.HARD_COST_FACTOR}")
+
+    done = set(relax)
+    orders = {
+        "equal turns": build.stratified_order(pool, build.DEFAULT_SEED,
+                                              weight=lambda n, e: 1.0),
+        "cost-weighted turns": build.stratified_order(pool, build.DEFAULT_SEED),
+    }
+    print(f"\nnext {args.next} candidates not yet relaxed ({len(done)} relaxed so far):")
+    print(f"{'order':22s} {'core-h':>7s} {'labels/core-h':>14s} {'prototypes':>11s} "
+          f"{'elements':>9s} {'atoms median':>13s} {'<=3 atoms':>10s}")
+    for name, order in orders.items():
+        nxt = [i for i in order if i not in done][:args.next]
+        n = rows.loc[nxt, "n_atoms"].to_numpy(dtype=float)
+        hard = hard_flag(nxt)
+        seconds = sum(np.exp(c) * n ** p * h ** hard for c, p, h, _ in models.values())
+        hours = float(seconds.sum()) / 3600
+        elements = {e for i in nxt for e in rows.at[i, "elements"].split()}
+        print(f"{name:22s} {hours:7.1f} {len(nxt) / hours:14.1f} "
+              f"{rows.loc[nxt, 'prototype'].nunique():11d} {len(elements):9d} "
+              f"{np.median(n):13.0f} {int((n <= 3).sum()):10d}")
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
