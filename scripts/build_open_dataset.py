@@ -1496,7 +1496,9 @@ Versions: {ver}.
 - A high spillage is a strong hint of a band inversion, not a proof of a topological
   phase; confirm with an invariant.
 - The labelled subset is stratified over prototypes and elements but biased towards
-  small cells (at most {DEFAULT_MAX_ATOMS} atoms first).
+  small cells (at most {DEFAULT_MAX_ATOMS} atoms first, and after the first
+  {EQUAL_TURNS_RELAXED} structures more turns for prototypes of fewer atoms): per-prototype
+  counts do not follow the pool's proportions; weigh by prototype where that matters.
 
 ## How to cite
 
