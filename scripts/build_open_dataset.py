@@ -503,6 +503,15 @@ def _is_positive(label: Any) -> bool:
     return label is not None and label.ok and label.spillage >= POSITIVE_THRESHOLD
 
 
+def _upgrade_priority(label: Any) -> tuple[bool, float]:
+    """Sort key of the structures to relax again: labelled positives first, whose geometry
+    decides the rarer class and their Z2 jobs; then the labels nearest the threshold,
+    the likeliest to cross it with the new geometry; unlabelled ones last."""
+    near = (abs(float(label.spillage) - POSITIVE_THRESHOLD)
+            if label is not None and label.ok else math.inf)
+    return not _is_positive(label), near
+
+
 def _needs_upgrade(rec: dict[str, Any]) -> bool:
     """A successful relaxation of an earlier protocol: relaxed and labelled again."""
     return rec.get("status") == "ok" and _older_generation(rec)
@@ -1025,14 +1034,13 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
     relax_queue = [i for i in ids if i not in done_ids]
     # successful relaxations of an earlier generation among ``ids`` (so ``--limit`` bounds
     # them too), except one whose Z2 job is queued already from a label result collected
-    # above (the next run relaxes it again): the labelled positives first, whose geometry
-    # decides the rarer class and their Z2 jobs, then in the order they were made
+    # above (the next run relaxes it again), in the order of _upgrade_priority
     waiting = {r["id"] for r in z2_queue}
     wanted = set(ids)
     upgrade_queue = sorted(
         (r["id"] for r in newest_relax.values()
          if label and _needs_upgrade(r) and r["id"] not in waiting and r["id"] in wanted),
-        key=lambda i: not _is_positive(labels_now.get(i)))
+        key=lambda i: _upgrade_priority(labels_now.get(i)))
     bar.total = len(label_queue) + len(z2_queue) + len(upgrade_queue) + len(relax_queue)
     bar.refresh()
     running: list[_Job] = []
