@@ -12,9 +12,12 @@ Reads the build's checkpoints (``data_work/open_dataset``: ``relax.jsonl`` and
    cost-weighted turns of ``stratified_order``. For each it prints the predicted
    core-hours (relaxation + label, from fit 1), labels per core-hour, the prototypes
    and elements covered, and the spread of cell sizes.
+3. Measures the same for the new structures the build relaxed with generation 4 before
+   and after the order changed (the first ``EQUAL_TURNS_RELAXED`` ids of
+   ``relax.jsonl`` came with equal turns), so that the prediction can be checked.
 
 The prediction is a fit to a few dozen jobs, not a measurement of the orders: it
-ranks them, and the build's own timings over the next sessions will check it.
+ranks them, and part 3 checks it as the build goes on.
 
 Run: ``python benchmarks/order_cost.py [--next 200] [--work data_work/open_dataset]``
 (seconds).
@@ -115,6 +118,24 @@ def main() -> int:
         print(f"{name:22s} {hours:7.1f} {len(nxt) / hours:14.1f} "
               f"{rows.loc[nxt, 'prototype'].nunique():11d} {len(elements):9d} "
               f"{np.median(n):13.0f} {int((n <= 3).sum()):10d}")
+
+    # measured: new structures (first relaxation of generation 4, not an upgrade) chosen
+    # before and after the order changed, with the wall time of their label
+    first_seen = list(dict.fromkeys(r["id"] for r in build._read_jsonl(
+        args.work / "relax.jsonl")))
+    before = set(first_seen[:build.EQUAL_TURNS_RELAXED])
+    print("\nmeasured, new structures relaxed with generation 4 (relaxation + label; "
+          "any status):")
+    for name, chosen in (("equal turns", lambda i: i in before),
+                         ("cost-weighted turns", lambda i: i not in before)):
+        new = [r for r in relax.values() if r.get("generation") == GENERATION
+               and "replaced_generation" not in r and chosen(r["id"])]
+        hours = sum(float(r["wall_s"]) + float(labels.get(r["id"], {}).get("wall_s", 0.0))
+                    for r in new) / 3600
+        n_labels = sum(r["id"] in labels for r in new)
+        rate = f"{n_labels / hours:.1f}" if hours else "n/a"
+        print(f"{name:22s} {len(new):4d} structures, {n_labels:4d} labels, "
+              f"{hours:6.2f} core-h, {rate} labels per core-hour")
     return 0
 
 

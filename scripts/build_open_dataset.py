@@ -173,7 +173,7 @@ RELAX_ATTEMPTS = 2
 DEFAULT_MAX_ATOMS = 6
 #: Structures relaxed before :func:`stratified_order` weighted the turns by cost: the
 #: build chose them with equal turns per prototype.
-EQUAL_TURNS_RELAXED = 182
+EQUAL_TURNS_RELAXED = 183
 
 #: Relaxation cost of a layer with N, O or F (700 eV cutoff) over one of the same size
 #: without (500 eV): 1.73 from the 33 relaxations of generation 4 that ended ok, fitting
@@ -501,6 +501,15 @@ def _older_generation(rec: dict[str, Any]) -> bool:
 def _is_positive(label: Any) -> bool:
     """A successful label record at or above the positive threshold (None: no label)."""
     return label is not None and label.ok and label.spillage >= POSITIVE_THRESHOLD
+
+
+def _upgrade_priority(label: Any) -> tuple[bool, float]:
+    """Sort key of the structures to relax again: labelled positives first, whose geometry
+    decides the rarer class and their Z2 jobs; then the labels nearest the threshold,
+    the likeliest to cross it with the new geometry; unlabelled ones last."""
+    near = (abs(float(label.spillage) - POSITIVE_THRESHOLD)
+            if label is not None and label.ok else math.inf)
+    return not _is_positive(label), near
 
 
 def _needs_upgrade(rec: dict[str, Any]) -> bool:
@@ -1025,14 +1034,13 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
     relax_queue = [i for i in ids if i not in done_ids]
     # successful relaxations of an earlier generation among ``ids`` (so ``--limit`` bounds
     # them too), except one whose Z2 job is queued already from a label result collected
-    # above (the next run relaxes it again): the labelled positives first, whose geometry
-    # decides the rarer class and their Z2 jobs, then in the order they were made
+    # above (the next run relaxes it again), in the order of _upgrade_priority
     waiting = {r["id"] for r in z2_queue}
     wanted = set(ids)
     upgrade_queue = sorted(
         (r["id"] for r in newest_relax.values()
          if label and _needs_upgrade(r) and r["id"] not in waiting and r["id"] in wanted),
-        key=lambda i: not _is_positive(labels_now.get(i)))
+        key=lambda i: _upgrade_priority(labels_now.get(i)))
     bar.total = len(label_queue) + len(z2_queue) + len(upgrade_queue) + len(relax_queue)
     bar.refresh()
     running: list[_Job] = []
@@ -1496,7 +1504,9 @@ Versions: {ver}.
 - A high spillage is a strong hint of a band inversion, not a proof of a topological
   phase; confirm with an invariant.
 - The labelled subset is stratified over prototypes and elements but biased towards
-  small cells (at most {DEFAULT_MAX_ATOMS} atoms first).
+  small cells (at most {DEFAULT_MAX_ATOMS} atoms first, and after the first
+  {EQUAL_TURNS_RELAXED} structures more turns for prototypes of fewer atoms): per-prototype
+  counts do not follow the pool's proportions; weigh by prototype where that matters.
 
 ## How to cite
 

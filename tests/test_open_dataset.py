@@ -630,6 +630,33 @@ def test_labelled_positives_are_relaxed_again_first(tmp_path, monkeypatch):
     assert [i for k, i in started if k == "upgrade"] == [pick["V"], pick["W"]]
 
 
+@pytest.mark.parametrize("w, v, first", [(0.05, 0.45, "V"), (0.45, 0.05, "W"),
+                                         (0.9, 0.45, "W"), (0.55, 1.5, "W")])
+def test_upgrades_go_by_class_then_nearness_to_the_threshold(tmp_path, monkeypatch, w, v,
+                                                             first):
+    from dataclasses import replace as replaced
+
+    from prescreen.physics.dft import LabelSettings
+    from prescreen.physics.labeller import RecordStore, load_records
+
+    driver, table, pick, work, _ = _w_and_v_of_generation_2(tmp_path, monkeypatch)
+    store = RecordStore(work / "labels", LabelSettings())
+    for metal, spillage in (("W", w), ("V", v)):
+        label = next(r for r in load_records(work / "labels") if r.id == pick[metal])
+        store.append(replaced(label, spillage=spillage))
+    started = []
+    real_start = driver._start
+
+    def spy(kind, ident, *args, **kwargs):
+        started.append((kind, ident))
+        return real_start(kind, ident, *args, **kwargs)
+
+    monkeypatch.setattr(driver, "_start", spy)
+    driver.pipeline_stage(table, [pick["W"], pick["V"]], work, tmp_path / "out", 7,
+                          workers=1, progress=False)
+    assert [i for k, i in started if k == "upgrade"][0] == pick[first]
+
+
 def test_upgrades_stay_within_the_ids_asked_for(tmp_path, monkeypatch):
     driver, table, pick, work, log = _w_and_v_of_generation_2(tmp_path, monkeypatch)
     # as with --limit 1 on a subset whose first structure is W: V waits
