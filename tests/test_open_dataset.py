@@ -606,16 +606,22 @@ def test_upgrades_and_new_relaxations_take_turns(tmp_path, monkeypatch, share, n
         driver.pipeline_stage(table, old_ids, work, tmp_path / "out", 7, upgrade_share=1.5)
 
 
-def test_labelled_positives_are_relaxed_again_first(tmp_path, monkeypatch):
+def _upgrade_order(tmp_path, monkeypatch, spillage):
+    """The order in which a build relaxes W's and V's sulfides of generation 2 again after
+    their labels are given the spillages in ``spillage`` (metal -> value; the others keep
+    their stand-in labels): the driver, the pool's sulfides by metal and the ids."""
     from dataclasses import replace as replaced
 
     from prescreen.physics.dft import LabelSettings
     from prescreen.physics.labeller import RecordStore, load_records
 
     driver, table, pick, work, _ = _w_and_v_of_generation_2(tmp_path, monkeypatch)
-    v_label = next(r for r in load_records(work / "labels") if r.id == pick["V"])
-    assert v_label.spillage < driver.POSITIVE_THRESHOLD  # W's and V's: both negative
-    RecordStore(work / "labels", LabelSettings()).append(replaced(v_label, spillage=0.9))
+    labels = {r.id: r for r in load_records(work / "labels")}
+    # the stand-in labels of W and V: both negative
+    assert max(labels[pick[m]].spillage for m in "WV") < driver.POSITIVE_THRESHOLD
+    store = RecordStore(work / "labels", LabelSettings())
+    for metal, value in spillage.items():
+        store.append(replaced(labels[pick[metal]], spillage=value))
     started = []
     real_start = driver._start
 
@@ -626,35 +632,21 @@ def test_labelled_positives_are_relaxed_again_first(tmp_path, monkeypatch):
     monkeypatch.setattr(driver, "_start", spy)
     driver.pipeline_stage(table, [pick["W"], pick["V"]], work, tmp_path / "out", 7,
                           workers=1, progress=False)
+    return driver, pick, [i for k, i in started if k == "upgrade"]
+
+
+def test_labelled_positives_are_relaxed_again_first(tmp_path, monkeypatch):
+    _, pick, order = _upgrade_order(tmp_path, monkeypatch, {"V": 0.9})
     # W was relaxed first, but V is now a positive
-    assert [i for k, i in started if k == "upgrade"] == [pick["V"], pick["W"]]
+    assert order == [pick["V"], pick["W"]]
 
 
 @pytest.mark.parametrize("w, v, first", [(0.05, 0.45, "V"), (0.45, 0.05, "W"),
                                          (0.9, 0.45, "W"), (0.55, 1.5, "W")])
 def test_upgrades_go_by_class_then_nearness_to_the_threshold(tmp_path, monkeypatch, w, v,
                                                              first):
-    from dataclasses import replace as replaced
-
-    from prescreen.physics.dft import LabelSettings
-    from prescreen.physics.labeller import RecordStore, load_records
-
-    driver, table, pick, work, _ = _w_and_v_of_generation_2(tmp_path, monkeypatch)
-    store = RecordStore(work / "labels", LabelSettings())
-    for metal, spillage in (("W", w), ("V", v)):
-        label = next(r for r in load_records(work / "labels") if r.id == pick[metal])
-        store.append(replaced(label, spillage=spillage))
-    started = []
-    real_start = driver._start
-
-    def spy(kind, ident, *args, **kwargs):
-        started.append((kind, ident))
-        return real_start(kind, ident, *args, **kwargs)
-
-    monkeypatch.setattr(driver, "_start", spy)
-    driver.pipeline_stage(table, [pick["W"], pick["V"]], work, tmp_path / "out", 7,
-                          workers=1, progress=False)
-    assert [i for k, i in started if k == "upgrade"][0] == pick[first]
+    _, pick, order = _upgrade_order(tmp_path, monkeypatch, {"W": w, "V": v})
+    assert order[0] == pick[first]
 
 
 def test_upgrades_stay_within_the_ids_asked_for(tmp_path, monkeypatch):
