@@ -8,7 +8,8 @@ Reads the build's checkpoints (``data_work/open_dataset``: ``relax.jsonl`` and
    once with ``p`` free and once with ``p = 2`` (the form behind the build's
    ``HARD_COST_FACTOR``), and prints c, p, h and the scatter.
 2. Takes the next ``--next`` candidates not yet relaxed in two orders of the same pool and
-   seed: equal turns per prototype (the build's order before 2026-12-04) and the
+   seed: equal turns per prototype (how the build chose its first
+   ``EQUAL_TURNS_RELAXED`` structures) and the
    cost-weighted turns of ``stratified_order``. For each it prints the predicted
    core-hours (relaxation + label, from fit 1), labels per core-hour, the prototypes
    and elements covered, and the spread of cell sizes.
@@ -70,7 +71,8 @@ def main() -> int:
     build = build_module()
     pool = pd.read_parquet(args.pool)
     rows = pool.set_index("id")
-    relax = build._newest(build._read_jsonl(args.work / "relax.jsonl"))
+    relax_log = build._read_jsonl(args.work / "relax.jsonl")
+    relax = build._newest(relax_log)
     labels = {d["id"]: d for d in record_lines(args.work / "labels")
               if d.get("status") == "ok"}
     ok = [r for r in relax.values() if r.get("generation") == GENERATION
@@ -92,11 +94,12 @@ def main() -> int:
         wall = np.array([float(r["wall_s"]) for r in recs])
         print(f"{kind} wall time, {len(ids)} jobs: median {np.median(wall):.0f} s, "
               f"total {wall.sum() / 3600:.2f} core-h")
+        hard = hard_flag(ids)
         for exponent in (None, 2.0):
-            c, p, h, rms = fit(n, hard_flag(ids), wall, exponent)
+            models[kind] = c, p, h, rms = fit(n, hard, wall, exponent)
             print(f"  fit {'p free ' if exponent is None else 'p fixed'}: t = {np.exp(c):.2f} s"
                   f" x n_atoms^{p:.2f} x {h:.2f} [N, O or F]; rms of log t {rms:.2f}")
-        models[kind] = fit(n, hard_flag(ids), wall, 2.0)
+        # the predictions below use the last fit, p fixed at 2
     print(f"build: HARD_COST_FACTOR {build.HARD_COST_FACTOR}")
 
     done = set(relax)
@@ -121,8 +124,7 @@ def main() -> int:
 
     # measured: new structures (first relaxation of generation 4, not an upgrade) chosen
     # before and after the order changed, with the wall time of their label
-    first_seen = list(dict.fromkeys(r["id"] for r in build._read_jsonl(
-        args.work / "relax.jsonl")))
+    first_seen = list(dict.fromkeys(r["id"] for r in relax_log))
     before = set(first_seen[:build.EQUAL_TURNS_RELAXED])
     print("\nmeasured, new structures relaxed with generation 4 (relaxation + label; "
           "any status):")

@@ -363,7 +363,8 @@ def stratified_order(pool: "pd.DataFrame", seed: int, max_atoms: int = DEFAULT_M
         Size of the cells in the first tier.
     weight
         ``weight(n_atoms, elements) -> float`` in place of :func:`cell_cost_weight`;
-        a constant gives equal turns (the order of builds before 2026-12-04).
+        a constant gives equal turns (how the build chose its first
+        :data:`EQUAL_TURNS_RELAXED` structures).
 
     Returns
     -------
