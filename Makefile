@@ -8,7 +8,7 @@ PIP    := $(PY) -m pip
 CONSTRAINTS := constraints.txt
 DEMO_DIR ?= demo_out
 
-.PHONY: demo test test-fast venv dft-env browser-env system-deps benchmarks benchmarks-dft benchmarks-uip dataset model constraints clean help
+.PHONY: demo test test-fast venv dft-env dataset-env browser-env system-deps benchmarks benchmarks-dft benchmarks-uip dataset model constraints clean help
 
 help:
 	@echo "make demo   - set up and run the main job on the shipped data"
@@ -34,6 +34,12 @@ system-deps:
 # GPAW (the `dft` extra), built from PyPI against the system libraries above.
 dft-env: venv system-deps
 	bash scripts/install_gpaw.sh $(VENV)
+
+# The dataset build's relaxations start from a universal potential's geometry: GPAW plus
+# CHGNet and PyTorch (the `uip` extra; about 1 GB where pip finds a CPU build of torch
+# 2.13.0, several GB for PyPI's default build).
+dataset-env: dft-env
+	$(PIP) install -q -c $(CONSTRAINTS) -e '.[uip]'
 
 # Headless Chromium (Debian) for the report's browser check.
 browser-env:
@@ -65,16 +71,16 @@ benchmarks-dft: dft-env
 	OPENBLAS_NUM_THREADS=1 $(PY) benchmarks/relax_pw.py
 	OPENBLAS_NUM_THREADS=1 $(PY) benchmarks/z2.py
 
-# A universal potential against the DFT relaxation (installs CHGNet and PyTorch: about
-# 1 GB where pip finds a CPU build of torch 2.13.0, several GB for PyPI's default build).
+# A universal potential against the DFT relaxation (installs CHGNet and PyTorch, see
+# dataset-env).
 benchmarks-uip: venv
-	$(PIP) install -q -c constraints.txt -e '.[uip-check]'
+	$(PIP) install -q -c $(CONSTRAINTS) -e '.[uip]'
 	$(PY) benchmarks/relax_uip.py
 
 # Regenerate the open dataset (resumes from data_work/; hours of CPU); `make model` then
 # retrains the default model on it.
 DATASET_WORKERS ?= 2
-dataset: dft-env
+dataset: dataset-env
 	OPENBLAS_NUM_THREADS=1 $(PY) scripts/build_open_dataset.py --workers $(DATASET_WORKERS)
 
 model: venv

@@ -17,7 +17,7 @@ plane-wave relaxation is; the earlier LCAO relaxation scaled the cell isotropica
 weights were fitted by its authors to relaxations of another project's database; only
 geometries computed here are compared, nothing of it enters ``data_open/``.
 
-Needs the optional extra: ``pip install -e .[uip-check]`` (CHGNet and PyTorch, about
+Needs the optional extra: ``pip install -e .[uip]`` (CHGNet and PyTorch, about
 1 GB with a CPU build of torch 2.13.0; PyPI's default Linux build of torch pulls in CUDA
 libraries of several GB; neither is needed anywhere else in prescreen). It compares every
 labelled structure in ``--data``.
@@ -51,7 +51,7 @@ def main() -> int:
         from chgnet.model import CHGNet
         from chgnet.model.dynamics import CHGNetCalculator
     except ImportError as exc:
-        print(f"relax_uip: needs the 'uip-check' extra (pip install -e .[uip-check]): {exc}")
+        print(f"relax_uip: needs the 'uip' extra (pip install -e .[uip]): {exc}")
         return 2
     import numpy as np
     import pandas as pd

@@ -79,6 +79,7 @@ from prescreen.physics.dft import (  # noqa: E402
     LAYER_CHECK_EVERY,
 )
 from prescreen.physics.parity import SYMPREC_A  # noqa: E402
+from prescreen.physics.prerelax import PRERELAX_FMAX, PRERELAX_MAX_STRAIN  # noqa: E402
 from prescreen.prototypes import (  # noqa: E402
     COVALENT_RADII_SOURCE,
     DEFAULT_SEED,
@@ -149,6 +150,15 @@ RELAX_FMAX = 0.05
 #: A build relaxes the structures of older generations again, from their pool geometry,
 #: taking turns with new relaxations, and labels them again.
 RELAX_GENERATION = 4
+#: Where a relaxation starts (``--start``, column ``start``): "potential" relaxes the
+#: pool geometry with a universal interatomic potential (CHGNet, ``uip`` extra) within
+#: its space group first, in seconds, and the plane-wave relaxation goes on from there
+#: (``prescreen.physics.prerelax``; the same minimum in half the BFGS steps,
+#: ``benchmarks/relax_start.py``); "generated" starts from the pool geometry, as every
+#: relaxation did until 2026-12-03. The start changes the cost, not the level of theory,
+#: so it is no new generation.
+RELAX_START = "potential"
+RELAX_STARTS = ("potential", "generated")
 #: What the ``lattice_scan`` column says of a relaxation of the current generation.
 RELAX_TEXT = (f"stress tensor (plane waves, {RELAX_ECUT_EV:g} eV, {HARD_PW_ECUT_EV:g} eV with "
               f"{', '.join(sorted(HARD_ELEMENTS))}; Pulay stress estimate added): BFGS over "
@@ -223,6 +233,13 @@ def _versions() -> dict[str, str]:
         out["gpaw"] = gpaw.__version__
     except ImportError:
         pass
+    from importlib.metadata import PackageNotFoundError, version
+
+    for name in ("chgnet", "torch"):  # the relaxations' start (``uip`` extra)
+        try:
+            out[name] = version(name)
+        except PackageNotFoundError:
+            pass
     return out
 
 
@@ -417,12 +434,15 @@ def _relaxation(ident: str, row: dict[str, Any], kpt_density: float) -> tuple[di
     structure = None
     try:
         settings = LabelSettings(kpt_density=kpt_density, smearing_eV=RELAX_SMEARING_EV)
-        structure = start = structure_from_row(row)
+        start = structure_from_row(row)
         converged, residual, broke, steps = False, math.nan, "", 0
         details: dict[str, Any] = {}
 
         def check(atoms: Any) -> str:
             return check_intact_monolayer(AseAtomsAdaptor.get_structure(atoms))[1]
+
+        structure, start_fields = _start_geometry(start, str(row.get("start", RELAX_START)))
+        rec.update(start_fields)
 
         for attempt in range(1, RELAX_ATTEMPTS + 1):
             rec["attempts"] = attempt
@@ -468,6 +488,28 @@ def _relaxation(ident: str, row: dict[str, Any], kpt_density: float) -> tuple[di
         structure = None
     rec["wall_s"] = round(time.perf_counter() - t0, 2)
     return rec, structure
+
+
+def _start_geometry(structure: "Structure", start: str) -> tuple["Structure", dict[str, Any]]:
+    """The geometry a relaxation starts from, by ``start`` (see :data:`RELAX_START`), and
+    the record's fields that say so. A potential that fails leaves the pool geometry."""
+    if start == "generated":
+        return structure, {"start": "generated"}
+    if start != "potential":
+        raise InputError("unknown relaxation start", value=start, expected=" or ".join(RELAX_STARTS))
+    from prescreen.physics import prerelax
+
+    name = prerelax.potential_name()
+    try:
+        calc = prerelax.potential_calculator()
+        pre = prerelax.prerelax_monolayer(
+            structure, calc, name=name,
+            check_layer=lambda s: check_intact_monolayer(s)[1])
+    except prerelax.MissingPotential:
+        raise
+    except Exception as exc:  # recorded: the DFT relaxation still runs, from the pool
+        return structure, {"start": f"generated; {name} failed: {type(exc).__name__}: {exc}"}
+    return pre.structure, pre.record_fields()
 
 
 def _relax_one(ident: str, row: dict[str, Any], kpt_density: float, result_path: str) -> None:
@@ -760,25 +802,26 @@ def _finished(job: _Job, timeout_s: float) -> dict[str, Any] | None:
     return {"id": job.ident, "status": "failed", "reason": why, "wall_s": round(elapsed, 2)}
 
 
-def _relax_payload(rows: "pd.DataFrame", ident: str) -> dict[str, Any]:
+def _relax_payload(rows: "pd.DataFrame", ident: str, start: str = RELAX_START) -> dict[str, Any]:
     row = rows.loc[ident]
     return {"id": ident, "lattice": list(row["lattice"]), "species": list(row["species"]),
-            "frac_coords": list(row["frac_coords"])}
+            "frac_coords": list(row["frac_coords"]), "start": start}
 
 
 def relax_stage(pool: "pd.DataFrame", ids: Sequence[str], work: Path, *, workers: int = 1,
                 timeout_s: float = 3600.0, kpt_density: float = RELAX_KPT_DENSITY,
-                progress: bool = True, retry_timeouts: bool = False) -> list[dict[str, Any]]:
+                progress: bool = True, retry_timeouts: bool = False,
+                start: str = RELAX_START) -> list[dict[str, Any]]:
     """Relax ``ids`` not yet in ``<work>/relax.jsonl``; returns all relaxation records.
 
     Each structure runs in its own process (``workers`` at a time) and is stopped after
     ``timeout_s`` seconds; the outcome is appended to the checkpoint as soon as it is
-    known.
+    known. ``start`` says where each relaxation starts (:data:`RELAX_START`).
     """
     with _work_lock(work):
         return _pipeline(pool, ids, work, None, 0, workers=workers, relax_timeout_s=timeout_s,
                          kpt_density=kpt_density, label=False, progress=progress,
-                         retry_timeouts=retry_timeouts)[1]
+                         retry_timeouts=retry_timeouts, start=start)[1]
 
 
 def pipeline_stage(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Path, seed: int,
@@ -786,7 +829,8 @@ def pipeline_stage(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
                    label_timeout_s: float = 1800.0, kpt_density: float = RELAX_KPT_DENSITY,
                    pack_every: int = 10, progress: bool = True,
                    retry_timeouts: bool = False,
-                   upgrade_share: float = DEFAULT_UPGRADE_SHARE) -> int:
+                   upgrade_share: float = DEFAULT_UPGRADE_SHARE,
+                   start: str = RELAX_START) -> int:
     """Relax and label ``ids`` as one stream; returns the number of new label records.
 
     A free worker takes the label of a finished relaxation first, else the next
@@ -802,7 +846,7 @@ def pipeline_stage(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
     that hit a timeout shorter than ``relax_timeout_s``; failures of earlier generations
     are relaxed again like new structures. ``upgrade_share`` (0 to 1) is the share of
     the relaxations started that go to structures of earlier protocols while new ones
-    wait too.
+    wait too. ``start`` says where each relaxation starts (:data:`RELAX_START`).
     """
     if not 0.0 <= upgrade_share <= 1.0:
         raise InputError("bad upgrade share", value=upgrade_share, expected="0 to 1")
@@ -810,7 +854,8 @@ def pipeline_stage(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
         return _pipeline(pool, ids, work, out, seed, workers=workers,
                          relax_timeout_s=relax_timeout_s, label_timeout_s=label_timeout_s,
                          kpt_density=kpt_density, pack_every=pack_every, progress=progress,
-                         retry_timeouts=retry_timeouts, upgrade_share=upgrade_share)[0]
+                         retry_timeouts=retry_timeouts, upgrade_share=upgrade_share,
+                         start=start)[0]
 
 
 def _pipeline(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Path | None,
@@ -832,7 +877,8 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
                    label_timeout_s: float = 1800.0, kpt_density: float = RELAX_KPT_DENSITY,
                    pack_every: int = 10, label: bool = True, progress: bool = True,
                    retry_timeouts: bool = False,
-                   upgrade_share: float = DEFAULT_UPGRADE_SHARE) -> tuple[int, list[dict[str, Any]]]:
+                   upgrade_share: float = DEFAULT_UPGRADE_SHARE,
+                   start: str = RELAX_START) -> tuple[int, list[dict[str, Any]]]:
     """The scheduler behind both stages; returns (new labels, all relaxation records).
 
     Job kinds, in order of priority: the label of a finished relaxation, the Z2
@@ -846,6 +892,12 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
     from prescreen.physics.dft import LabelRecord, LabelSettings
     from prescreen.physics.labeller import RecordStore
 
+    if start not in RELAX_STARTS:
+        raise InputError("unknown relaxation start", value=start, expected=" or ".join(RELAX_STARTS))
+    if start == "potential":  # missing here, not in every child
+        from prescreen.physics.prerelax import potential_name
+
+        potential_name()
     log, z2_log = work / "relax.jsonl", work / Z2_LOG
     rows = pool.set_index("id")
     settings = LabelSettings()
@@ -1065,14 +1117,14 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
                                         * (started["upgrade"] + started["relax"] + 1)):
                     started["upgrade"] += 1
                     ident = upgrade_queue.pop(0)
-                    payload = {**_relax_payload(rows, ident),
+                    payload = {**_relax_payload(rows, ident, start),
                                "formula": str(rows.loc[ident, "reduced_formula"])}
                     running.append(_start("upgrade", ident, payload, tmpdir, kpt_density))
                 else:
                     started["relax"] += 1
                     ident = relax_queue.pop(0)
-                    running.append(_start("relax", ident, _relax_payload(rows, ident), tmpdir,
-                                          kpt_density))
+                    running.append(_start("relax", ident, _relax_payload(rows, ident, start),
+                                          tmpdir, kpt_density))
             time.sleep(0.2)
             for job in list(running):
                 # an upgrade relaxes and labels
@@ -1248,6 +1300,9 @@ def _relax_table(relax: Sequence[dict[str, Any]], records: Sequence[Any]) -> "pd
              "replaced_generation": int(r.get("replaced_generation", 0)),
              "lattice_residual": float(r.get("lattice_residual", math.nan)),
              "lattice_cycles": int(r.get("lattice_cycles", 0)),
+             # relaxations recorded before the potential's start began at the pool geometry
+             "start": str(r.get("start", "generated")),
+             "start_s": float(r.get("start_s", 0.0)),
              "label_status": label_status.get(r["id"], "not labelled")}
             for r in _newest(relax).values()]
     cols = ["id", "status", "reason", "converged", "residual_fmax_eV_per_A", "attempts",
@@ -1255,7 +1310,7 @@ def _relax_table(relax: Sequence[dict[str, Any]], records: Sequence[Any]) -> "pd
             "ecut_eV", "virial_eV", "pulay_virial_eV", "bfgs_steps", "earlier_wall_s",
             "replaced_generation",
             "lattice_residual",
-            "lattice_cycles", "label_status"]
+            "lattice_cycles", "start", "start_s", "label_status"]
     return pd.DataFrame(rows, columns=cols).sort_values("id").reset_index(drop=True)
 
 
@@ -1284,6 +1339,23 @@ def _generations_text(relax: "pd.DataFrame") -> str:
                  f"(LCAO, the scans alone, biased toward the lattice at which the positions "
                  f"were relaxed)")
     return text + "."
+
+
+def _start_text(relax: "pd.DataFrame") -> str:
+    """What the datasheet says of where the kept relaxations started."""
+    ok = relax[(relax["status"] == "ok") & (relax["generation"] == RELAX_GENERATION)]
+    if not len(ok) or "start" not in ok:
+        return ""
+    start = ok["start"].astype(str)
+    potential = int((~start.str.startswith("generated")).sum())
+    refused = int(start.str.startswith("generated;").sum())
+    median = (f" (median {ok.loc[~start.str.startswith('generated'), 'start_s'].median():.1f} s "
+              f"of the potential)" if potential else "")
+    return (f"Of the {len(ok)} kept relaxations of generation {RELAX_GENERATION}, {potential} "
+            f"started from the potential's geometry{median}, {refused} from the pool geometry "
+            f"because the potential's was not used (the column says why), and "
+            f"{len(ok) - potential - refused} from the pool geometry because they ran before "
+            f"the potential's start (2026-12-03).")
 
 
 def _md_table(header: Sequence[str], rows: Iterable[Sequence[Any]]) -> str:
@@ -1364,6 +1436,7 @@ def datasheet(pool: "pd.DataFrame", labelled: "pd.DataFrame", relax: "pd.DataFra
     resid = (f"{relax.loc[relax['status'] == 'ok', 'residual_fmax_eV_per_A'].max():.3f}"
              if status.get("ok") else "n/a")
     generations_text = _generations_text(relax)
+    start_text = _start_text(relax)
     superseded_text = (f" (and {superseded_h:.2f} more for labels of geometries since "
                        "replaced)" if superseded_h > 0 else "")
     earlier_text = (f" (and {earlier_h:.2f} more for relaxations since done again)"
@@ -1433,7 +1506,15 @@ python scripts/build_open_dataset.py --seed {seed} --workers 2    # or: make dat
    plane-wave mode ({RELAX_ECUT_EV:g} eV cutoff, {HARD_PW_ECUT_EV:g} eV for layers with
    {', '.join(sorted(HARD_ELEMENTS))}), which has the stress tensor; k-point density
    {RELAX_KPT_DENSITY} per reciprocal angstrom, Fermi-Dirac width {RELAX_SMEARING_EV} eV.
-   From the pool geometry, one BFGS run over the positions and the in-plane strain
+   **Start** (column `start`): the pool geometry relaxed first by the universal
+   interatomic potential CHGNet (weights from its PyPI wheel; trained by its authors on
+   another project's relaxations, and used here for nothing but the start) within its
+   space group (ASE's `FixSymmetry`; FIRE to {PRERELAX_FMAX} eV/A over the positions and
+   the in-plane strain). A start that falls apart or moves an in-plane length by more
+   than {100 * PRERELAX_MAX_STRAIN:.0f} % is not used: the relaxation then starts from the
+   pool geometry. The potential decides where the DFT relaxation starts, not where it
+   ends (`benchmarks/relax_start.py` compares both starts). {start_text}
+   From there, one BFGS run over the positions and the in-plane strain
    (ASE's `FrechetCellFilter`, strains xx, yy and xy free, so the angle between the
    in-plane vectors can change; the out-of-plane vector and so the vacuum are kept) until
    every force is below {RELAX_FMAX} eV/A and each in-plane component of V sigma (the
@@ -1490,7 +1571,8 @@ Versions: {ver}.
   the positives without a gap, as indicative.
 - Spin-paired calculations: magnetic ground states are not sought; labels of magnetic
   compounds describe the non-magnetic state.
-- Each relaxation finds the minimum nearest its pool geometry: symmetric starts keep
+- Each relaxation finds the minimum nearest its start (the pool geometry, or the
+  potential's relaxation of it within the same space group): symmetric starts keep
   their symmetry (hexagonal and square cells stay so), distorted phases (1T') keep their
   starting distortion pattern, and a layer with more than one minimum may end in one
   that is not the lowest.
@@ -1577,6 +1659,10 @@ def _parser() -> argparse.ArgumentParser:
                         "structure of an earlier protocol, while new ones wait too (default "
                         f"{DEFAULT_UPGRADE_SHARE})")
     p.add_argument("--relax-kpt-density", type=float, default=RELAX_KPT_DENSITY)
+    p.add_argument("--start", choices=RELAX_STARTS, default=RELAX_START,
+                   help="where each relaxation starts: the pool geometry relaxed first by a "
+                        "universal potential within its space group (needs the 'uip' extra), "
+                        "or the pool geometry itself")
     p.add_argument("--out", type=Path, default=ROOT / "data_open")
     p.add_argument("--work", type=Path, default=ROOT / "data_work" / "open_dataset",
                    help="checkpoints: relaxed structures and raw label records (committed, so "
@@ -1606,7 +1692,7 @@ def run(args: argparse.Namespace) -> int:
         order = order[: max(0, args.limit)]
     relax_kw = dict(workers=args.workers, timeout_s=args.relax_timeout,
                     kpt_density=args.relax_kpt_density, progress=progress,
-                    retry_timeouts=args.retry_timeouts)
+                    retry_timeouts=args.retry_timeouts, start=args.start)
     if args.stage == "relax":
         relax_stage(pool, order, args.work, **relax_kw)
     elif args.stage == "label":
@@ -1620,7 +1706,7 @@ def run(args: argparse.Namespace) -> int:
                        relax_timeout_s=args.relax_timeout, label_timeout_s=args.timeout,
                        kpt_density=args.relax_kpt_density, pack_every=args.batch,
                        progress=progress, retry_timeouts=args.retry_timeouts,
-                       upgrade_share=args.upgrade_share)
+                       upgrade_share=args.upgrade_share, start=args.start)
     return 0
 
 

@@ -271,6 +271,79 @@ def test_stratified_order_gives_small_cells_more_turns(pool):
     assert (first == 2).all() and len(first) == len(sizes)
 
 
+@pytest.fixture(autouse=True)
+def _potential_stand_in(monkeypatch):
+    """The build's start needs CHGNet (the ``uip`` extra), which the test environment
+    need not have: a stand-in keeps the pool geometry and says so in the record."""
+    from prescreen.physics import prerelax
+
+    monkeypatch.setattr(prerelax, "potential_name", lambda: "stand-in")
+    monkeypatch.setattr(prerelax, "potential_calculator", lambda: None)
+    monkeypatch.setattr(prerelax, "prerelax_monolayer", lambda s, calc, **kw: prerelax.StartGeometry(
+        s, True, "stand-in (kept the pool geometry)", [0.0, 0.0]))
+
+
+def _stretched_start(structure, calc, *, name, check_layer=None):
+    """Stand-in potential: stretches the cell by 3 % (Nb: raises, as a potential outside
+    its elements may)."""
+    from prescreen.physics.prerelax import StartGeometry
+
+    if structure[0].specie.symbol == "Nb":
+        raise ValueError("no parameters for Nb")
+    from pymatgen.core import Lattice, Structure
+
+    matrix = structure.lattice.matrix.copy()
+    matrix[:2] *= 1.03
+    moved = Structure(Lattice(matrix), structure.species, structure.frac_coords)
+    return StartGeometry(moved, True, f"{name} (stretched)", [math.log(1.03)] * 2, 7, 0.5)
+
+
+def test_relaxations_start_where_the_potential_left_them(tmp_path, monkeypatch):
+    import prescreen.physics.dft as dft
+    from prescreen.physics import prerelax
+    from prescreen.prototypes import generate_pool, pool_table
+
+    driver = _driver()
+    seen = {}
+
+    def spy_relax(structure, settings, *, details, **kwargs):  # records its start
+        seen[structure[0].specie.symbol] = structure.lattice.a
+        details.update(virial_eV=0.01, steps=3, ecut_eV=500.0, pulay_virial_eV=0.0)
+        return structure, 0.01, True
+
+    monkeypatch.setattr(dft, "relax_monolayer_pw", spy_relax)
+    monkeypatch.setattr(prerelax, "prerelax_monolayer", _stretched_start)
+    table = pool_table(generate_pool(prototypes=["MX2-2H"], match_structures=False, progress=False))
+    pick = {json.loads(d)["M"]: i for d, i in zip(table["decoration"], table["id"])
+            if json.loads(d)["X"] == "S"}
+    pool_a = {m: structure_from_row(table.set_index("id").loc[pick[m]]).lattice.a
+              for m in ("Mo", "Nb")}
+    for m in ("Mo", "Nb"):  # in this process, so that the spy sees it
+        seen.clear()
+        rec, _ = driver._relaxation(pick[m], driver._relax_payload(table.set_index("id"),
+                                                                   pick[m], "potential"), 2.5)
+        assert rec["status"] == "ok"
+        if m == "Mo":
+            assert seen["Mo"] == pytest.approx(1.03 * pool_a["Mo"])
+            assert rec["start"] == "stand-in (stretched)" and rec["start_steps"] == 7
+            # the recorded strain is the DFT result's against the pool geometry
+            assert rec["lattice_strain"][0] == pytest.approx(math.log(1.03), abs=1e-6)
+        else:  # a potential that fails leaves the pool geometry, and says why
+            assert seen["Nb"] == pytest.approx(pool_a["Nb"])
+            assert rec["start"] == "generated; stand-in failed: ValueError: no parameters for Nb"
+    rec, _ = driver._relaxation(pick["Mo"], driver._relax_payload(table.set_index("id"),
+                                                                  pick["Mo"], "generated"), 2.5)
+    assert rec["start"] == "generated" and seen["Mo"] == pytest.approx(pool_a["Mo"])
+    # the build stops before its first job when the potential is missing, naming the extra
+    monkeypatch.setattr(prerelax, "potential_name", lambda: (_ for _ in ()).throw(
+        prerelax.MissingPotential("install the 'uip' extra")))
+    with pytest.raises(prerelax.MissingPotential, match="uip"):
+        driver.relax_stage(table, [pick["Mo"]], tmp_path, progress=False)
+    assert not (tmp_path / "relax.jsonl").exists()
+    with pytest.raises(InputError, match="unknown relaxation start"):
+        driver.relax_stage(table, [pick["Mo"]], tmp_path, progress=False, start="scratch")
+
+
 def _fake_relax(structure, settings, *, fmax, virial_tol_eV, steps, check_layer=None,
                 details=None):
     """Stand-in for relax_monolayer_pw: behaviour chosen by the first element."""
