@@ -9,14 +9,18 @@ in seconds, within its space group, and the build's own plane-wave relaxation
 (``_relaxation`` of ``scripts/build_open_dataset.py``, same settings) starts from there,
 by the build's own rule (``_start_geometry``: a start that falls apart or moves an
 in-plane length by more than 15 % is not used, and the relaxation is the recorded one).
-For each structure, recorded with a start at the pool geometry, it prints
+For each structure it relaxes again from the start the record did not use (the
+potential's, for a record that started at the pool geometry, and the other way round)
+and prints
 
-* the recorded relaxation from the generator's start (BFGS steps, wall time),
+* the relaxation from the pool geometry (BFGS steps, wall time),
 * the potential's time and the relaxation from its start (BFGS steps, wall time of the
   DFT part),
 * how far the two DFT results lie apart: the larger relative difference of the in-plane
   lengths, and the largest difference of an atom's Cartesian position after the cells
-  are matched (same fractional coordinates on the recorded cell).
+  are matched (fractional coordinates on the cell relaxed from the pool geometry),
+* where both relaxations have an energy (records since 2026-12-03) on the same k mesh,
+  the energy difference,
 
 and a summary. Two results more than ``SAME_MINIMUM_LATTICE`` apart in the lattice, or
 ``SAME_MINIMUM_POSITION`` in a position, count as different minima. Wall times depend on
@@ -70,6 +74,8 @@ def main() -> int:
     p.add_argument("ids", nargs="+")
     p.add_argument("--work", type=Path, default=REPO / "data_work" / "open_dataset")
     p.add_argument("--pool", type=Path, default=REPO / "data_open" / "pool.parquet")
+    p.add_argument("--out", type=Path, default=None,
+                   help="append the new relaxation records here (JSON lines)")
     args = p.parse_args()
     import numpy as np
     import pandas as pd
@@ -87,43 +93,54 @@ def main() -> int:
     records = plane_wave_relaxations(args.work, args.ids, "relax_start")
     if records is None:
         return 2
-    later = [i for i in args.ids if records[i].get("start", "generated") != "generated"]
-    if later:
-        print(f"relax_start: {later} were not relaxed from the pool geometry; give ids "
-              "relaxed before the potential's start")
-        return 2
     pool = pd.read_parquet(args.pool).set_index("id")
-    print(f"load average {os.getloadavg()[0]:.1f} on {os.cpu_count()} CPUs")
-    print(f"{'id':22s} {'recorded':>13s} {'potential':>9s} {'from there':>13s} "
+    print(f"load average {os.getloadavg()[0]:.1f} on {os.cpu_count()} CPUs; the recorded "
+          "relaxation against one from the other start")
+    print(f"{'id':22s} {'from the pool':>13s} {'potential':>9s} {'from there':>13s} "
           f"{'d lattice':>10s} {'d pos A':>8s}  note")
     rows = []
     for ident in args.ids:
         rec = records[ident]
-        payload = {**pool.loc[ident].to_dict(), "start": "potential"}
-        _, started = build._start_geometry(structure_from_row(payload), "potential")
-        head = f"{ident:22s} {rec['bfgs_steps']:4d} {rec['wall_s']:7.0f} s"
-        if started["start"].startswith("generated"):  # the same relaxation as recorded
-            print(f"{head} {started.get('start_s', 0):9.1f} {'':>13s} {'':>10s} {'':>8s}  "
-                  f"start not used: {started['start']}")
-            rows.append((rec["bfgs_steps"], rec["wall_s"], started.get("start_s", 0.0),
-                         rec["bfgs_steps"], rec["wall_s"], 0.0, True, False))
-            continue
+        recorded_from_pool = rec.get("start", "generated").startswith("generated")
+        if recorded_from_pool:  # the potential's start, by the build's rule
+            payload = {**pool.loc[ident].to_dict(), "start": "potential"}
+            _, started = build._start_geometry(structure_from_row(payload), "potential")
+            if started["start"].startswith("generated"):  # the same relaxation as recorded
+                print(f"{ident:22s} {rec['bfgs_steps']:4d} {rec['wall_s']:7.0f} s "
+                      f"{started.get('start_s', 0):9.1f} {'':>13s} {'':>10s} {'':>8s}  "
+                      f"start not used: {started['start']}")
+                rows.append((rec["bfgs_steps"], rec["wall_s"], started.get("start_s", 0.0),
+                             rec["bfgs_steps"], rec["wall_s"], 0.0, True, False))
+                continue
+        else:
+            payload = {**pool.loc[ident].to_dict(), "start": "generated"}
         new, _ = build._relaxation(ident, payload, build.RELAX_KPT_DENSITY)
+        if args.out is not None:
+            build._append_jsonl(args.out, new)
+        from_pool, from_potential = (rec, new) if recorded_from_pool else (new, rec)
+        pool_cols = (f"{from_pool['bfgs_steps']:4d} {from_pool['wall_s']:7.0f} s"
+                     if "bfgs_steps" in from_pool else f"{'':>13s}")
+        head = f"{ident:22s} {pool_cols} {from_potential.get('start_s', 0):9.1f}"
         if new["status"] != "ok":
-            print(f"{head} {new.get('start_s', 0):9.1f} {'':>13s} {'':>10s} {'':>8s}  "
-                  f"{new['status']}: {new['reason']}")
-            rows.append((rec["bfgs_steps"], rec["wall_s"], new.get("start_s", 0.0), None,
-                         None, None, None, True))
+            print(f"{head} {'':>13s} {'':>10s} {'':>8s}  new relaxation {new['status']}: "
+                  f"{new['reason']}")
+            rows.append((None,) * 8)
             continue
-        d_lat, d_pos = apart(structure_from_row(rec), structure_from_row(new))
+        d_lat, d_pos = apart(structure_from_row(from_pool), structure_from_row(from_potential))
         same = d_lat <= SAME_MINIMUM_LATTICE and d_pos <= SAME_MINIMUM_POSITION
-        print(f"{head} {new['start_s']:9.1f} {new['bfgs_steps']:4d} "
-              f"{new['wall_s'] - new['start_s']:7.0f} s {100 * d_lat:9.2f}% {d_pos:8.3f}  "
-              f"{'same minimum' if same else 'ANOTHER MINIMUM'}: a, b {rec['a_A']:.3f}, "
-              f"{rec['b_A']:.3f} -> {new['a_A']:.3f}, {new['b_A']:.3f} A")
-        rows.append((rec["bfgs_steps"], rec["wall_s"], new["start_s"], new["bfgs_steps"],
-                     new["wall_s"] - new["start_s"], d_lat, same, True))
-    done = [r for r in rows if r[3] is not None]
+        energy = ""
+        if "energy_eV" in rec and rec.get("relax_kmesh") == new.get("relax_kmesh"):
+            energy = (f"; energy from the potential's start "
+                      f"{from_potential['energy_eV'] - from_pool['energy_eV']:+.4f} eV per cell")
+        pot_wall = from_potential["wall_s"] - from_potential["start_s"]
+        print(f"{head} {from_potential['bfgs_steps']:4d} {pot_wall:7.0f} s "
+              f"{100 * d_lat:9.2f}% {d_pos:8.3f}  "
+              f"{'same minimum' if same else 'ANOTHER MINIMUM'}: a, b {from_pool['a_A']:.3f}, "
+              f"{from_pool['b_A']:.3f} from the pool, {from_potential['a_A']:.3f}, "
+              f"{from_potential['b_A']:.3f} A from the potential's start{energy}")
+        rows.append((from_pool["bfgs_steps"], from_pool["wall_s"], from_potential["start_s"],
+                     from_potential["bfgs_steps"], pot_wall, d_lat, same, True))
+    done = [r for r in rows if r[0] is not None]
     if done:
         a = np.array([r[:5] for r in done], dtype=float)
         used = sum(r[7] for r in done)

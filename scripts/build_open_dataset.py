@@ -467,6 +467,9 @@ def _relaxation(ident: str, row: dict[str, Any], kpt_density: float) -> tuple[di
             rec.update(virial_eV=round(float(details["virial_eV"]), 5), bfgs_steps=steps,
                        ecut_eV=float(details["ecut_eV"]),
                        pulay_virial_eV=round(float(details["pulay_virial_eV"]), 4),
+                       **({"energy_eV": round(float(details["energy_eV"]), 5),
+                           "relax_kmesh": list(details["kmesh"])}
+                          if "energy_eV" in details else {}),
                        lattice_strain=[round(float(x), 6) for x in np.log(
                            np.asarray(structure.lattice.abc[:2]) / start.lattice.abc[:2])])
         if not intact:

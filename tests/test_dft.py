@@ -154,6 +154,7 @@ def test_relax_monolayer_pw_finds_the_silicene_lattice_and_buckling():
         start, LabelSettings(kpts=(6, 6, 1), smearing_eV=0.1), ecut_eV=400.0,
         details=details)
     assert converged and residual < 0.05 and details["virial_eV"] < 0.05
+    assert details["kmesh"] == [6, 6, 1] and np.isfinite(details["energy_eV"])
     a, b = relaxed.cell.lengths()[:2]
     assert 3.84 <= a <= 3.90 and b == pytest.approx(a, rel=1e-6)
     assert 0.40 <= np.ptp(relaxed.positions[:, 2]) <= 0.50

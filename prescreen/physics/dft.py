@@ -1430,7 +1430,9 @@ def relax_monolayer_pw(structure: "Structure | Atoms",
         Optional dict, filled with ``steps``, ``virial_eV`` (the largest in-plane
         component at the end, Pulay term included), ``pulay_virial_eV`` (that term,
         :func:`pulay_virial_eV`), ``lattice_strain`` (log of the change of each in-plane
-        length), ``ecut_eV`` and ``lattice_converged``.
+        length), ``ecut_eV``, ``lattice_converged``, ``energy_eV`` (GPAW's energy of the
+        relaxed cell, comparable only between runs with the same settings and k mesh) and
+        ``kmesh`` (chosen from the starting cell, kept throughout).
 
     Returns
     -------
@@ -1461,6 +1463,7 @@ def relax_monolayer_pw(structure: "Structure | Atoms",
                                  str(folder / "bfgs-pw.log"), structure)
             residual = float(np.linalg.norm(atoms.get_forces(), axis=1).max())
             virial = _in_plane_virial(atoms)
+            energy = float(atoms.get_potential_energy())
         except LayerBroke:
             raise
         except Exception as exc:
@@ -1471,7 +1474,8 @@ def relax_monolayer_pw(structure: "Structure | Atoms",
                        pulay_virial_eV=float(pulay),
                        lattice_strain=[float(x) for x in
                                        np.log(atoms.cell.lengths()[:2] / start)],
-                       ecut_eV=float(ecut_eV), lattice_converged=bool(ok))
+                       ecut_eV=float(ecut_eV), lattice_converged=bool(ok),
+                       energy_eV=energy, kmesh=[int(k) for k in kmesh])
     atoms.calc = None
     relaxed = _same_type(structure, prepare_monolayer(atoms, settings.vacuum_A))
     return relaxed, residual, bool(ok)

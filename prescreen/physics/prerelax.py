@@ -24,8 +24,11 @@ Two rules keep the start from steering the DFT result:
 
 from __future__ import annotations
 
+import contextlib
 import functools
+import io
 import time
+import warnings
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any, Callable
 
@@ -111,7 +114,8 @@ def potential_calculator() -> Any:
             f"the universal potential cannot be imported ({exc}); install the 'uip' extra: "
             "pip install -e '.[uip]' (CHGNet and a CPU build of PyTorch)") from exc
     torch.set_num_threads(1)
-    return CHGNetCalculator(model=CHGNet.load(verbose=False), use_device="cpu")
+    with contextlib.redirect_stdout(io.StringIO()):  # "CHGNet v... initialized", "will run on cpu"
+        return CHGNetCalculator(model=CHGNet.load(verbose=False), use_device="cpu")
 
 
 def prerelax_monolayer(structure: "Structure", calc: Any, *,
@@ -160,14 +164,20 @@ def prerelax_monolayer(structure: "Structure", calc: Any, *,
     atoms.set_constraint(FixSymmetry(atoms, symprec=symprec))
     t0 = time.perf_counter()
     opt = FIRE(FrechetCellFilter(atoms, mask=[1, 1, 0, 0, 0, 1]), logfile=None)
-    converged = bool(opt.run(fmax=fmax, steps=steps))
+    with warnings.catch_warnings():  # CHGNet's own, at every step: its stress, and the
+        # constraint that its conversion to pymatgen leaves out (the forces it returns are
+        # symmetrised by the constraint all the same)
+        warnings.filterwarnings("ignore", message="Converting a tensor with requires_grad")
+        warnings.filterwarnings("ignore", message="Only FixAtoms and FixCartesian")
+        converged = bool(opt.run(fmax=fmax, steps=steps))
     seconds = time.perf_counter() - t0
     atoms.set_constraint()
     atoms.calc = None
     moved = AseAtomsAdaptor.get_structure(atoms)
     strain = np.log(np.asarray(moved.lattice.abc[:2]) / np.asarray(structure.lattice.abc[:2]))
     how = (f"{name} (FixSymmetry, FIRE to {fmax:g} eV/A"
-           + (f", {opt.nsteps} steps)" if converged else f", not converged in {steps} steps)"))
+           + (f", {opt.nsteps} step{'' if opt.nsteps == 1 else 's'})" if converged
+              else f", not converged in {steps} steps)"))
     common = {"strain": strain.tolist(), "steps": int(opt.nsteps), "seconds": seconds}
     broke = check_layer(moved) if check_layer is not None else ""
     if broke:
