@@ -153,7 +153,7 @@ RELAX_GENERATION = 4
 #: Where a relaxation starts (``--start``, column ``start``): "potential" relaxes the
 #: pool geometry with a universal interatomic potential (CHGNet, ``uip`` extra) within
 #: its space group first, in seconds, and the plane-wave relaxation goes on from there
-#: (``prescreen.physics.prerelax``; over ten structures 27 % fewer BFGS steps, nine
+#: (``prescreen.physics.prerelax``; over twelve structures 26 % fewer BFGS steps, ten
 #: ending in the same minimum, ``benchmarks/relax_start.py``, docs/labeller.md);
 #: "generated" starts from the pool geometry, as every
 #: relaxation did until 2026-12-03. The start changes the cost, not the level of theory,
