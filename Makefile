@@ -15,7 +15,7 @@ help:
 	@echo "make test   - set up and run the whole test suite (DFT tests included)"
 	@echo "make test-fast - unit tests only (no DFT)"
 	@echo "make benchmarks / benchmarks-dft / benchmarks-uip - print the measured figures"
-	@echo "make dataset - extend data_open/ with DFT labels (hours; resumes)"
+	@echo "make dataset - extend data_open/ with DFT labels (hours; resumes; installs GPAW, CHGNet, PyTorch)"
 	@echo "make model  - retrain the shipped default model on data_open/"
 
 $(VENV)/.core-installed: pyproject.toml $(CONSTRAINTS)
