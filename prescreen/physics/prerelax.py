@@ -40,7 +40,8 @@ if TYPE_CHECKING:  # pragma: no cover
     from pymatgen.core import Structure
 
 __all__ = ["PRERELAX_FMAX", "PRERELAX_STEPS", "PRERELAX_MAX_STRAIN", "PRERELAX_SYMPREC",
-           "StartGeometry", "potential_calculator", "potential_name", "prerelax_monolayer"]
+           "MissingPotential", "StartGeometry", "potential_calculator", "potential_name",
+           "prerelax_monolayer"]
 
 #: Force tolerance of the potential's relaxation (eV/Angstrom). The DFT relaxation does the
 #: rest, so a loose one does (our choice).
@@ -55,8 +56,8 @@ PRERELAX_MAX_STRAIN = 0.15
 #: Tolerance of the symmetry search (Angstrom) for ``FixSymmetry``. The generated
 #: geometries are exactly symmetric, so a tight one finds their full space group.
 PRERELAX_SYMPREC = 1e-4
-#: The potential and version the build records (``chgnet`` package version).
-_CHGNET = "CHGNet"
+#: How to install the potential, for the errors that say it is missing.
+_INSTALL = "install the 'uip' extra: pip install -e '.[uip]' (CHGNet and a CPU build of PyTorch)"
 
 
 class MissingPotential(PrescreenError, ImportError):
@@ -90,11 +91,9 @@ def potential_name() -> str:
     try:
         from importlib.metadata import version
 
-        return f"{_CHGNET} {version('chgnet')}"
+        return f"CHGNet {version('chgnet')}"
     except Exception as exc:  # PackageNotFoundError and friends
-        raise MissingPotential(
-            f"the universal potential is not installed ({exc}); install the 'uip' extra: "
-            "pip install -e '.[uip]' (CHGNet and a CPU build of PyTorch)") from exc
+        raise MissingPotential(f"the universal potential is not installed ({exc}); {_INSTALL}") from exc
 
 
 @functools.lru_cache(maxsize=1)
@@ -110,9 +109,7 @@ def potential_calculator() -> Any:
         from chgnet.model import CHGNet
         from chgnet.model.dynamics import CHGNetCalculator
     except ImportError as exc:
-        raise MissingPotential(
-            f"the universal potential cannot be imported ({exc}); install the 'uip' extra: "
-            "pip install -e '.[uip]' (CHGNet and a CPU build of PyTorch)") from exc
+        raise MissingPotential(f"the universal potential cannot be imported ({exc}); {_INSTALL}") from exc
     torch.set_num_threads(1)
     with contextlib.redirect_stdout(io.StringIO()):  # "CHGNet v... initialized", "will run on cpu"
         return CHGNetCalculator(model=CHGNet.load(verbose=False), use_device="cpu")
