@@ -316,12 +316,12 @@ def test_relaxations_start_where_the_potential_left_them(tmp_path, monkeypatch):
     table = pool_table(generate_pool(prototypes=["MX2-2H"], match_structures=False, progress=False))
     pick = {json.loads(d)["M"]: i for d, i in zip(table["decoration"], table["id"])
             if json.loads(d)["X"] == "S"}
-    pool_a = {m: structure_from_row(table.set_index("id").loc[pick[m]]).lattice.a
-              for m in ("Mo", "Nb")}
+    rows = table.set_index("id")
+    pool_a = {m: structure_from_row(rows.loc[pick[m]]).lattice.a for m in ("Mo", "Nb")}
     for m in ("Mo", "Nb"):  # in this process, so that the spy sees it
         seen.clear()
-        rec, _ = driver._relaxation(pick[m], driver._relax_payload(table.set_index("id"),
-                                                                   pick[m], "potential"), 2.5)
+        rec, _ = driver._relaxation(pick[m], driver._relax_payload(rows, pick[m], "potential"),
+                                    2.5)
         assert rec["status"] == "ok"
         if m == "Mo":
             assert seen["Mo"] == pytest.approx(1.03 * pool_a["Mo"])
@@ -331,8 +331,8 @@ def test_relaxations_start_where_the_potential_left_them(tmp_path, monkeypatch):
         else:  # a potential that fails leaves the pool geometry, and says why
             assert seen["Nb"] == pytest.approx(pool_a["Nb"])
             assert rec["start"] == "generated; stand-in failed: ValueError: no parameters for Nb"
-    rec, _ = driver._relaxation(pick["Mo"], driver._relax_payload(table.set_index("id"),
-                                                                  pick["Mo"], "generated"), 2.5)
+    rec, _ = driver._relaxation(pick["Mo"], driver._relax_payload(rows, pick["Mo"], "generated"),
+                                2.5)
     assert rec["start"] == "generated" and seen["Mo"] == pytest.approx(pool_a["Mo"])
     # the build stops before its first job when the potential is missing, naming the extra
     monkeypatch.setattr(prerelax, "potential_name", lambda: (_ for _ in ()).throw(
