@@ -988,9 +988,10 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
                          expected=" or ".join(RELAX_WITH))
     generation = RELAX_WITH[relax_with]
     if start == "potential" or relax_with == "potential":  # missing here, not in every child
-        from prescreen.physics.prerelax import potential_name
+        from prescreen.physics.prerelax import potential_calculator, potential_name
 
         potential_name()
+        potential_calculator()  # loaded once (4 s); the forked children share it
     log, z2_log = work / "relax.jsonl", work / Z2_LOG
     rows = pool.set_index("id")
     settings = LabelSettings()
