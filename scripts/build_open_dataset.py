@@ -165,11 +165,12 @@ RELAX_STARTS = ("potential", "generated")
 POTENTIAL_GENERATION = 0
 #: How a build relaxes a structure (``--relax-with``), and the generation it records:
 #: "potential" keeps the potential's relaxation (the start above) as the geometry, in
-#: seconds, and refuses what the start would refuse; "plane-waves" relaxes with plane
-#: waves and the stress tensor (generation 4), in minutes. Labels at the potential's
-#: geometry fell within 0.021 (median) of the plane-wave geometry's, and on the same side
-#: of 0.5 for 84 % of 31 structures, at a seventeenth of the cost
-#: (``benchmarks/potential_labels.py``, docs/labeller.md, 2026-12-03).
+#: seconds, and relaxes with plane waves what the start would refuse; "plane-waves"
+#: relaxes with plane waves and the stress tensor (generation 4), in minutes, and
+#: replaces the potential's geometries too. On the 87 labels of generation 4 the
+#: potential kept 70; their labels at its geometry fell on the same side of 0.5 as at
+#: the plane-wave geometry for 55 (79 %; 31 of 34 whose lattices agreed within 2 %), at an
+#: eleventh of the cost (``benchmarks/potential_labels.py``, docs/labeller.md, 2026-12-03).
 RELAX_WITH = {"potential": POTENTIAL_GENERATION, "plane-waves": RELAX_GENERATION}
 DEFAULT_RELAX_WITH = "potential"
 #: What the ``lattice_scan`` column says of a relaxation of the current generation.
@@ -545,7 +546,8 @@ def _potential_relaxation(ident: str, row: dict[str, Any]) -> tuple[dict[str, An
     structure (None unless the status is ``ok``). What the plane-wave route would refuse
     as a start is refused here too: a layer that falls apart (``fell_apart``), or one
     strained past the cap (``not_converged``: the potential's minimum is too far from
-    the generated geometry to trust without DFT; a plane-wave build relaxes it again)."""
+    the generated geometry to trust without DFT); :func:`_relaxed` then relaxes it with
+    plane waves."""
     t0 = time.perf_counter()
     rec: dict[str, Any] = {"id": ident, "attempts": 1, "lattice_scan": POTENTIAL_TEXT,
                            "generation": POTENTIAL_GENERATION, "start": "generated"}
@@ -578,10 +580,23 @@ def _potential_relaxation(ident: str, row: dict[str, Any]) -> tuple[dict[str, An
 
 
 def _relaxed(ident: str, payload: dict[str, Any], kpt_density: float) -> tuple[dict[str, Any], Any]:
-    """The relaxation that ``payload["relax_with"]`` asks for (:data:`RELAX_WITH`)."""
-    if payload.get("relax_with", "plane-waves") == "potential":
-        return _potential_relaxation(ident, payload)
-    return _relaxation(ident, payload, kpt_density)
+    """The relaxation that ``payload["relax_with"]`` asks for (:data:`RELAX_WITH`).
+
+    With the potential, a structure whose potential relaxation is not kept (refused,
+    not converged, failed) is relaxed with plane waves in the same job, from the pool
+    geometry: the potential's refusals are often the heavy buckled and puckered layers
+    with the largest spillage, which leaving out would bias the labels."""
+    if payload.get("relax_with", "plane-waves") != "potential":
+        return _relaxation(ident, payload, kpt_density)
+    rec, structure = _potential_relaxation(ident, payload)
+    if rec["status"] == "ok":
+        return rec, structure
+    why = str(rec.get("reason", ""))
+    pw, structure = _relaxation(ident, {**payload, "start": "generated"}, kpt_density)
+    pw.update(start=why if why.startswith("generated") else f"generated; not kept: {why}",
+              start_strain=rec.get("lattice_strain", []), start_s=rec["wall_s"],
+              wall_s=round(pw["wall_s"] + rec["wall_s"], 2))
+    return pw, structure
 
 
 def _relax_one(ident: str, row: dict[str, Any], kpt_density: float, result_path: str) -> None:
@@ -1456,10 +1471,10 @@ def _potential_text(relax: "pd.DataFrame") -> str:
     status = mine["status"].value_counts().to_dict()
     others = ", ".join(f"{k}: {v}" for k, v in sorted(status.items()) if k != "ok") or "none"
     replaced = int(mine["replaced_generation"].between(1, RELAX_GENERATION - 1).sum())
-    return (f"{len(mine)} structures took this route: {len(ok)} kept (median "
-            f"{_median(ok['wall_s'])} s each, the potential's loading included), the others "
-            f"left out ({others}); {replaced} of them had a geometry of an earlier DFT "
-            f"protocol (generations 1 to 3), whose labels their new ones replace.")
+    return (f"{len(ok)} geometries come from this route (median {_median(ok['wall_s'])} s "
+            f"each); {replaced} of them replaced a geometry of an earlier DFT protocol "
+            f"(generations 1 to 3), and their labels the earlier ones."
+            + (f" Other records of this route: {others}." if others != "none" else ""))
 
 
 def _start_text(relax: "pd.DataFrame") -> str:
@@ -1636,9 +1651,11 @@ the potential alone or refused, positives first; see step 3).
    **The potential alone** (generation {POTENTIAL_GENERATION}, `--relax-with potential`, the default since
    2026-12-03): the pool geometry relaxed by the universal interatomic potential CHGNet
    exactly as for the start described below. It must converge to {PRERELAX_FMAX} eV/A, stay one
-   sheet, and change each in-plane length by at most {100 * PRERELAX_MAX_STRAIN:.0f} %; otherwise it is
-   recorded (`not_converged`, `fell_apart`) and left for the plane-wave route, which also
-   relaxes every geometry of this route again when it runs. {_potential_text(relax)}
+   sheet, and change each in-plane length by at most {100 * PRERELAX_MAX_STRAIN:.0f} %; otherwise the same
+   job relaxes the pool geometry with plane waves (generation {RELAX_GENERATION}, below; column `start` says
+   why), so that the layers the potential gets wrong, often heavy buckled ones with a
+   large spillage, are not left out. `--relax-with plane-waves` relaxes every geometry
+   of this route again with plane waves. {_potential_text(relax)}
    **Plane waves** (`prescreen.physics.dft.relax_monolayer_pw`, generation
    {RELAX_GENERATION}): the labels' functional (PBE) and PAW setups in GPAW's
    plane-wave mode ({RELAX_ECUT_EV:g} eV cutoff, {HARD_PW_ECUT_EV:g} eV for layers with
@@ -1714,13 +1731,14 @@ Versions: {ver}.
   their symmetry (hexagonal and square cells stay so), distorted phases (1T') keep their
   starting distortion pattern, and a layer with more than one minimum may end in one
   that is not the lowest.
-- Geometries of generation {POTENTIAL_GENERATION} are the universal potential's, not DFT minima. On 31
-  structures relaxed both ways (`benchmarks/potential_labels.py`, docs/labeller.md) the
-  potential's in-plane lattice was a median 2.0 % from the plane-wave one (90th
-  percentile 10 %); the labels at the two geometries differed by a median of 0.021 in
-  spillage and fell on the same side of {POSITIVE_THRESHOLD} for 26 of the 31 (all 15 whose lattices
-  agreed within 2 % kept their label). Read a label of generation {POTENTIAL_GENERATION} near {POSITIVE_THRESHOLD} as
-  uncertain; 7 of 38 structures were refused by the potential's rules and need DFT.
+- Geometries of generation {POTENTIAL_GENERATION} are the universal potential's, not DFT minima. Of the
+  87 structures labelled at a plane-wave geometry on 2026-12-03, the potential's rules
+  kept 70 (`benchmarks/potential_labels.py`, docs/labeller.md). Their in-plane lattices
+  were a median 2.0 % from the plane-wave ones (90th percentile 8.8 %). Their labels at
+  the two geometries differed by a median of 0.063 in spillage (90th percentile 0.61) and
+  fell on the same side of {POSITIVE_THRESHOLD} for 55 of the 70 (79 %): for 31 of the 34 whose lattices
+  agreed within 2 %, and 24 of the 36 beyond. Read a label of generation {POTENTIAL_GENERATION},
+  above all one near {POSITIVE_THRESHOLD}, as provisional; filter on `relax_generation` where that matters.
 - The geometries of generation {RELAX_GENERATION} are plane-wave PBE and the labels LCAO (dzp) PBE: at a relaxed geometry
   the LCAO forces are not zero (the dzp basis gives silicene a buckling of 0.53-0.54 A
   where plane waves give 0.46 A, `benchmarks/relax_pw.py`).
