@@ -35,7 +35,8 @@ system-deps:
 dft-env: venv system-deps
 	bash scripts/install_gpaw.sh $(VENV)
 
-# The dataset build's relaxations start from a universal potential's geometry: GPAW plus
+# The dataset build relaxes with a universal potential (and starts its DFT relaxations
+# from the potential's geometry): GPAW plus
 # CHGNet and PyTorch (the `uip` extra; about 1 GB where pip finds a CPU build of torch
 # 2.13.0, several GB for PyPI's default build).
 dataset-env: dft-env
@@ -78,10 +79,12 @@ benchmarks-uip: venv
 	$(PY) benchmarks/relax_uip.py
 
 # Regenerate the open dataset (resumes from data_work/; hours of CPU); `make model` then
-# retrains the default model on it.
+# retrains the default model on it. DATASET_ARGS="--relax-with plane-waves" relaxes with
+# DFT what the default relaxed with the potential alone.
+DATASET_ARGS ?=
 DATASET_WORKERS ?= 2
 dataset: dataset-env
-	OPENBLAS_NUM_THREADS=1 $(PY) scripts/build_open_dataset.py --workers $(DATASET_WORKERS)
+	OPENBLAS_NUM_THREADS=1 $(PY) scripts/build_open_dataset.py --workers $(DATASET_WORKERS) $(DATASET_ARGS)
 
 model: venv
 	$(PY) scripts/train_default_model.py

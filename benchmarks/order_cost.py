@@ -22,6 +22,10 @@ Reads the build's checkpoints (``data_work/open_dataset``: ``relax.jsonl`` and
    potential's start, or the pool geometry because the potential's was refused): wall
    time against the relaxation fit of part 1, which is fitted to the starts at the pool
    geometry only, so that different cell sizes compare.
+5. Measures the route of the potential alone (generation 0, ``--relax-with
+   potential``): its relaxations by status, and for new structures and for those that
+   replaced an earlier DFT geometry the core-hours (relaxation + label) and labels per
+   core-hour, next to part 3's.
 
 The prediction is a fit to a few dozen jobs, not a measurement of the orders: it
 ranks them, and part 3 checks it as the build goes on.
@@ -33,7 +37,9 @@ Run: ``python benchmarks/order_cost.py [--next 200] [--work data_work/open_datas
 from __future__ import annotations
 
 import argparse
+import math
 import sys
+from collections import Counter
 from pathlib import Path
 
 import numpy as np
@@ -169,6 +175,25 @@ def main() -> int:
         print(f"{name:26s} {len(recs):4d} relaxations, {wall.sum() / 3600:5.2f} core-h, "
               f"measured/predicted: total {wall.sum() / predicted.sum():.2f}, median "
               f"{np.median(wall / predicted):.2f}; median {np.median(steps):.0f} BFGS steps")
+
+    # measured: the potential alone, whose labels come from the label log's records
+    # after its relaxation (an upgraded id's newest label is of its newest geometry)
+    mine = [r for r in relax.values() if r.get("generation") == build.POTENTIAL_GENERATION]
+    print(f"\nmeasured, the potential alone (generation {build.POTENTIAL_GENERATION}): "
+          f"{len(mine)} relaxations, "
+          + (", ".join(f"{k} {v}" for k, v in sorted(Counter(r['status'] for r in mine)
+                                                      .items())) or "none"))
+    for name, member in (("new structures", lambda r: "replaced_generation" not in r),
+                         ("replaced a DFT geometry", lambda r: "replaced_generation" in r)):
+        recs = [r for r in mine if member(r)]
+        hours = sum(float(r["wall_s"]) + float(labels.get(r["id"], {}).get("wall_s", 0.0))
+                    for r in recs) / 3600
+        n_labels = sum(r["id"] in labels for r in recs if r["status"] == "ok")
+        rate = f"{n_labels / hours:.1f}" if hours else "n/a"
+        wall = [float(r["wall_s"]) for r in recs]
+        print(f"{name:26s} {len(recs):4d} structures, {n_labels:4d} labels, {hours:6.2f} "
+              f"core-h, {rate} labels per core-hour; median "
+              f"{np.median(wall) if wall else math.nan:.1f} s to relax")
     return 0
 
 

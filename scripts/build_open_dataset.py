@@ -160,12 +160,29 @@ RELAX_GENERATION = 4
 #: so it is no new generation.
 RELAX_START = "potential"
 RELAX_STARTS = ("potential", "generated")
+#: Generation (column ``generation``) of a geometry relaxed by the universal potential
+#: alone, with no DFT relaxation after it (``--relax-with potential``).
+POTENTIAL_GENERATION = 0
+#: How a build relaxes a structure (``--relax-with``), and the generation it records:
+#: "potential" keeps the potential's relaxation (the start above) as the geometry, in
+#: seconds, and relaxes with plane waves what the start would refuse; "plane-waves"
+#: relaxes with plane waves and the stress tensor (generation 4), in minutes, and
+#: replaces the potential's geometries too. On the 87 labels of generation 4 the
+#: potential kept 70; their labels at its geometry fell on the same side of 0.5 as at
+#: the plane-wave geometry for 55 (79 %; 31 of 34 whose lattices agreed within 2 %), at an
+#: eleventh of the cost (``benchmarks/potential_labels.py``, docs/labeller.md, 2026-12-03).
+RELAX_WITH = {"potential": POTENTIAL_GENERATION, "plane-waves": RELAX_GENERATION}
+DEFAULT_RELAX_WITH = "potential"
 #: What the ``lattice_scan`` column says of a relaxation of the current generation.
 RELAX_TEXT = (f"stress tensor (plane waves, {RELAX_ECUT_EV:g} eV, {HARD_PW_ECUT_EV:g} eV with "
               f"{', '.join(sorted(HARD_ELEMENTS))}; Pulay stress estimate added): BFGS over "
               f"positions and "
               f"in-plane strain to {RELAX_FMAX} eV/A and an in-plane virial below "
               f"{RELAX_VIRIAL_TOL_EV} eV")
+
+#: What the ``lattice_scan`` column says of a relaxation by the potential alone.
+POTENTIAL_TEXT = (f"universal potential alone (FixSymmetry; FIRE over positions and in-plane "
+                  f"strain to {PRERELAX_FMAX} eV/A; no DFT relaxation)")
 
 #: Error text of the label record that stands in for a label of a geometry since
 #: replaced (the structure was relaxed again and has no label of its new geometry yet,
@@ -494,6 +511,16 @@ def _relaxation(ident: str, row: dict[str, Any], kpt_density: float) -> tuple[di
     return rec, structure
 
 
+def _potential_geometry(structure: "Structure") -> Any:
+    """The universal potential's relaxation of ``structure`` within its space group, with
+    the build's rules (a :class:`prescreen.physics.prerelax.StartGeometry`)."""
+    from prescreen.physics import prerelax
+
+    return prerelax.prerelax_monolayer(
+        structure, prerelax.potential_calculator(), name=prerelax.potential_name(),
+        check_layer=lambda s: check_intact_monolayer(s)[1])
+
+
 def _start_geometry(structure: "Structure", start: str) -> tuple["Structure", dict[str, Any]]:
     """The geometry a relaxation starts from, by ``start`` (see :data:`RELAX_START`), and
     the record's fields that say so. A potential that fails leaves the pool geometry."""
@@ -505,10 +532,7 @@ def _start_geometry(structure: "Structure", start: str) -> tuple["Structure", di
 
     name = prerelax.potential_name()
     try:
-        calc = prerelax.potential_calculator()
-        pre = prerelax.prerelax_monolayer(
-            structure, calc, name=name,
-            check_layer=lambda s: check_intact_monolayer(s)[1])
+        pre = _potential_geometry(structure)
     except prerelax.MissingPotential:
         raise
     except Exception as exc:  # recorded: the DFT relaxation still runs, from the pool
@@ -516,10 +540,69 @@ def _start_geometry(structure: "Structure", start: str) -> tuple["Structure", di
     return pre.structure, pre.record_fields()
 
 
+def _potential_relaxation(ident: str, row: dict[str, Any]) -> tuple[dict[str, Any], Any]:
+    """Relax one structure with the universal potential alone (generation
+    :data:`POTENTIAL_GENERATION`); returns its record (any status) and the relaxed
+    structure (None unless the status is ``ok``). What the plane-wave route would refuse
+    as a start is refused here too: a layer that falls apart (``fell_apart``), or one
+    strained past the cap (``not_converged``: the potential's minimum is too far from
+    the generated geometry to trust without DFT); :func:`_relaxed` then relaxes it with
+    plane waves."""
+    t0 = time.perf_counter()
+    rec: dict[str, Any] = {"id": ident, "attempts": 1, "lattice_scan": POTENTIAL_TEXT,
+                           "generation": POTENTIAL_GENERATION, "start": "generated"}
+    structure = None
+    try:
+        from prescreen.physics.prerelax import potential_name
+
+        rec["potential"] = potential_name()
+        pre = _potential_geometry(structure_from_row(row))
+        rec.update(residual_fmax_eV_per_A=round(float(pre.residual), 5),
+                   converged=bool(pre.converged and pre.used), potential_steps=pre.steps,
+                   lattice_strain=pre.record_fields()["start_strain"],
+                   # the geometry where it is the potential's; none for a refusal
+                   **(structure_columns(pre.structure) if pre.used else {}))
+        if pre.refusal == "fell_apart":
+            rec.update(status="fell_apart", reason=pre.note)
+        elif not pre.used:
+            rec.update(status="not_converged", reason=pre.note)
+        elif not pre.converged:
+            rec.update(status="not_converged", reason=f"{pre.note}: residual force "
+                                                      f"{pre.residual:.3f} eV/A")
+        else:
+            rec.update(status="ok", reason="")
+            structure = pre.structure
+    except Exception as exc:  # recorded, not raised: one failure must not stop the run
+        rec.update(status="failed", reason=f"{type(exc).__name__}: {exc}",
+                   traceback=traceback.format_exc(limit=3))
+    rec["wall_s"] = round(time.perf_counter() - t0, 2)
+    return rec, structure
+
+
+def _relaxed(ident: str, payload: dict[str, Any], kpt_density: float) -> tuple[dict[str, Any], Any]:
+    """The relaxation that ``payload["relax_with"]`` asks for (:data:`RELAX_WITH`).
+
+    With the potential, a structure whose potential relaxation is not kept (refused,
+    not converged, failed) is relaxed with plane waves in the same job, from the pool
+    geometry: the potential's refusals are often the heavy buckled and puckered layers
+    with the largest spillage, which leaving out would bias the labels."""
+    if payload.get("relax_with", "plane-waves") != "potential":
+        return _relaxation(ident, payload, kpt_density)
+    rec, structure = _potential_relaxation(ident, payload)
+    if rec["status"] == "ok":
+        return rec, structure
+    why = str(rec.get("reason", ""))
+    pw, structure = _relaxation(ident, {**payload, "start": "generated"}, kpt_density)
+    pw.update(start=why if why.startswith("generated") else f"generated; not kept: {why}",
+              start_strain=rec.get("lattice_strain", []), start_s=rec["wall_s"],
+              wall_s=round(pw["wall_s"] + rec["wall_s"], 2))
+    return pw, structure
+
+
 def _relax_one(ident: str, row: dict[str, Any], kpt_density: float, result_path: str) -> None:
     """Child process: relax one structure and write a JSON result file."""
     os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
-    write_json(result_path, _relaxation(ident, row, kpt_density)[0])
+    write_json(result_path, _relaxed(ident, row, kpt_density)[0])
 
 
 def _newest(records: Iterable[dict[str, Any]]) -> dict[str, dict[str, Any]]:
@@ -540,9 +623,16 @@ def _timed_out_below(rec: dict[str, Any], timeout_s: float) -> bool:
     return hit is not None and float(hit.group(1)) < timeout_s
 
 
-def _older_generation(rec: dict[str, Any]) -> bool:
-    """A relaxation record of an earlier protocol than :data:`RELAX_GENERATION`."""
-    return int(rec.get("generation", 1)) < RELAX_GENERATION
+def _older_generation(rec: dict[str, Any], relax_with: str = "plane-waves") -> bool:
+    """A relaxation record of a protocol that ``relax_with`` (:data:`RELAX_WITH`)
+    replaces: a plane-wave build replaces every generation before
+    :data:`RELAX_GENERATION`, the potential's among them; a build with the potential
+    replaces the earlier DFT protocols (generations 1 to 3) and leaves the plane-wave
+    ones."""
+    generation = int(rec.get("generation", 1))
+    if relax_with == "potential":
+        return POTENTIAL_GENERATION < generation < RELAX_GENERATION
+    return generation < RELAX_GENERATION
 
 
 def _is_positive(label: Any) -> bool:
@@ -559,14 +649,17 @@ def _upgrade_priority(label: Any) -> tuple[bool, float]:
     return not _is_positive(label), near
 
 
-def _needs_upgrade(rec: dict[str, Any]) -> bool:
-    """A successful relaxation of an earlier protocol: relaxed and labelled again."""
-    return rec.get("status") == "ok" and _older_generation(rec)
+def _needs_upgrade(rec: dict[str, Any], relax_with: str = "plane-waves") -> bool:
+    """A successful relaxation of a protocol that ``relax_with`` replaces: relaxed and
+    labelled again."""
+    return rec.get("status") == "ok" and _older_generation(rec, relax_with)
 
 
-def _parent_made_fields() -> dict[str, Any]:
+def _parent_made_fields(relax_with: str = "plane-waves") -> dict[str, Any]:
     """Fields of a relaxation record that the parent writes for a child that left no
     result (timeout, crash): the protocol it ran."""
+    if relax_with == "potential":
+        return {"generation": POTENTIAL_GENERATION, "lattice_scan": POTENTIAL_TEXT}
     return {"generation": RELAX_GENERATION, "lattice_scan": RELAX_TEXT,
             "smearing_eV": RELAX_SMEARING_EV}
 
@@ -593,7 +686,7 @@ def _upgrade_one(ident: str, payload: dict[str, Any], kpt_density: float,
     from prescreen.physics.dft import LabelRecord, LabelSettings, label_structure
 
     os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
-    rec, structure = _relaxation(ident, payload, kpt_density)
+    rec, structure = _relaxed(ident, payload, kpt_density)
     label = None
     if rec["status"] == "ok":
         t1 = time.perf_counter()
@@ -806,26 +899,30 @@ def _finished(job: _Job, timeout_s: float) -> dict[str, Any] | None:
     return {"id": job.ident, "status": "failed", "reason": why, "wall_s": round(elapsed, 2)}
 
 
-def _relax_payload(rows: "pd.DataFrame", ident: str, start: str = RELAX_START) -> dict[str, Any]:
+def _relax_payload(rows: "pd.DataFrame", ident: str, start: str = RELAX_START,
+                   relax_with: str = "plane-waves") -> dict[str, Any]:
     row = rows.loc[ident]
     return {"id": ident, "lattice": list(row["lattice"]), "species": list(row["species"]),
-            "frac_coords": list(row["frac_coords"]), "start": start}
+            "frac_coords": list(row["frac_coords"]), "start": start, "relax_with": relax_with}
 
 
 def relax_stage(pool: "pd.DataFrame", ids: Sequence[str], work: Path, *, workers: int = 1,
                 timeout_s: float = 3600.0, kpt_density: float = RELAX_KPT_DENSITY,
                 progress: bool = True, retry_timeouts: bool = False,
-                start: str = RELAX_START) -> list[dict[str, Any]]:
+                start: str = RELAX_START, relax_with: str = "plane-waves") -> list[dict[str, Any]]:
     """Relax ``ids`` not yet in ``<work>/relax.jsonl``; returns all relaxation records.
 
     Each structure runs in its own process (``workers`` at a time) and is stopped after
     ``timeout_s`` seconds; the outcome is appended to the checkpoint as soon as it is
-    known. ``start`` says where each relaxation starts (:data:`RELAX_START`).
+    known. ``start`` says where each relaxation starts (:data:`RELAX_START`),
+    ``relax_with`` how it relaxes (:data:`RELAX_WITH`; the command line's default is
+    :data:`DEFAULT_RELAX_WITH`).
     """
     with _work_lock(work):
         return _pipeline(pool, ids, work, None, 0, workers=workers, relax_timeout_s=timeout_s,
                          kpt_density=kpt_density, label=False, progress=progress,
-                         retry_timeouts=retry_timeouts, start=start)[1]
+                         retry_timeouts=retry_timeouts, start=start,
+                         relax_with=relax_with)[1]
 
 
 def pipeline_stage(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Path, seed: int,
@@ -834,7 +931,7 @@ def pipeline_stage(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
                    pack_every: int = 10, progress: bool = True,
                    retry_timeouts: bool = False,
                    upgrade_share: float = DEFAULT_UPGRADE_SHARE,
-                   start: str = RELAX_START) -> int:
+                   start: str = RELAX_START, relax_with: str = "plane-waves") -> int:
     """Relax and label ``ids`` as one stream; returns the number of new label records.
 
     A free worker takes the label of a finished relaxation first, else the next
@@ -850,7 +947,9 @@ def pipeline_stage(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
     that hit a timeout shorter than ``relax_timeout_s``; failures of earlier generations
     are relaxed again like new structures. ``upgrade_share`` (0 to 1) is the share of
     the relaxations started that go to structures of earlier protocols while new ones
-    wait too. ``start`` says where each relaxation starts (:data:`RELAX_START`).
+    wait too. ``start`` says where each relaxation starts (:data:`RELAX_START`),
+    ``relax_with`` how it relaxes (:data:`RELAX_WITH`; the command line's default is
+    :data:`DEFAULT_RELAX_WITH`), and so which earlier protocols it replaces.
     """
     if not 0.0 <= upgrade_share <= 1.0:
         raise InputError("bad upgrade share", value=upgrade_share, expected="0 to 1")
@@ -859,7 +958,7 @@ def pipeline_stage(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
                          relax_timeout_s=relax_timeout_s, label_timeout_s=label_timeout_s,
                          kpt_density=kpt_density, pack_every=pack_every, progress=progress,
                          retry_timeouts=retry_timeouts, upgrade_share=upgrade_share,
-                         start=start)[0]
+                         start=start, relax_with=relax_with)[0]
 
 
 def _pipeline(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Path | None,
@@ -882,7 +981,8 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
                    pack_every: int = 10, label: bool = True, progress: bool = True,
                    retry_timeouts: bool = False,
                    upgrade_share: float = DEFAULT_UPGRADE_SHARE,
-                   start: str = RELAX_START) -> tuple[int, list[dict[str, Any]]]:
+                   start: str = RELAX_START,
+                   relax_with: str = "plane-waves") -> tuple[int, list[dict[str, Any]]]:
     """The scheduler behind both stages; returns (new labels, all relaxation records).
 
     Job kinds, in order of priority: the label of a finished relaxation, the Z2
@@ -898,10 +998,15 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
 
     if start not in RELAX_STARTS:
         raise InputError("unknown relaxation start", value=start, expected=" or ".join(RELAX_STARTS))
-    if start == "potential":  # missing here, not in every child
-        from prescreen.physics.prerelax import potential_name
+    if relax_with not in RELAX_WITH:
+        raise InputError("unknown relaxation method", value=relax_with,
+                         expected=" or ".join(RELAX_WITH))
+    generation = RELAX_WITH[relax_with]
+    if start == "potential" or relax_with == "potential":  # missing here, not in every child
+        from prescreen.physics.prerelax import potential_calculator, potential_name
 
         potential_name()
+        potential_calculator()  # loaded once (4 s); the forked children share it
     log, z2_log = work / "relax.jsonl", work / Z2_LOG
     rows = pool.set_index("id")
     settings = LabelSettings()
@@ -938,9 +1043,9 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
         changed += 1
         if kind == "relax":
             if "generation" not in rec:  # the child left no result: timeout or crash
-                rec = {**rec, **_parent_made_fields()}
+                rec = {**rec, **_parent_made_fields(relax_with)}
             before = newest_relax.get(ident)  # an older failure, or a timeout, redone
-            if before and rec.get("generation") == RELAX_GENERATION:
+            if before and rec.get("generation") == generation:
                 rec = {**rec, **_replaced_fields(before)}
             if store is not None and ident in labels_now and not pending_relabel(ident):
                 supersede_label(ident)
@@ -979,7 +1084,7 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
             result = {"relax": {"id": ident, "status": "failed", "attempts": 0,
                                 "reason": str(result.get("reason", "no result")),
                                 "wall_s": float(result.get("wall_s") or 0.0),
-                                **_parent_made_fields()},
+                                **_parent_made_fields(relax_with)},
                       "label": None}
         rec = {**result["relax"], **_replaced_fields(old or {})}
         new_label = result.get("label")
@@ -1028,7 +1133,7 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
     def redo(r: dict[str, Any]) -> bool:
         """A relaxation to run again as a new one: a failure of an earlier protocol, or,
         when asked, one that hit a shorter timeout."""
-        return ((r.get("status") != "ok" and _older_generation(r))
+        return ((r.get("status") != "ok" and _older_generation(r, relax_with))
                 or (retry_timeouts and _timed_out_below(r, relax_timeout_s)))
 
     bar = tqdm(total=0, desc="relax + label" if label else "relaxing", unit="job",
@@ -1057,7 +1162,7 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
             continue  # a relax-only run leaves them for a run that labels
         if rec is not None and (
                 (kind == "relax" and (ident not in relaxed or redo(newest_relax[ident])))
-                or (kind == "upgrade" and _needs_upgrade(newest_relax.get(ident, {})))
+                or (kind == "upgrade" and _needs_upgrade(newest_relax.get(ident, {}), relax_with))
                 or (kind == "label" and (ident not in labelled or pending_relabel(ident)))
                 or (kind == "z2" and ident not in with_z2)):
             record(kind, ident, rec)
@@ -1080,12 +1185,12 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
     labels_now = {r.id: r for r in _label_records(work)} if store is not None else {}
     # a relaxation of an earlier generation is redone before its label and Z2 job
     label_queue[:] = [r for r in newest_relax.values() if label and r.get("status") == "ok"
-                      and r["id"] not in labelled and not _needs_upgrade(r)]
+                      and r["id"] not in labelled and not _needs_upgrade(r, relax_with)]
     if label:  # labels from before the Z2 jobs existed, or from an interrupted run
         with_z2 = _z2_done(z2_log) | {r["id"] for r in z2_queue}
         for done in labels_now.values():
             if (done.id not in with_z2 and done.id in relax_by_id
-                    and not _needs_upgrade(relax_by_id[done.id])):
+                    and not _needs_upgrade(relax_by_id[done.id], relax_with)):
                 consider_z2(done)
     done_ids = {i for i, r in _newest(relax).items() if not redo(r)}
     relax_queue = [i for i in ids if i not in done_ids]
@@ -1096,7 +1201,8 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
     wanted = set(ids)
     upgrade_queue = sorted(
         (r["id"] for r in newest_relax.values()
-         if label and _needs_upgrade(r) and r["id"] not in waiting and r["id"] in wanted),
+         if label and _needs_upgrade(r, relax_with) and r["id"] not in waiting
+         and r["id"] in wanted),
         key=lambda i: _upgrade_priority(labels_now.get(i)))
     bar.total = len(label_queue) + len(z2_queue) + len(upgrade_queue) + len(relax_queue)
     bar.refresh()
@@ -1121,13 +1227,14 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
                                         * (started["upgrade"] + started["relax"] + 1)):
                     started["upgrade"] += 1
                     ident = upgrade_queue.pop(0)
-                    payload = {**_relax_payload(rows, ident, start),
+                    payload = {**_relax_payload(rows, ident, start, relax_with),
                                "formula": str(rows.loc[ident, "reduced_formula"])}
                     running.append(_start("upgrade", ident, payload, tmpdir, kpt_density))
                 else:
                     started["relax"] += 1
                     ident = relax_queue.pop(0)
-                    running.append(_start("relax", ident, _relax_payload(rows, ident, start),
+                    running.append(_start("relax", ident,
+                                          _relax_payload(rows, ident, start, relax_with),
                                           tmpdir, kpt_density))
             time.sleep(0.2)
             for job in list(running):
@@ -1258,6 +1365,7 @@ def _labelled_table(pool: "pd.DataFrame", relax: Sequence[dict[str, Any]],
             "kmesh": list(rec.settings.get("kmesh", [])),
             "wall_s": float(rec.wall_s), "core_hours": float(rec.core_hours),
             "relax_wall_s": float(r.get("wall_s", math.nan)),
+            "relax_generation": int(r.get("generation", 1)),
             "residual_fmax_eV_per_A": float(r["residual_fmax_eV_per_A"]),
             "a_A": r["a_A"], "b_A": r["b_A"], "gamma_deg": r["gamma_deg"],
             "lattice": r["lattice"], "species": r["species"], "frac_coords": r["frac_coords"],
@@ -1270,12 +1378,18 @@ def _labelled_table(pool: "pd.DataFrame", relax: Sequence[dict[str, Any]],
         })
     cols = ["id", "prototype", "family", "reduced_formula", "elements", "n_atoms", "spillage",
             "high_spillage", "k_max", "gap_nosoc_eV", "gap_soc_eV", "direct_gap_soc_eV",
-            "is_metal", "magmom_muB", "kmesh", "wall_s", "core_hours", "relax_wall_s", "residual_fmax_eV_per_A", "a_A",
+            "is_metal", "magmom_muB", "kmesh", "wall_s", "core_hours", "relax_wall_s",
+            "relax_generation", "residual_fmax_eV_per_A", "a_A",
             "b_A", "gamma_deg", "lattice", "species", "frac_coords", "gamma_k", "kpts",
             "settings", "versions", "z2", "z2_method", "z2_status"]
     df = pd.DataFrame(rows, columns=cols)
     df["z2"] = df["z2"].astype("Int8")
     return df.sort_values("id").reset_index(drop=True)
+
+
+def _by_potential(rec: dict[str, Any]) -> bool:
+    """A relaxation record of the universal potential alone."""
+    return int(rec.get("generation", 1)) == POTENTIAL_GENERATION
 
 
 def _relax_table(relax: Sequence[dict[str, Any]], records: Sequence[Any]) -> "pd.DataFrame":
@@ -1286,13 +1400,15 @@ def _relax_table(relax: Sequence[dict[str, Any]], records: Sequence[Any]) -> "pd
              "converged": bool(r.get("converged", False)),
              "residual_fmax_eV_per_A": float(r.get("residual_fmax_eV_per_A", math.nan)),
              "attempts": int(r.get("attempts", 0)), "wall_s": float(r.get("wall_s", math.nan)),
-             # relaxations recorded before the width was stored used the labels' 0.01 eV
-             "smearing_eV": float(r.get("smearing_eV", 0.01)),
+             # relaxations recorded before the width was stored used the labels' 0.01 eV;
+             # the potential's have none
+             "smearing_eV": (math.nan if _by_potential(r) else float(r.get("smearing_eV", 0.01))),
              # relaxations recorded before the fine scan existed used the coarse scan only
              "lattice_scan": str(r.get("lattice_scan", "coarse only")),
              # relaxations recorded before the coarse pre-relaxation used the scan's mesh;
              # those with the stress tensor (generation 3 on) have no pre-relaxation
-             "pre_relax_kpt_density": (math.nan if int(r.get("generation", 1)) >= 3 else
+             "pre_relax_kpt_density": (math.nan if int(r.get("generation", 1)) >= 3
+                                       or _by_potential(r) else
                                        float(r.get("pre_relax_kpt_density", RELAX_KPT_DENSITY))),
              "generation": int(r.get("generation", 1)),
              "ecut_eV": float(r.get("ecut_eV", math.nan)),
@@ -1300,8 +1416,9 @@ def _relax_table(relax: Sequence[dict[str, Any]], records: Sequence[Any]) -> "pd
              "pulay_virial_eV": float(r.get("pulay_virial_eV", math.nan)),
              "bfgs_steps": int(r.get("bfgs_steps", 0)),
              "earlier_wall_s": float(r.get("earlier_wall_s", 0.0)),
-             # the generation of the record this one replaced; 0 where it replaced none
-             "replaced_generation": int(r.get("replaced_generation", 0)),
+             # the generation of the record this one replaced (0: the potential's); -1
+             # where it replaced none
+             "replaced_generation": int(r.get("replaced_generation", -1)),
              "lattice_residual": float(r.get("lattice_residual", math.nan)),
              "lattice_cycles": int(r.get("lattice_cycles", 0)),
              # relaxations recorded before the potential's start began at the pool geometry
@@ -1324,7 +1441,7 @@ def _generations_text(relax: "pd.DataFrame") -> str:
         return ""
     ok = relax[relax["status"] == "ok"]
     count = ok["generation"].value_counts().to_dict()
-    old = sum(n for g, n in count.items() if g < RELAX_GENERATION)
+    old = sum(n for g, n in count.items() if POTENTIAL_GENERATION < g < RELAX_GENERATION)
     redone = relax[(relax["generation"] == RELAX_GENERATION)
                    & relax["replaced_generation"].between(1, RELAX_GENERATION - 1)]
     if not old and not len(redone):
@@ -1335,14 +1452,29 @@ def _generations_text(relax: "pd.DataFrame") -> str:
             f"labels of their earlier geometry are replaced); "
             f"{len(redone) - good} now fail, fall apart or do not converge and are left out")
     if old:
-        text += (f". {old} kept relaxations still come from an earlier protocol and wait for "
-                 f"it: {count.get(3, 0)} of generation 3 (plane waves without the Pulay "
+        text += (f". {old} kept relaxations still come from an earlier DFT protocol and wait "
+                 f"for a new geometry: {count.get(3, 0)} of generation 3 (plane waves without the Pulay "
                  f"correction), {count.get(2, 0)} of generation 2 (LCAO, the lattice from energy scans "
                  f"with the positions held fractional, then refined to zero in-plane stress "
                  f"by finite differences of the energy) and {count.get(1, 0)} of generation 1 "
                  f"(LCAO, the scans alone, biased toward the lattice at which the positions "
                  f"were relaxed)")
     return text + "."
+
+
+def _potential_text(relax: "pd.DataFrame") -> str:
+    """What the datasheet says of the relaxations by the potential alone."""
+    mine = relax[relax["generation"] == POTENTIAL_GENERATION] if len(relax) else relax
+    if not len(mine):
+        return "None so far."
+    ok = mine[mine["status"] == "ok"]
+    status = mine["status"].value_counts().to_dict()
+    others = ", ".join(f"{k}: {v}" for k, v in sorted(status.items()) if k != "ok") or "none"
+    replaced = int(mine["replaced_generation"].between(1, RELAX_GENERATION - 1).sum())
+    return (f"{len(ok)} geometries come from this route (median {_median(ok['wall_s'])} s "
+            f"each); {replaced} of them replaced a geometry of an earlier DFT protocol "
+            f"(generations 1 to 3), and their labels the earlier ones."
+            + (f" Other records of this route: {others}." if others != "none" else ""))
 
 
 def _start_text(relax: "pd.DataFrame") -> str:
@@ -1415,6 +1547,10 @@ def datasheet(pool: "pd.DataFrame", labelled: "pd.DataFrame", relax: "pd.DataFra
                  if len(relax) and "earlier_wall_s" in relax else 0.0)
     current = (relax[(relax["generation"] == RELAX_GENERATION) & (relax["status"] == "ok")]
                if len(relax) else relax)
+    by_potential = (relax[(relax["generation"] == POTENTIAL_GENERATION)
+                          & (relax["status"] == "ok")] if len(relax) else relax)
+    potential_median = (f", {_median(by_potential['wall_s'])} s with the potential alone "
+                        f"(generation {POTENTIAL_GENERATION})" if len(by_potential) else "")
     lab_by_proto = labelled.groupby("prototype") if n_lab else None
     proto_rows = []
     for p in PROTOTYPES:
@@ -1460,7 +1596,7 @@ numbers by hand (the integrity test checks the file's hash).*
 |---|---|
 | `{POOL_PARQUET}` | the unlabelled pool, one row per candidate: `id`, `prototype`, `family`, `reduced_formula`, `formula`, `elements` (space-separated), `n_elements`, `n_atoms`, `decoration` (JSON, site role -> element), `a_A`, `b_A`, `gamma_deg`, `lattice` (9 floats, row vectors, angstrom), `species`, `frac_coords` (3 per atom) |
 | `{POOL_XYZ}` | the same starting geometries as compressed extended XYZ (`id`, `prototype` per frame; positions printed to 8 decimals, the Parquet file keeps full double precision) |
-| `{LABELLED_PARQUET}` | relaxed and labelled monolayers: pool columns, `spillage` (max over k of gamma(k), electrons), `high_spillage` (spillage >= {POSITIVE_THRESHOLD}), `k_max`, `gap_nosoc_eV`, `gap_soc_eV`, `direct_gap_soc_eV` (smallest direct gap with SOC on the mesh; empty for labels from before it was stored), `is_metal`, `magmom_muB`, `kmesh`, `wall_s`, `core_hours`, `relax_wall_s`, `residual_fmax_eV_per_A`, relaxed `lattice`/`species`/`frac_coords`, `gamma_k` and `kpts` (the whole gamma(k) on the mesh), `settings`, `versions`, `z2` (0 or 1, empty where not computed), `z2_method` (`parity` or `wilson`) and `z2_status` |
+| `{LABELLED_PARQUET}` | relaxed and labelled monolayers: pool columns, `spillage` (max over k of gamma(k), electrons), `high_spillage` (spillage >= {POSITIVE_THRESHOLD}), `k_max`, `gap_nosoc_eV`, `gap_soc_eV`, `direct_gap_soc_eV` (smallest direct gap with SOC on the mesh; empty for labels from before it was stored), `is_metal`, `magmom_muB`, `kmesh`, `wall_s`, `core_hours`, `relax_wall_s`, `relax_generation` (how the geometry was relaxed, below), `residual_fmax_eV_per_A`, relaxed `lattice`/`species`/`frac_coords`, `gamma_k` and `kpts` (the whole gamma(k) on the mesh), `settings`, `versions`, `z2` (0 or 1, empty where not computed), `z2_method` (`parity` or `wilson`) and `z2_status` |
 | `{LABELLED_XYZ}` | relaxed labelled structures as compressed extended XYZ (`id`, `spillage` per frame) |
 | `{RELAX_PARQUET}` | the newest relaxation of every structure attempted (earlier ones are counted in `earlier_wall_s` and `replaced_generation`), with `status` (ok, not_converged, fell_apart, failed), `reason`, residual force and the labelling outcome |
 | `{MANIFEST}` | SHA-256 and size of every file above and of this datasheet |
@@ -1480,14 +1616,19 @@ numbers by hand (the integrity test checks the file's hash).*
 - Z2 of the positives: {z2_text}.
 - Compute: {core_h:.2f} core-hours of labelling{superseded_text} and {relax_h:.2f}
   core-hours of relaxation{earlier_text} (wall time of single-core jobs, on a shared
-  machine); median per structure: {_median(current["wall_s"])} s to relax (successful
-  relaxations of generation {RELAX_GENERATION}), {_median(labelled["wall_s"])} s to label.
+  machine); median per structure: {_median(current["wall_s"])} s to relax with plane waves
+  (successful relaxations of generation {RELAX_GENERATION}){potential_median}, {_median(labelled["wall_s"])} s
+  to label.
 
 ## How it was made
 
 ```
 python scripts/build_open_dataset.py --seed {seed} --workers 2    # or: make dataset
+python scripts/build_open_dataset.py --seed {seed} --workers 2 --relax-with plane-waves
 ```
+
+(the second relaxes with DFT what the first, the default since 2026-12-03, relaxed with
+the potential alone or refused, positives first; see step 3).
 
 1. **Pool** (`prescreen/prototypes.py`): {len(PROTOTYPES)} monolayer prototypes used in the
    2D-materials literature, decorated with elements by group and valence rules (ionic
@@ -1505,8 +1646,18 @@ python scripts/build_open_dataset.py --seed {seed} --workers 2    # or: make dat
    estimated cost (the number of atoms, times {math.sqrt(HARD_COST_FACTOR):.2f} with N, O or F), so
    a prototype of 2-atom cells comes about three times as often as one of 6-atom cells.
    The first {EQUAL_TURNS_RELAXED} structures relaxed were chosen with equal turns.
-3. **Relaxation** (`prescreen.physics.dft.relax_monolayer_pw`, generation
-   {RELAX_GENERATION} in `{RELAX_PARQUET}`): the labels' functional (PBE) and PAW setups in GPAW's
+3. **Relaxation**, by one of two routes (column `generation` in `{RELAX_PARQUET}`,
+   `relax_generation` in `{LABELLED_PARQUET}`).
+   **The potential alone** (generation {POTENTIAL_GENERATION}, `--relax-with potential`, the default since
+   2026-12-03): the pool geometry relaxed by the universal interatomic potential CHGNet
+   exactly as for the start described below. It must converge to {PRERELAX_FMAX} eV/A, stay one
+   sheet, and change each in-plane length by at most {100 * PRERELAX_MAX_STRAIN:.0f} %; otherwise the same
+   job relaxes the pool geometry with plane waves (generation {RELAX_GENERATION}, below; column `start` says
+   why), so that the layers the potential gets wrong, often heavy buckled ones with a
+   large spillage, are not left out. `--relax-with plane-waves` relaxes every geometry
+   of this route again with plane waves. {_potential_text(relax)}
+   **Plane waves** (`prescreen.physics.dft.relax_monolayer_pw`, generation
+   {RELAX_GENERATION}): the labels' functional (PBE) and PAW setups in GPAW's
    plane-wave mode ({RELAX_ECUT_EV:g} eV cutoff, {HARD_PW_ECUT_EV:g} eV for layers with
    {', '.join(sorted(HARD_ELEMENTS))}), which has the stress tensor; k-point density
    {RELAX_KPT_DENSITY} per reciprocal angstrom, Fermi-Dirac width {RELAX_SMEARING_EV} eV.
@@ -1580,7 +1731,15 @@ Versions: {ver}.
   their symmetry (hexagonal and square cells stay so), distorted phases (1T') keep their
   starting distortion pattern, and a layer with more than one minimum may end in one
   that is not the lowest.
-- The geometries are plane-wave PBE and the labels LCAO (dzp) PBE: at a relaxed geometry
+- Geometries of generation {POTENTIAL_GENERATION} are the universal potential's, not DFT minima. Of the
+  87 structures labelled at a plane-wave geometry on 2026-12-03, the potential's rules
+  kept 70 (`benchmarks/potential_labels.py`, docs/labeller.md). Their in-plane lattices
+  were a median 2.0 % from the plane-wave ones (90th percentile 8.8 %). Their labels at
+  the two geometries differed by a median of 0.063 in spillage (90th percentile 0.61) and
+  fell on the same side of {POSITIVE_THRESHOLD} for 55 of the 70 (79 %): for 31 of the 34 whose lattices
+  agreed within 2 %, and 24 of the 36 beyond. Read a label of generation {POTENTIAL_GENERATION},
+  above all one near {POSITIVE_THRESHOLD}, as provisional; filter on `relax_generation` where that matters.
+- The geometries of generation {RELAX_GENERATION} are plane-wave PBE and the labels LCAO (dzp) PBE: at a relaxed geometry
   the LCAO forces are not zero (the dzp basis gives silicene a buckling of 0.53-0.54 A
   where plane waves give 0.46 A, `benchmarks/relax_pw.py`).
 - Plane waves are periodic along z: a polar layer (Janus, BiTeI-like) feels a spurious
@@ -1667,6 +1826,11 @@ def _parser() -> argparse.ArgumentParser:
                    help="where each relaxation starts: the pool geometry relaxed first by a "
                         "universal potential within its space group (needs the 'uip' extra), "
                         "or the pool geometry itself")
+    p.add_argument("--relax-with", choices=tuple(RELAX_WITH), default=DEFAULT_RELAX_WITH,
+                   help="'potential' keeps the universal potential's relaxation as the "
+                        "geometry (seconds; needs the 'uip' extra), 'plane-waves' relaxes with "
+                        "DFT and the stress tensor (minutes) and relaxes the potential's "
+                        f"geometries again (default {DEFAULT_RELAX_WITH})")
     p.add_argument("--out", type=Path, default=ROOT / "data_open")
     p.add_argument("--work", type=Path, default=ROOT / "data_work" / "open_dataset",
                    help="checkpoints: relaxed structures and raw label records (committed, so "
@@ -1696,7 +1860,8 @@ def run(args: argparse.Namespace) -> int:
         order = order[: max(0, args.limit)]
     relax_kw = dict(workers=args.workers, timeout_s=args.relax_timeout,
                     kpt_density=args.relax_kpt_density, progress=progress,
-                    retry_timeouts=args.retry_timeouts, start=args.start)
+                    retry_timeouts=args.retry_timeouts, start=args.start,
+                    relax_with=args.relax_with)
     if args.stage == "relax":
         relax_stage(pool, order, args.work, **relax_kw)
     elif args.stage == "label":
@@ -1710,7 +1875,8 @@ def run(args: argparse.Namespace) -> int:
                        relax_timeout_s=args.relax_timeout, label_timeout_s=args.timeout,
                        kpt_density=args.relax_kpt_density, pack_every=args.batch,
                        progress=progress, retry_timeouts=args.retry_timeouts,
-                       upgrade_share=args.upgrade_share, start=args.start)
+                       upgrade_share=args.upgrade_share, start=args.start,
+                       relax_with=args.relax_with)
     return 0
 
 

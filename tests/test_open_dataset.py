@@ -48,7 +48,8 @@ GAP_ATOL_EV = 0.02
 LABELLED_COLUMNS = [
     "id", "prototype", "family", "reduced_formula", "elements", "n_atoms", "spillage",
     "high_spillage", "k_max", "gap_nosoc_eV", "gap_soc_eV", "direct_gap_soc_eV", "is_metal",
-    "magmom_muB", "kmesh", "wall_s", "core_hours", "relax_wall_s", "residual_fmax_eV_per_A", "a_A",
+    "magmom_muB", "kmesh", "wall_s", "core_hours", "relax_wall_s", "relax_generation",
+    "residual_fmax_eV_per_A", "a_A",
     "b_A", "gamma_deg", "lattice", "species", "frac_coords", "gamma_k", "kpts",
     "settings", "versions", "z2", "z2_method", "z2_status",
 ]
@@ -441,6 +442,106 @@ def test_only_timeouts_shorter_than_the_current_one_are_retried_when_asked(tmp_p
     assert newest[pick["Ti"]]["status"] == "ok"  # the timeout, retried with a longer limit
     assert newest[pick["Nb"]]["status"] == "failed"  # an error is not retried
     assert len(again) == 3
+
+
+def _potential_by_metal(structure, calc, *, name, check_layer=None):
+    """Stand-in potential, by the metal: Mo's cell grows by 3 %; W is strained past the
+    cap and refused; Ta falls apart; Zr does not converge; Nb raises; the others keep
+    the pool geometry."""
+    from pymatgen.core import Lattice, Structure
+
+    from prescreen.physics.prerelax import StartGeometry
+
+    symbol = structure[0].specie.symbol
+    if symbol == "Nb":
+        raise ValueError("no parameters for Nb")
+    grow = 1.03 if symbol == "Mo" else 1.0
+    matrix = structure.lattice.matrix.copy()
+    matrix[:2] *= grow
+    moved = Structure(Lattice(matrix), structure.species, structure.frac_coords)
+    common = {"strain": [math.log(grow)] * 2, "steps": 9, "seconds": 0.1, "residual": 0.02}
+    if symbol == "W":
+        return StartGeometry(structure, False, f"generated; not {name}: in-plane strain +0.300",
+                             refusal="strain", **common)
+    if symbol == "Ta":
+        return StartGeometry(structure, False, f"generated; not {name}: it is two sheets",
+                             refusal="fell_apart", **common)
+    if symbol == "Zr":
+        return StartGeometry(moved, True, f"{name} (not converged in 300 steps)",
+                             **{**common, "residual": 0.4}, converged=False)
+    return StartGeometry(moved, True, f"{name} (9 steps)", **common)
+
+
+def test_the_potential_relaxes_what_it_can_and_plane_waves_the_rest_and_later_all(
+        tmp_path, monkeypatch):
+    import prescreen.physics.dft as dft
+    from prescreen.physics import prerelax
+    from prescreen.physics.labeller import load_records
+
+    driver = _driver()
+    monkeypatch.setattr(dft, "relax_monolayer_pw", _fake_pw)  # inherited by forked workers
+    monkeypatch.setattr(dft, "label_structure", _fake_label)
+    monkeypatch.setattr(prerelax, "prerelax_monolayer", _potential_by_metal)
+    monkeypatch.setattr(driver, "pack_stage", lambda out, work, seed: None)
+    table, pick = _mx2_sulfides()
+    rows = table.set_index("id")
+    work, out = tmp_path / "work", tmp_path / "out"
+    # Hf relaxed with plane waves; V by an earlier DFT protocol (generation 1)
+    driver.pipeline_stage(table, [pick["Hf"], pick["V"]], work, out, 7, progress=False,
+                          start="generated")
+    log = work / "relax.jsonl"
+    first = driver._newest(driver._read_jsonl(log))
+    log.write_text(json.dumps(first[pick["Hf"]]) + "\n"
+                   + json.dumps(_older(first[pick["V"]], 1)) + "\n")
+    metals = ("Mo", "W", "Ta", "Zr", "Nb", "Cr", "Hf", "V")
+    ids = [pick[m] for m in metals]
+    driver.pipeline_stage(table, ids, work, out, 7, workers=2, progress=False,
+                          relax_with="potential")
+    newest = driver._newest(driver._read_jsonl(log))
+    by = {m: newest[pick[m]] for m in metals}
+    # what the potential did not keep, plane waves relaxed in the same job (_fake_pw:
+    # Zr does not converge, Nb raises), from the pool geometry
+    assert {m: r["status"] for m, r in by.items()} == {
+        "Mo": "ok", "W": "ok", "Ta": "ok", "Zr": "not_converged",
+        "Nb": "failed", "Cr": "ok", "Hf": "ok", "V": "ok"}
+    assert {m: r["generation"] for m, r in by.items()} == {
+        **dict.fromkeys(metals, driver.RELAX_GENERATION),
+        **dict.fromkeys(("Mo", "Cr", "V"), driver.POTENTIAL_GENERATION)}
+    assert by["Hf"] == first[pick["Hf"]]  # plane waves are not replaced by the potential
+    pool_a = structure_from_row(rows.loc[pick["Mo"]]).lattice.a
+    assert by["Mo"]["a_A"] == pytest.approx(1.03 * pool_a, rel=1e-6)  # the potential's
+    assert by["Mo"]["residual_fmax_eV_per_A"] == 0.02 and by["Mo"]["potential"] == "stand-in"
+    assert by["W"]["start"] == "generated; not stand-in: in-plane strain +0.300"
+    assert by["Ta"]["start"] == "generated; not stand-in: it is two sheets"
+    assert by["Zr"]["start"].startswith("generated; not kept: stand-in (not converged")
+    assert "residual force 0.400" in by["Zr"]["start"]
+    assert by["Nb"]["start"] == "generated; not kept: ValueError: no parameters for Nb"
+    assert by["W"]["a_A"] == pytest.approx(structure_from_row(rows.loc[pick["W"]]).lattice.a)
+    assert by["V"]["replaced_generation"] == 1 and by["V"]["earlier_wall_s"] == 100.0
+    labels = {r.id: r for r in load_records(work / "labels")}  # the newest of each
+    assert {m for m in metals if pick[m] in labels and labels[pick[m]].ok} == {
+        "Mo", "W", "Ta", "Cr", "Hf", "V"}
+    table_now = driver._relax_table(driver._read_jsonl(log), list(labels.values()))
+    assert table_now.set_index("id").loc[pick["Mo"], "replaced_generation"] == -1
+    # run again with the potential: nothing of its own is redone
+    lines = len(driver._read_jsonl(log))
+    assert driver.pipeline_stage(table, ids, work, out, 7, progress=False,
+                                 relax_with="potential") == 0
+    assert len(driver._read_jsonl(log)) == lines
+    # a plane-wave build relaxes the potential's geometries again, and nothing else
+    before = by
+    driver.pipeline_stage(table, ids, work, out, 7, workers=2, progress=False,
+                          start="generated", relax_with="plane-waves")
+    newest = driver._newest(driver._read_jsonl(log))
+    by = {m: newest[pick[m]] for m in metals}
+    assert {m: r["generation"] for m, r in by.items()} == dict.fromkeys(
+        metals, driver.RELAX_GENERATION)
+    assert {m for m in metals if by[m] != before[m]} == {"Mo", "Cr", "V"}
+    assert by["Mo"]["status"] == "ok"
+    assert by["Mo"]["replaced_generation"] == driver.POTENTIAL_GENERATION
+    assert by["Mo"]["a_A"] == pytest.approx(1.02 * pool_a, rel=1e-6)  # from the pool, by DFT
+    with pytest.raises(InputError, match="unknown relaxation method"):
+        driver.pipeline_stage(table, ids, work, out, 7, progress=False, relax_with="magic")
 
 
 def _fake_label(structure, settings, *, id=None):

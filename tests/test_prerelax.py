@@ -86,6 +86,7 @@ def test_start_reaches_the_relaxation_of_ase_without_constraints():
     np.testing.assert_allclose(got.structure.lattice.abc[:2], ref.cell.lengths()[:2],
                                rtol=1e-3)
     np.testing.assert_allclose(got.strain, np.log(ref.cell.lengths()[:2] / 2.45), atol=1e-3)
+    assert got.converged and got.residual < 1e-3
     dz = np.ptp(got.structure.cart_coords[:, 2])
     assert dz == pytest.approx(np.ptp(ref.positions[:, 2]), abs=5e-3)
 
@@ -93,7 +94,7 @@ def test_start_reaches_the_relaxation_of_ase_without_constraints():
 def test_a_start_that_falls_apart_is_not_used():
     start = _buckled_cu()
     got = prerelax_monolayer(start, EMT(), name="EMT", check_layer=lambda s: "fell apart here")
-    assert not got.used
+    assert not got.used and got.refusal == "fell_apart"
     assert got.structure is start
     assert got.note.startswith("generated; not EMT (FixSymmetry") and "fell apart here" in got.note
     assert got.record_fields()["start"] == got.note
@@ -102,12 +103,26 @@ def test_a_start_that_falls_apart_is_not_used():
 def test_a_start_strained_beyond_the_limit_is_not_used():
     start = _buckled_cu()
     got = prerelax_monolayer(start, EMT(), max_strain=0.01, check_layer=_check)
-    assert not got.used and got.structure is start
+    assert not got.used and got.structure is start and got.refusal == "strain"
     assert "beyond 0.01" in got.note
     assert abs(got.strain[0]) > 0.01  # the measured strain is still recorded
     fields = got.record_fields()
     assert set(fields) == {"start", "start_strain", "start_steps", "start_s"}
     assert fields["start_steps"] > 0
+
+
+def test_a_start_out_of_steps_says_so_with_the_force_left():
+    """The residual is the largest force FIRE saw, on the atoms and on the in-plane cell:
+    at least the largest atomic force that EMT itself gives at the final geometry."""
+    start = _buckled_cu(a=2.45, buckling=0.6)
+    got = prerelax_monolayer(start, EMT(), steps=2, check_layer=_check)
+    assert got.used and not got.converged and got.steps == 2
+    assert "not converged in 2 steps" in got.note
+    assert got.residual > 0.05
+    atoms = AseAtomsAdaptor.get_atoms(got.structure)
+    atoms.calc = EMT()
+    atomic = float(np.linalg.norm(atoms.get_forces(), axis=1).max())
+    assert got.residual >= atomic - 1e-9  # the cell's force can only add
 
 
 def test_missing_potential_names_the_extra(monkeypatch):

@@ -70,7 +70,11 @@ class StartGeometry:
 
     ``structure`` is the start; ``used`` says whether it is the potential's (False: the
     generated geometry, for the reason in ``note``). ``strain`` holds the potential's log
-    strain of ``a`` and ``b``, ``steps`` its number of FIRE steps, ``seconds`` its time.
+    strain of ``a`` and ``b``, ``steps`` its number of FIRE steps, ``seconds`` its time,
+    ``converged`` whether FIRE reached its force tolerance, ``residual`` the largest
+    generalised force left (eV/Angstrom, the cell's included, as FIRE judged it), and
+    ``refusal`` why the potential's geometry was not used: "" (used), "fell_apart" or
+    "strain".
     """
 
     structure: "Structure"
@@ -79,6 +83,9 @@ class StartGeometry:
     strain: list[float] = field(default_factory=list)
     steps: int = 0
     seconds: float = 0.0
+    converged: bool = True
+    residual: float = float("nan")
+    refusal: str = ""
 
     def record_fields(self) -> dict[str, Any]:
         """The fields a relaxation record keeps of its start."""
@@ -160,7 +167,8 @@ def prerelax_monolayer(structure: "Structure", calc: Any, *,
     atoms.calc = calc
     atoms.set_constraint(FixSymmetry(atoms, symprec=symprec))
     t0 = time.perf_counter()
-    opt = FIRE(FrechetCellFilter(atoms, mask=[1, 1, 0, 0, 0, 1]), logfile=None)
+    cell_filter = FrechetCellFilter(atoms, mask=[1, 1, 0, 0, 0, 1])
+    opt = FIRE(cell_filter, logfile=None)
     with warnings.catch_warnings():  # CHGNet's own, at every step: its stress, and the
         # constraint that its conversion to pymatgen leaves out (the forces it returns are
         # symmetrised by the constraint all the same)
@@ -168,6 +176,7 @@ def prerelax_monolayer(structure: "Structure", calc: Any, *,
         warnings.filterwarnings("ignore", message="Only FixAtoms and FixCartesian")
         converged = bool(opt.run(fmax=fmax, steps=steps))
     seconds = time.perf_counter() - t0
+    residual = float(np.sqrt((cell_filter.get_forces() ** 2).sum(axis=1).max()))
     atoms.set_constraint()
     atoms.calc = None
     moved = AseAtomsAdaptor.get_structure(atoms)
@@ -175,13 +184,15 @@ def prerelax_monolayer(structure: "Structure", calc: Any, *,
     how = (f"{name} (FixSymmetry, FIRE to {fmax:g} eV/A"
            + (f", {opt.nsteps} step{'' if opt.nsteps == 1 else 's'})" if converged
               else f", not converged in {steps} steps)"))
-    common = {"strain": strain.tolist(), "steps": int(opt.nsteps), "seconds": seconds}
+    common = {"strain": strain.tolist(), "steps": int(opt.nsteps), "seconds": seconds,
+              "converged": converged, "residual": residual}
     broke = check_layer(moved) if check_layer is not None else ""
     if broke:
-        return StartGeometry(structure, False, f"generated; not {how}: it {broke}", **common)
+        return StartGeometry(structure, False, f"generated; not {how}: it {broke}",
+                             refusal="fell_apart", **common)
     if float(np.max(np.abs(strain))) > max_strain:
         return StartGeometry(structure, False,
                              f"generated; not {how}: in-plane strain "
                              f"{', '.join(f'{x:+.3f}' for x in strain)} beyond "
-                             f"{max_strain:g}", **common)
+                             f"{max_strain:g}", refusal="strain", **common)
     return StartGeometry(moved, True, how, **common)
