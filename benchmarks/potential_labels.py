@@ -7,8 +7,8 @@ a fraction of that. The issue also allows a documented universal interatomic pot
 for the geometry. This script measures what that would do to the labels: for every
 monolayer in ``data_open/labelled.parquet`` whose geometry is of generation 4, it
 relaxes the *pool* geometry with CHGNet within its space group under the build's rules
-(``prescreen.physics.prerelax``; a start that falls apart or strains an in-plane length
-by more than 15 % is refused), labels that geometry with the labeller's default
+(``_potential_relaxation`` of the build script: a relaxation that falls apart, does not
+converge or strains an in-plane length by more than 15 % is refused), labels that geometry with the labeller's default
 settings, and compares the spillage with the shipped label.
 
 Prints one line per structure (written also to ``--out`` as JSON lines, so a run
@@ -64,15 +64,13 @@ def _rows(data: Path) -> list[dict]:
 
 def _measure(row: dict) -> dict:
     from prescreen.physics.dft import LabelSettings, label_structure
-    from prescreen.prototypes import structure_from_row
 
     build = build_module()
     res = {k: v for k, v in row.items() if k != "pool"}
-    t0 = time.perf_counter()
-    structure, fields = build._start_geometry(structure_from_row(row["pool"]), "potential")
-    res["potential_s"] = round(time.perf_counter() - t0, 2)
-    res["start"] = fields["start"]
-    if fields["start"].startswith("generated"):
+    rec, structure = build._potential_relaxation(row["id"], row["pool"])  # the build's rule
+    res["potential_s"] = rec["wall_s"]
+    res["start"] = rec["reason"] or f"{rec['potential']} ({rec['potential_steps']} steps)"
+    if rec["status"] != "ok":
         res["status"] = "refused"
         return res
     res["a_pot"], res["b_pot"] = (round(float(x), 4) for x in structure.lattice.abc[:2])

@@ -579,7 +579,14 @@ def _potential_relaxation(ident: str, row: dict[str, Any]) -> tuple[dict[str, An
     return rec, structure
 
 
-def _relaxed(ident: str, payload: dict[str, Any], kpt_density: float) -> tuple[dict[str, Any], Any]:
+#: File a child leaves in its scratch folder when the potential's route falls back to
+#: plane waves, so that the parent records a child that leaves no result (a timeout in the
+#: plane-wave relaxation) as the plane waves' failure, not the potential's.
+FALLBACK_MARK = "plane-waves"
+
+
+def _relaxed(ident: str, payload: dict[str, Any], kpt_density: float,
+             marker: Path | None = None) -> tuple[dict[str, Any], Any]:
     """The relaxation that ``payload["relax_with"]`` asks for (:data:`RELAX_WITH`).
 
     With the potential, a structure whose potential relaxation is not kept (refused,
@@ -592,6 +599,9 @@ def _relaxed(ident: str, payload: dict[str, Any], kpt_density: float) -> tuple[d
     if rec["status"] == "ok":
         return rec, structure
     why = str(rec.get("reason", ""))
+    if marker is not None:
+        marker.parent.mkdir(parents=True, exist_ok=True)
+        marker.touch()
     pw, structure = _relaxation(ident, {**payload, "start": "generated"}, kpt_density)
     pw.update(start=why if why.startswith("generated") else f"generated; not kept: {why}",
               start_strain=rec.get("lattice_strain", []), start_s=rec["wall_s"],
@@ -602,7 +612,8 @@ def _relaxed(ident: str, payload: dict[str, Any], kpt_density: float) -> tuple[d
 def _relax_one(ident: str, row: dict[str, Any], kpt_density: float, result_path: str) -> None:
     """Child process: relax one structure and write a JSON result file."""
     os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
-    write_json(result_path, _relaxed(ident, row, kpt_density)[0])
+    write_json(result_path, _relaxed(ident, row, kpt_density,
+                                     _scratch(Path(result_path)) / FALLBACK_MARK)[0])
 
 
 def _newest(records: Iterable[dict[str, Any]]) -> dict[str, dict[str, Any]]:
@@ -686,7 +697,8 @@ def _upgrade_one(ident: str, payload: dict[str, Any], kpt_density: float,
     from prescreen.physics.dft import LabelRecord, LabelSettings, label_structure
 
     os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
-    rec, structure = _relaxed(ident, payload, kpt_density)
+    rec, structure = _relaxed(ident, payload, kpt_density,
+                              _scratch(Path(result_path)) / FALLBACK_MARK)
     label = None
     if rec["status"] == "ok":
         t1 = time.perf_counter()
@@ -887,6 +899,7 @@ def _finished(job: _Job, timeout_s: float) -> dict[str, Any] | None:
     if job.process.is_alive():
         job.process.kill()
     job.process.join()
+    fell_back = (_scratch(job.result) / FALLBACK_MARK).exists()
     shutil.rmtree(_scratch(job.result), ignore_errors=True)
     if job.result.exists():  # deleted by the caller once recorded
         return json.loads(job.result.read_text(encoding="utf-8"))
@@ -896,7 +909,8 @@ def _finished(job: _Job, timeout_s: float) -> dict[str, Any] | None:
     why = (f"Timeout: no result within {timeout_s:g} s" if elapsed >= timeout_s
            else f"WorkerDied: worker process ended (exit code {job.process.exitcode}), "
                 "e.g. killed or out of memory")
-    return {"id": job.ident, "status": "failed", "reason": why, "wall_s": round(elapsed, 2)}
+    return {"id": job.ident, "status": "failed", "reason": why, "wall_s": round(elapsed, 2),
+            **({"relax_with": "plane-waves"} if fell_back else {})}
 
 
 def _relax_payload(rows: "pd.DataFrame", ident: str, start: str = RELAX_START,
@@ -1001,7 +1015,6 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
     if relax_with not in RELAX_WITH:
         raise InputError("unknown relaxation method", value=relax_with,
                          expected=" or ".join(RELAX_WITH))
-    generation = RELAX_WITH[relax_with]
     if start == "potential" or relax_with == "potential":  # missing here, not in every child
         from prescreen.physics.prerelax import potential_calculator, potential_name
 
@@ -1043,9 +1056,9 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
         changed += 1
         if kind == "relax":
             if "generation" not in rec:  # the child left no result: timeout or crash
-                rec = {**rec, **_parent_made_fields(relax_with)}
+                rec = {**rec, **_parent_made_fields(rec.pop("relax_with", relax_with))}
             before = newest_relax.get(ident)  # an older failure, or a timeout, redone
-            if before and rec.get("generation") == generation:
+            if before and rec.get("generation") in RELAX_WITH.values():
                 rec = {**rec, **_replaced_fields(before)}
             if store is not None and ident in labels_now and not pending_relabel(ident):
                 supersede_label(ident)
@@ -1084,7 +1097,7 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
             result = {"relax": {"id": ident, "status": "failed", "attempts": 0,
                                 "reason": str(result.get("reason", "no result")),
                                 "wall_s": float(result.get("wall_s") or 0.0),
-                                **_parent_made_fields(relax_with)},
+                                **_parent_made_fields(result.get("relax_with", relax_with))},
                       "label": None}
         rec = {**result["relax"], **_replaced_fields(old or {})}
         new_label = result.get("label")
@@ -1162,7 +1175,8 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
             continue  # a relax-only run leaves them for a run that labels
         if rec is not None and (
                 (kind == "relax" and (ident not in relaxed or redo(newest_relax[ident])))
-                or (kind == "upgrade" and _needs_upgrade(newest_relax.get(ident, {}), relax_with))
+                # (an upgrade of either route: one left by a plane-wave run is kept too)
+                or (kind == "upgrade" and _needs_upgrade(newest_relax.get(ident, {})))
                 or (kind == "label" and (ident not in labelled or pending_relabel(ident)))
                 or (kind == "z2" and ident not in with_z2)):
             record(kind, ident, rec)
@@ -1415,6 +1429,7 @@ def _relax_table(relax: Sequence[dict[str, Any]], records: Sequence[Any]) -> "pd
              "virial_eV": float(r.get("virial_eV", math.nan)),
              "pulay_virial_eV": float(r.get("pulay_virial_eV", math.nan)),
              "bfgs_steps": int(r.get("bfgs_steps", 0)),
+             "potential_steps": int(r.get("potential_steps", 0)),
              "earlier_wall_s": float(r.get("earlier_wall_s", 0.0)),
              # the generation of the record this one replaced (0: the potential's); -1
              # where it replaced none
@@ -1428,7 +1443,8 @@ def _relax_table(relax: Sequence[dict[str, Any]], records: Sequence[Any]) -> "pd
             for r in _newest(relax).values()]
     cols = ["id", "status", "reason", "converged", "residual_fmax_eV_per_A", "attempts",
             "wall_s", "smearing_eV", "lattice_scan", "pre_relax_kpt_density", "generation",
-            "ecut_eV", "virial_eV", "pulay_virial_eV", "bfgs_steps", "earlier_wall_s",
+            "ecut_eV", "virial_eV", "pulay_virial_eV", "bfgs_steps", "potential_steps",
+            "earlier_wall_s",
             "replaced_generation",
             "lattice_residual",
             "lattice_cycles", "start", "start_s", "label_status"]
@@ -1470,7 +1486,7 @@ def _potential_text(relax: "pd.DataFrame") -> str:
     ok = mine[mine["status"] == "ok"]
     status = mine["status"].value_counts().to_dict()
     others = ", ".join(f"{k}: {v}" for k, v in sorted(status.items()) if k != "ok") or "none"
-    replaced = int(mine["replaced_generation"].between(1, RELAX_GENERATION - 1).sum())
+    replaced = int(ok["replaced_generation"].between(1, RELAX_GENERATION - 1).sum())
     return (f"{len(ok)} geometries come from this route (median {_median(ok['wall_s'])} s "
             f"each); {replaced} of them replaced a geometry of an earlier DFT protocol "
             f"(generations 1 to 3), and their labels the earlier ones."
@@ -1573,8 +1589,14 @@ def datasheet(pool: "pd.DataFrame", labelled: "pd.DataFrame", relax: "pd.DataFra
                for e in sorted(el_pool, key=lambda x: (-el_lab[x], -el_pool[x], x))]
     ver = ", ".join(f"{k} {v}" for k, v in sorted(versions.items()))
     status_text = ", ".join(f"{k}: {v}" for k, v in sorted(status.items())) or "none yet"
-    resid = (f"{relax.loc[relax['status'] == 'ok', 'residual_fmax_eV_per_A'].max():.3f}"
-             if status.get("ok") else "n/a")
+    kept = relax[relax["status"] == "ok"] if len(relax) else relax
+    by_dft = kept["generation"] != POTENTIAL_GENERATION if len(kept) else []
+    resid = (f"{kept.loc[by_dft, 'residual_fmax_eV_per_A'].max():.3f} eV/A"
+             if len(kept) and by_dft.any() else "n/a")
+    if len(kept) and (~by_dft).any():
+        resid += (f" in DFT, {kept.loc[~by_dft, 'residual_fmax_eV_per_A'].max():.3f} eV/A "
+                  f"in the potential's own forces (the cell's included) for generation "
+                  f"{POTENTIAL_GENERATION}")
     generations_text = _generations_text(relax)
     start_text = _start_text(relax)
     superseded_text = (f" (and {superseded_h:.2f} more for labels of geometries since "
@@ -1609,7 +1631,7 @@ numbers by hand (the integrity test checks the file's hash).*
   {int((pool["family"] == "polar-trilayer").sum())} of the Janus 1T layers are BiTeI-like polar trilayers
   (pnictogen metal, one chalcogen and one halogen side).
 - Structures relaxed: {len(relax)} ({status_text}, the newest relaxation of each); largest residual force among the
-  kept ones: {resid} eV/A.
+  kept ones: {resid}.
 - Labelled: **{n_lab}**; positives at spillage >= {POSITIVE_THRESHOLD}: {n_pos}
   (positive rate {_rate(n_pos, n_lab)}); {n_pos_gapped} of the positives have a band gap
   with spin-orbit coupling, the others are metals.
@@ -1628,7 +1650,7 @@ python scripts/build_open_dataset.py --seed {seed} --workers 2 --relax-with plan
 ```
 
 (the second relaxes with DFT what the first, the default since 2026-12-03, relaxed with
-the potential alone or refused, positives first; see step 3).
+the potential alone, positives first; see step 3).
 
 1. **Pool** (`prescreen/prototypes.py`): {len(PROTOTYPES)} monolayer prototypes used in the
    2D-materials literature, decorated with elements by group and valence rules (ionic

@@ -445,8 +445,8 @@ def test_only_timeouts_shorter_than_the_current_one_are_retried_when_asked(tmp_p
 
 
 def _potential_by_metal(structure, calc, *, name, check_layer=None):
-    """Stand-in potential, by the metal: Mo's cell grows by 3 %; W is strained past the
-    cap and refused; Ta falls apart; Zr does not converge; Nb raises; the others keep
+    """Stand-in potential, by the metal: Mo's cell grows by 3 %; W and Ti are strained past
+    the cap and refused; Ta falls apart; Zr does not converge; Nb raises; the others keep
     the pool geometry."""
     from pymatgen.core import Lattice, Structure
 
@@ -460,7 +460,7 @@ def _potential_by_metal(structure, calc, *, name, check_layer=None):
     matrix[:2] *= grow
     moved = Structure(Lattice(matrix), structure.species, structure.frac_coords)
     common = {"strain": [math.log(grow)] * 2, "steps": 9, "seconds": 0.1, "residual": 0.02}
-    if symbol == "W":
+    if symbol in ("W", "Ti"):
         return StartGeometry(structure, False, f"generated; not {name}: in-plane strain +0.300",
                              refusal="strain", **common)
     if symbol == "Ta":
@@ -493,17 +493,21 @@ def test_the_potential_relaxes_what_it_can_and_plane_waves_the_rest_and_later_al
     first = driver._newest(driver._read_jsonl(log))
     log.write_text(json.dumps(first[pick["Hf"]]) + "\n"
                    + json.dumps(_older(first[pick["V"]], 1)) + "\n")
-    metals = ("Mo", "W", "Ta", "Zr", "Nb", "Cr", "Hf", "V")
+    # W failed with an earlier protocol (generation 1): the potential's route redoes it
+    driver._append_jsonl(log, {"id": pick["W"], "status": "failed", "reason": "SCF",
+                               "wall_s": 50.0})
+    metals = ("Mo", "W", "Ta", "Zr", "Nb", "Cr", "Hf", "V", "Ti")
     ids = [pick[m] for m in metals]
+    # Ti's plane-wave fallback outlasts the timeout (_fake_pw sleeps)
     driver.pipeline_stage(table, ids, work, out, 7, workers=2, progress=False,
-                          relax_with="potential")
+                          relax_with="potential", relax_timeout_s=4)
     newest = driver._newest(driver._read_jsonl(log))
     by = {m: newest[pick[m]] for m in metals}
     # what the potential did not keep, plane waves relaxed in the same job (_fake_pw:
     # Zr does not converge, Nb raises), from the pool geometry
     assert {m: r["status"] for m, r in by.items()} == {
         "Mo": "ok", "W": "ok", "Ta": "ok", "Zr": "not_converged",
-        "Nb": "failed", "Cr": "ok", "Hf": "ok", "V": "ok"}
+        "Nb": "failed", "Cr": "ok", "Hf": "ok", "V": "ok", "Ti": "failed"}
     assert {m: r["generation"] for m, r in by.items()} == {
         **dict.fromkeys(metals, driver.RELAX_GENERATION),
         **dict.fromkeys(("Mo", "Cr", "V"), driver.POTENTIAL_GENERATION)}
@@ -518,9 +522,25 @@ def test_the_potential_relaxes_what_it_can_and_plane_waves_the_rest_and_later_al
     assert by["Nb"]["start"] == "generated; not kept: ValueError: no parameters for Nb"
     assert by["W"]["a_A"] == pytest.approx(structure_from_row(rows.loc[pick["W"]]).lattice.a)
     assert by["V"]["replaced_generation"] == 1 and by["V"]["earlier_wall_s"] == 100.0
+    assert by["W"]["replaced_generation"] == 1 and by["W"]["earlier_wall_s"] == 50.0
+    # a timeout in the fallback is the plane waves' failure, not the potential's
+    assert by["Ti"]["reason"].startswith("Timeout") and by["Ti"]["lattice_scan"] == driver.RELAX_TEXT
     labels = {r.id: r for r in load_records(work / "labels")}  # the newest of each
     assert {m for m in metals if pick[m] in labels and labels[pick[m]].ok} == {
         "Mo", "W", "Ta", "Cr", "Hf", "V"}
+    # the datasheet of the mixed dataset
+    relax_recs, label_recs = driver._read_jsonl(log), driver._label_records(work)
+    labelled = driver._labelled_table(table, relax_recs, label_recs)
+    assert dict(zip(labelled["id"], labelled["relax_generation"])) == {
+        pick[m]: (0 if m in ("Mo", "Cr", "V") else 4) for m in ("Mo", "W", "Ta", "Cr", "Hf", "V")}
+    relax_table = driver._relax_table(relax_recs, label_recs).set_index("id")
+    assert relax_table.loc[pick["Mo"], "potential_steps"] == 9
+    sheet = driver.datasheet(table, labelled, relax_table.reset_index(), 7, {})
+    assert "0.020 eV/A in the potential's own forces" in sheet
+    assert ("3 geometries come from this route (median" in sheet
+            and "1 of them replaced a geometry of an earlier DFT protocol" in sheet)
+    assert "with the potential alone (generation 0)" in sheet
+    assert "still come from an earlier" not in sheet
     table_now = driver._relax_table(driver._read_jsonl(log), list(labels.values()))
     assert table_now.set_index("id").loc[pick["Mo"], "replaced_generation"] == -1
     # run again with the potential: nothing of its own is redone
@@ -702,7 +722,8 @@ def test_structures_of_earlier_protocols_are_relaxed_again_and_relabelled(tmp_pa
         driver.RELAX_GENERATION}
     said = driver._generations_text(relax_df)
     assert said.startswith("7 structures relaxed by an earlier protocol have been relaxed")
-    assert "4 successfully" in said and "3 now fail" in said and "wait for it" not in said
+    assert "4 successfully" in said and "3 now fail" in said
+    assert "still come from an earlier" not in said
     status = dict(zip(relax_df["id"], relax_df["label_status"]))
     assert status[pick["Zr"]] == f"failed: {driver.RELABEL_PENDING}"
     assert relax_df["earlier_wall_s"].sum() == pytest.approx(6 * 100.0 + 50.0)
