@@ -1485,12 +1485,12 @@ def _potential_text(relax: "pd.DataFrame") -> str:
         return "None so far."
     ok = mine[mine["status"] == "ok"]
     status = mine["status"].value_counts().to_dict()
-    others = ", ".join(f"{k}: {v}" for k, v in sorted(status.items()) if k != "ok") or "none"
+    others = ", ".join(f"{k}: {v}" for k, v in sorted(status.items()) if k != "ok")
     replaced = int(ok["replaced_generation"].between(1, RELAX_GENERATION - 1).sum())
     return (f"{len(ok)} geometries come from this route (median {_median(ok['wall_s'])} s "
             f"each); {replaced} of them replaced a geometry of an earlier DFT protocol "
             f"(generations 1 to 3), and their labels the earlier ones."
-            + (f" Other records of this route: {others}." if others != "none" else ""))
+            + (f" Other records of this route: {others}." if others else ""))
 
 
 def _start_text(relax: "pd.DataFrame") -> str:
@@ -1589,12 +1589,11 @@ def datasheet(pool: "pd.DataFrame", labelled: "pd.DataFrame", relax: "pd.DataFra
                for e in sorted(el_pool, key=lambda x: (-el_lab[x], -el_pool[x], x))]
     ver = ", ".join(f"{k} {v}" for k, v in sorted(versions.items()))
     status_text = ", ".join(f"{k}: {v}" for k, v in sorted(status.items())) or "none yet"
-    kept = relax[relax["status"] == "ok"] if len(relax) else relax
-    by_dft = kept["generation"] != POTENTIAL_GENERATION if len(kept) else []
-    resid = (f"{kept.loc[by_dft, 'residual_fmax_eV_per_A'].max():.3f} eV/A"
-             if len(kept) and by_dft.any() else "n/a")
-    if len(kept) and (~by_dft).any():
-        resid += (f" in DFT, {kept.loc[~by_dft, 'residual_fmax_eV_per_A'].max():.3f} eV/A "
+    by_dft = (relax[(relax["generation"] != POTENTIAL_GENERATION) & (relax["status"] == "ok")]
+              if len(relax) else relax)
+    resid = f"{by_dft['residual_fmax_eV_per_A'].max():.3f} eV/A" if len(by_dft) else "n/a"
+    if len(by_potential):
+        resid += (f" in DFT, {by_potential['residual_fmax_eV_per_A'].max():.3f} eV/A "
                   f"in the potential's own forces (the cell's included) for generation "
                   f"{POTENTIAL_GENERATION}")
     generations_text = _generations_text(relax)
