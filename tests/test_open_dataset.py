@@ -564,6 +564,70 @@ def test_the_potential_relaxes_what_it_can_and_plane_waves_the_rest_and_later_al
         driver.pipeline_stage(table, ids, work, out, 7, progress=False, relax_with="magic")
 
 
+def test_refusals_of_the_potential_can_wait_for_their_plane_waves(tmp_path, monkeypatch):
+    import prescreen.physics.dft as dft
+    from prescreen.physics import prerelax
+    from prescreen.physics.labeller import load_records
+
+    driver = _driver()
+    monkeypatch.setattr(dft, "relax_monolayer_pw", _fake_pw)  # inherited by forked workers
+    monkeypatch.setattr(dft, "label_structure", _fake_label)
+    monkeypatch.setattr(prerelax, "prerelax_monolayer", _potential_by_metal)
+    monkeypatch.setattr(driver, "pack_stage", lambda out, work, seed: None)
+    table, pick = _mx2_sulfides()
+    work, out = tmp_path / "work", tmp_path / "out"
+    log = work / "relax.jsonl"
+    # W relaxed and labelled by an earlier DFT protocol (generation 1)
+    driver.pipeline_stage(table, [pick["W"]], work, out, 7, progress=False, start="generated")
+    log.write_text(json.dumps(_older(driver._read_jsonl(log)[0], 1)) + "\n")
+    metals = ("Mo", "Ta", "Nb", "W")
+    ids = [pick[m] for m in metals]
+    driver.pipeline_stage(table, ids, work, out, 7, workers=2, progress=False,
+                          relax_with="potential", fallback="later")
+    by = {m: r for m, r in ((m, driver._newest(driver._read_jsonl(log))[pick[m]])
+                            for m in metals)}
+    # the refusals are recorded as the potential's and left; an upgrade (W, refused for
+    # its strain) falls back at once, since it replaces a labelled geometry
+    assert {m: (r["generation"], r["status"]) for m, r in by.items()} == {
+        "Mo": (0, "ok"), "Ta": (0, "fell_apart"), "Nb": (0, "failed"), "W": (4, "ok")}
+    assert by["Ta"]["fallback"] == "later" and by["Ta"]["lattice_scan"] == driver.POTENTIAL_TEXT
+    assert by["Nb"]["reason"] == "ValueError: no parameters for Nb"
+    assert by["W"]["start"] == "generated; not stand-in: in-plane strain +0.300"
+    labels = {r.id for r in load_records(work / "labels") if r.ok}
+    assert labels == {pick["Mo"], pick["W"]}
+    relax_recs, label_recs = driver._read_jsonl(log), driver._label_records(work)
+    relax_table = driver._relax_table(relax_recs, label_recs)
+    labelled = driver._labelled_table(table, relax_recs, label_recs)
+    sheet = driver.datasheet(table, labelled, relax_table, 7, {})
+    assert ("2 structures whose potential relaxation was not kept (failed: 1, fell_apart: 1) "
+            "wait for their plane-wave relaxation") in sheet
+    assert "2 of the failures are refusals of the potential" in sheet
+    assert "**2 structures that the potential did not keep wait" in sheet
+    # another run that leaves them for later redoes nothing
+    lines = len(driver._read_jsonl(log))
+    assert driver.pipeline_stage(table, ids, work, out, 7, progress=False,
+                                 relax_with="potential", fallback="later") == 0
+    assert len(driver._read_jsonl(log)) == lines
+    # a run that falls back now relaxes them with plane waves, and nothing else
+    driver.pipeline_stage(table, ids, work, out, 7, workers=2, progress=False,
+                          relax_with="potential")
+    newest = driver._newest(driver._read_jsonl(log))
+    after = {m: newest[pick[m]] for m in metals}
+    assert {m for m in metals if after[m] != by[m]} == {"Ta", "Nb"}
+    assert (after["Ta"]["generation"], after["Ta"]["status"]) == (4, "ok")
+    assert after["Ta"]["replaced_generation"] == driver.POTENTIAL_GENERATION
+    assert after["Ta"]["start"] == "generated; not stand-in: it is two sheets"
+    assert (after["Nb"]["generation"], after["Nb"]["status"]) == (4, "failed")  # _fake_pw raises
+    assert {r.id for r in load_records(work / "labels") if r.ok} == labels | {pick["Ta"]}
+    relax_recs, label_recs = driver._read_jsonl(log), driver._label_records(work)
+    sheet = driver.datasheet(table, driver._labelled_table(table, relax_recs, label_recs),
+                             driver._relax_table(relax_recs, label_recs), 7, {})
+    assert "wait for their plane-wave relaxation" not in sheet
+    assert "did not keep wait" not in sheet
+    with pytest.raises(InputError, match="unknown fallback"):
+        driver.pipeline_stage(table, ids, work, out, 7, progress=False, fallback="never")
+
+
 def _fake_label(structure, settings, *, id=None):
     """Stand-in for label_structure: a record whose spillage is the atom count / 10."""
     from prescreen.physics.dft import LabelRecord
