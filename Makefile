@@ -81,6 +81,7 @@ benchmarks-uip: venv
 # Regenerate the open dataset (resumes from data_work/; hours of CPU); `make model` then
 # retrains the default model on it. DATASET_ARGS="--relax-with plane-waves" relaxes with
 # DFT what the default relaxed with the potential alone.
+# DATASET_ARGS="--fallback later" leaves the potential's refusals for a later run.
 DATASET_ARGS ?=
 DATASET_WORKERS ?= 2
 dataset: dataset-env

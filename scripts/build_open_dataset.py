@@ -660,10 +660,11 @@ def _older_generation(rec: dict[str, Any], relax_with: str = "plane-waves") -> b
 
 
 def _deferred(rec: dict[str, Any]) -> bool:
-    """A structure whose relaxation by the potential alone was not kept and that waits for
-    its plane-wave relaxation (a run with ``--fallback later``, or a child of the
-    potential's route that died before it fell back)."""
-    return _by_potential(rec) and rec.get("status") != "ok"
+    """A structure whose relaxation by the potential alone was not kept by a run with
+    ``--fallback later``, and that waits for its plane-wave relaxation. (A child of the
+    potential's route that died or timed out before falling back leaves a record that the
+    parent makes, which the rules for timeouts and failures govern.)"""
+    return _by_potential(rec) and rec.get("status") != "ok" and rec.get("fallback") == "later"
 
 
 def _by_potential(rec: dict[str, Any]) -> bool:
@@ -1211,7 +1212,10 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
         if kind in ("label", "z2", "upgrade") and store is None:
             continue  # a relax-only run leaves them for a run that labels
         if rec is not None and (
-                (kind == "relax" and (ident not in relaxed or redo(newest_relax[ident])))
+                (kind == "relax" and (ident not in relaxed or redo(newest_relax[ident])
+                                      # a fallback finished whatever this run's --fallback
+                                      or (_deferred(newest_relax[ident])
+                                          and not _deferred(rec))))
                 # (an upgrade of either route: one left by a plane-wave run is kept too)
                 or (kind == "upgrade" and _needs_upgrade(newest_relax.get(ident, {})))
                 or (kind == "label" and (ident not in labelled or pending_relabel(ident)))
@@ -1244,7 +1248,9 @@ def _pipeline_body(pool: "pd.DataFrame", ids: Sequence[str], work: Path, out: Pa
                     and not _needs_upgrade(relax_by_id[done.id], relax_with)):
                 consider_z2(done)
     done_ids = {i for i, r in _newest(relax).items() if not redo(r)}
-    relax_queue = [i for i in ids if i not in done_ids]
+    # refusals of the potential that waited for their plane waves go before new structures
+    relax_queue = sorted((i for i in ids if i not in done_ids),
+                         key=lambda i: not (i in newest_relax and _deferred(newest_relax[i])))
     # successful relaxations of an earlier generation among ``ids`` (so ``--limit`` bounds
     # them too), except one whose Z2 job is queued already from a label result collected
     # above (the next run relaxes it again), in the order of _upgrade_priority
@@ -1473,6 +1479,8 @@ def _relax_table(relax: Sequence[dict[str, Any]], records: Sequence[Any]) -> "pd
              # relaxations recorded before the potential's start began at the pool geometry
              "start": str(r.get("start", "generated")),
              "start_s": float(r.get("start_s", 0.0)),
+             # "later": a refusal of the potential left for its plane-wave relaxation
+             "fallback": str(r.get("fallback", "")) if _deferred(r) else "",
              "label_status": label_status.get(r["id"], "not labelled")}
             for r in _newest(relax).values()]
     cols = ["id", "status", "reason", "converged", "residual_fmax_eV_per_A", "attempts",
@@ -1481,7 +1489,7 @@ def _relax_table(relax: Sequence[dict[str, Any]], records: Sequence[Any]) -> "pd
             "earlier_wall_s",
             "replaced_generation",
             "lattice_residual",
-            "lattice_cycles", "start", "start_s", "label_status"]
+            "lattice_cycles", "start", "start_s", "fallback", "label_status"]
     return pd.DataFrame(rows, columns=cols).sort_values("id").reset_index(drop=True)
 
 
@@ -1521,15 +1529,23 @@ def _potential_text(relax: "pd.DataFrame") -> str:
     status = mine["status"].value_counts().to_dict()
     others = ", ".join(f"{k}: {v}" for k, v in sorted(status.items()) if k != "ok")
     replaced = int(ok["replaced_generation"].between(1, RELAX_GENERATION - 1).sum())
-    waiting = len(mine) - len(ok)
-    return (f"{len(ok)} geometries come from this route (median {_median(ok['wall_s'])} s "
-            f"each); {replaced} of them replaced a geometry of an earlier DFT protocol "
-            f"(generations 1 to 3), and their labels the earlier ones."
-            + (f" {_count(waiting, 'structure', 'structures')} whose potential relaxation "
-               f"was not kept ({others}) wait for their plane-wave relaxation, left for "
-               f"later by a run with `--fallback later` to label more structures per hour "
-               f"meanwhile; the next run with `--fallback now` (the default) or "
-               f"`--relax-with plane-waves` relaxes them first." if waiting else ""))
+    waiting = mine[mine["fallback"] == "later"] if "fallback" in mine else mine.iloc[:0]
+    wait_status = ", ".join(f"{k}: {v}" for k, v in
+                            sorted(waiting["status"].value_counts().to_dict().items()))
+    others = ", ".join(f"{k}: {v}" for k, v in sorted(
+        (mine.drop(waiting.index)["status"].value_counts().to_dict()).items()) if k != "ok")
+    return ((f"{len(ok)} geometries come from this route (median {_median(ok['wall_s'])} s "
+             f"each); {replaced} of them replaced a geometry of an earlier DFT protocol "
+             f"(generations 1 to 3), and their labels the earlier ones." if len(ok) else
+             "No geometry comes from this route yet.")
+            + (f" {len(waiting)} {'structure' if len(waiting) == 1 else 'structures'} whose "
+               f"potential relaxation was not kept ({wait_status}) "
+               f"{'waits' if len(waiting) == 1 else 'wait'} for the plane-wave relaxation, "
+               f"left for later by a run with `--fallback later` to label more structures "
+               f"per hour meanwhile; the next run with `--fallback now` (the default) or "
+               f"`--relax-with plane-waves` relaxes them before any new structure."
+               if len(waiting) else "")
+            + (f" Other records of this route: {others}." if others else ""))
 
 
 def _start_text(relax: "pd.DataFrame") -> str:
@@ -1636,13 +1652,16 @@ def datasheet(pool: "pd.DataFrame", labelled: "pd.DataFrame", relax: "pd.DataFra
                   f"in the potential's own forces (the cell's included) for generation "
                   f"{POTENTIAL_GENERATION}")
     generations_text = _generations_text(relax)
-    deferred = (relax[(relax["generation"] == POTENTIAL_GENERATION) & (relax["status"] != "ok")]
-                if len(relax) else relax)
-    deferred_text = (f"; {len(deferred)} of the failures are refusals of the potential that "
-                     f"wait for a plane-wave relaxation, step 3" if len(deferred) else "")
+    deferred = (relax[(relax["generation"] == POTENTIAL_GENERATION) & (relax["status"] != "ok")
+                      & (relax["fallback"] == "later")]
+                if len(relax) and "fallback" in relax else relax.iloc[:0])
+    deferred_text = (f"; {_count(len(deferred), 'of the failures is a refusal', 'of the failures are refusals')} "
+                     f"of the potential waiting for a plane-wave relaxation, step 3"
+                     if len(deferred) else "")
     deferred_limit = (f"""
-- **{len(deferred)} structures that the potential did not keep wait for their plane-wave
-  relaxation** (step 3) and are not labelled yet. The potential's refusals are not a
+- **{_count(len(deferred), 'structure that the potential did not keep waits',
+            'structures that the potential did not keep wait')} for the plane-wave
+  relaxation** (step 3) and {'is' if len(deferred) == 1 else 'are'} not labelled yet. The potential's refusals are not a
   random draw of layers: of the 87 plane-wave labels of 2026-12-03 it refused 17, mostly
   buckled and puckered layers of heavy p-block elements (Bi, Sn, Pb, Tl, GaBi, BiSb), 8 of
   them positive, against 34 positives among the 70 it kept
@@ -1671,7 +1690,7 @@ numbers by hand (the integrity test checks the file's hash).*
 | `{POOL_XYZ}` | the same starting geometries as compressed extended XYZ (`id`, `prototype` per frame; positions printed to 8 decimals, the Parquet file keeps full double precision) |
 | `{LABELLED_PARQUET}` | relaxed and labelled monolayers: pool columns, `spillage` (max over k of gamma(k), electrons), `high_spillage` (spillage >= {POSITIVE_THRESHOLD}), `k_max`, `gap_nosoc_eV`, `gap_soc_eV`, `direct_gap_soc_eV` (smallest direct gap with SOC on the mesh; empty for labels from before it was stored), `is_metal`, `magmom_muB`, `kmesh`, `wall_s`, `core_hours`, `relax_wall_s`, `relax_generation` (how the geometry was relaxed, below), `residual_fmax_eV_per_A`, relaxed `lattice`/`species`/`frac_coords`, `gamma_k` and `kpts` (the whole gamma(k) on the mesh), `settings`, `versions`, `z2` (0 or 1, empty where not computed), `z2_method` (`parity` or `wilson`) and `z2_status` |
 | `{LABELLED_XYZ}` | relaxed labelled structures as compressed extended XYZ (`id`, `spillage` per frame) |
-| `{RELAX_PARQUET}` | the newest relaxation of every structure attempted (earlier ones are counted in `earlier_wall_s` and `replaced_generation`), with `status` (ok, not_converged, fell_apart, failed), `reason`, residual force and the labelling outcome |
+| `{RELAX_PARQUET}` | the newest relaxation of every structure attempted (earlier ones are counted in `earlier_wall_s` and `replaced_generation`), with `status` (ok, not_converged, fell_apart, failed), `reason`, residual force, `fallback` ("later": a refusal of the potential waiting for its plane-wave relaxation) and the labelling outcome |
 | `{MANIFEST}` | SHA-256 and size of every file above and of this datasheet |
 
 ## Counts
@@ -1727,7 +1746,8 @@ the potential alone, positives first; see step 3).
    sheet, and change each in-plane length by at most {100 * PRERELAX_MAX_STRAIN:.0f} %; otherwise the same
    job relaxes the pool geometry with plane waves (generation {RELAX_GENERATION}, below; column `start` says
    why), so that the layers the potential gets wrong, often heavy buckled ones with a
-   large spillage, are not left out. `--relax-with plane-waves` relaxes every geometry
+   large spillage, are not left out; a run with `--fallback later` records the refusal
+   instead (column `fallback`) and leaves the plane-wave relaxation to a later run. `--relax-with plane-waves` relaxes every geometry
    of this route again with plane waves. {_potential_text(relax)}
    **Plane waves** (`prescreen.physics.dft.relax_monolayer_pw`, generation
    {RELAX_GENERATION}): the labels' functional (PBE) and PAW setups in GPAW's

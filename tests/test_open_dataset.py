@@ -580,7 +580,11 @@ def test_refusals_of_the_potential_can_wait_for_their_plane_waves(tmp_path, monk
     # W relaxed and labelled by an earlier DFT protocol (generation 1)
     driver.pipeline_stage(table, [pick["W"]], work, out, 7, progress=False, start="generated")
     log.write_text(json.dumps(_older(driver._read_jsonl(log)[0], 1)) + "\n")
-    metals = ("Mo", "Ta", "Nb", "W")
+    # Cr's potential relaxation timed out before any fallback: the parent's record
+    timed_out = {"id": pick["Cr"], "status": "failed", "reason": "Timeout: no result within 2 s",
+                 "attempts": 0, "wall_s": 2.0, **driver._parent_made_fields("potential")}
+    driver._append_jsonl(log, timed_out)
+    metals = ("Mo", "Ta", "Nb", "W", "Cr")
     ids = [pick[m] for m in metals]
     driver.pipeline_stage(table, ids, work, out, 7, workers=2, progress=False,
                           relax_with="potential", fallback="later")
@@ -589,7 +593,9 @@ def test_refusals_of_the_potential_can_wait_for_their_plane_waves(tmp_path, monk
     # the refusals are recorded as the potential's and left; an upgrade (W, refused for
     # its strain) falls back at once, since it replaces a labelled geometry
     assert {m: (r["generation"], r["status"]) for m, r in by.items()} == {
-        "Mo": (0, "ok"), "Ta": (0, "fell_apart"), "Nb": (0, "failed"), "W": (4, "ok")}
+        "Mo": (0, "ok"), "Ta": (0, "fell_apart"), "Nb": (0, "failed"), "W": (4, "ok"),
+        "Cr": (0, "failed")}
+    assert by["Cr"] == timed_out  # a timeout is retried only when asked
     assert by["Ta"]["fallback"] == "later" and by["Ta"]["lattice_scan"] == driver.POTENTIAL_TEXT
     assert by["Nb"]["reason"] == "ValueError: no parameters for Nb"
     assert by["W"]["start"] == "generated; not stand-in: in-plane strain +0.300"
@@ -600,15 +606,29 @@ def test_refusals_of_the_potential_can_wait_for_their_plane_waves(tmp_path, monk
     labelled = driver._labelled_table(table, relax_recs, label_recs)
     sheet = driver.datasheet(table, labelled, relax_table, 7, {})
     assert ("2 structures whose potential relaxation was not kept (failed: 1, fell_apart: 1) "
-            "wait for their plane-wave relaxation") in sheet
+            "wait for the plane-wave relaxation") in sheet
+    assert "Other records of this route: failed: 1." in sheet  # Cr's timeout
     assert "2 of the failures are refusals of the potential" in sheet
     assert "**2 structures that the potential did not keep wait" in sheet
+    assert dict(zip(relax_table["id"], relax_table["fallback"])) == {
+        pick["Mo"]: "", pick["Ta"]: "later", pick["Nb"]: "later", pick["W"]: "", pick["Cr"]: ""}
     # another run that leaves them for later redoes nothing
     lines = len(driver._read_jsonl(log))
     assert driver.pipeline_stage(table, ids, work, out, 7, progress=False,
                                  relax_with="potential", fallback="later") == 0
     assert len(driver._read_jsonl(log)) == lines
-    # a run that falls back now relaxes them with plane waves, and nothing else
+    # a plane-wave fallback that a child finished before its run stopped is recorded by a
+    # run that leaves the others for later
+    rows = table.set_index("id")
+    payload = driver._relax_payload(rows, pick["Ta"], "potential", "potential", "now")
+    left = driver._relaxed(pick["Ta"], payload, driver.RELAX_KPT_DENSITY)[0]
+    assert left["generation"] == driver.RELAX_GENERATION
+    (work / "relax_tmp" / f"relax-{pick['Ta']}.json").write_text(json.dumps(left))
+    driver.pipeline_stage(table, ids, work, out, 7, progress=False, relax_with="potential",
+                          fallback="later")
+    assert driver._newest(driver._read_jsonl(log))[pick["Ta"]]["generation"] == 4
+    assert len(driver._read_jsonl(log)) == lines + 1
+    # a run that falls back now relaxes the others with plane waves, and nothing else
     driver.pipeline_stage(table, ids, work, out, 7, workers=2, progress=False,
                           relax_with="potential")
     newest = driver._newest(driver._read_jsonl(log))
@@ -622,8 +642,12 @@ def test_refusals_of_the_potential_can_wait_for_their_plane_waves(tmp_path, monk
     relax_recs, label_recs = driver._read_jsonl(log), driver._label_records(work)
     sheet = driver.datasheet(table, driver._labelled_table(table, relax_recs, label_recs),
                              driver._relax_table(relax_recs, label_recs), 7, {})
-    assert "wait for their plane-wave relaxation" not in sheet
+    assert "for the plane-wave relaxation, left for later" not in sheet
     assert "did not keep wait" not in sheet
+    # the timeout, retried when asked with a longer limit
+    driver.pipeline_stage(table, ids, work, out, 7, progress=False, relax_with="potential",
+                          retry_timeouts=True, relax_timeout_s=60)
+    assert driver._newest(driver._read_jsonl(log))[pick["Cr"]]["status"] == "ok"
     with pytest.raises(InputError, match="unknown fallback"):
         driver.pipeline_stage(table, ids, work, out, 7, progress=False, fallback="never")
 
