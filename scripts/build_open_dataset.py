@@ -1572,8 +1572,12 @@ def _md_table(header: Sequence[str], rows: Iterable[Sequence[Any]]) -> str:
 
 
 def _median(values: "pd.Series") -> str:
+    """The median in seconds as printed: whole seconds, one decimal below 10 s."""
     v = values.dropna()
-    return f"{float(v.median()):.0f}" if len(v) else "n/a"
+    if not len(v):
+        return "n/a"
+    m = float(v.median())
+    return f"{m:.1f}" if m < 10 else f"{m:.0f}"
 
 
 def _count(n: int, one: str, many: str) -> str:
