@@ -1370,7 +1370,7 @@ def _z2_columns(z2: dict[str, dict[str, Any]], label: Any) -> dict[str, Any]:
             why = "not computed (not a positive)"
         elif label.direct_gap_soc_eV < METAL_GAP_EV:
             why = (f"not defined (direct gap with SOC {label.direct_gap_soc_eV:.3f} eV on the "
-                   "labelling mesh: the bands touch)")
+                   "labelling mesh: the bands touch or nearly touch)")
         else:
             why = "pending (next run)"
         return {"z2": None, "z2_method": "", "z2_status": why}
@@ -1383,7 +1383,8 @@ def _z2_columns(z2: dict[str, dict[str, Any]], label: Any) -> dict[str, Any]:
     if rec.get("status") == "no_direct_gap":
         return {"z2": None, "z2_method": rec.get("method", ""),
                 "z2_status": f"not defined (direct gap with SOC {rec['direct_gap_soc_eV']:.3f} "
-                             f"eV on the {rec.get('method', '')} mesh: the bands touch)"}
+                             f"eV on the {rec.get('method', '')} mesh: the bands touch or nearly "
+                             "touch)"}
     if rec.get("status") == "ok":
         # records from before the method was recorded all came from parities
         return {"z2": int(rec["z2"]), "z2_method": rec.get("method", "parity"),
@@ -1506,17 +1507,21 @@ def _generations_text(relax: "pd.DataFrame") -> str:
         return ""
     good = int((redone["status"] == "ok").sum())
     text = (f"{len(redone)} structures relaxed by an earlier protocol have been relaxed again "
-            f"this way, from their pool geometry: {good} successfully, and labelled (the "
+            f"this way (from the start described below): {good} successfully, and labelled (the "
             f"labels of their earlier geometry are replaced); "
             f"{len(redone) - good} now fail, fall apart or do not converge and are left out")
     if old:
+        protocols = {3: "plane waves without the Pulay correction",
+                     2: "LCAO, the lattice from energy scans with the positions held "
+                        "fractional, then refined to zero in-plane stress by finite "
+                        "differences of the energy",
+                     1: "LCAO, the scans alone, biased toward the lattice at which the "
+                        "positions were relaxed"}
+        parts = [f"{count[g]} of generation {g} ({what})" for g, what in protocols.items()
+                 if count.get(g, 0)]
+        listed = parts[0] if len(parts) == 1 else ", ".join(parts[:-1]) + " and " + parts[-1]
         text += (f". {old} kept relaxations still come from an earlier DFT protocol and wait "
-                 f"for a new geometry: {count.get(3, 0)} of generation 3 (plane waves without the Pulay "
-                 f"correction), {count.get(2, 0)} of generation 2 (LCAO, the lattice from energy scans "
-                 f"with the positions held fractional, then refined to zero in-plane stress "
-                 f"by finite differences of the energy) and {count.get(1, 0)} of generation 1 "
-                 f"(LCAO, the scans alone, biased toward the lattice at which the positions "
-                 f"were relaxed)")
+                 f"for a new geometry: {listed}")
     return text + "."
 
 
@@ -1572,8 +1577,12 @@ def _md_table(header: Sequence[str], rows: Iterable[Sequence[Any]]) -> str:
 
 
 def _median(values: "pd.Series") -> str:
+    """The median in seconds as printed: whole seconds, one decimal below 10 s."""
     v = values.dropna()
-    return f"{float(v.median()):.0f}" if len(v) else "n/a"
+    if not len(v):
+        return "n/a"
+    m = float(v.median())
+    return f"{m:.1f}" if m < 10 else f"{m:.0f}"
 
 
 def _count(n: int, one: str, many: str) -> str:
@@ -1607,7 +1616,7 @@ def datasheet(pool: "pd.DataFrame", labelled: "pd.DataFrame", relax: "pd.DataFra
                f"{by_method.get('wilson', 0)} from Wilson loops; {z2_semimetal} of them "
                f"semimetals with a direct gap), of which "
                f"{_count((computed['z2'] == 1).sum(), 'has', 'have')} Z2 = 1; not defined "
-               f"for {undefined} (the bands touch); failed for {z2_failed} (reasons in "
+               f"for {undefined} (no direct gap with SOC: the bands touch or nearly touch); failed for {z2_failed} (reasons in "
                "`z2_status`)"
                + (f"; {pending} wait for the next run" if pending else "")
                if n_lab else "none yet")
@@ -1688,7 +1697,7 @@ numbers by hand (the integrity test checks the file's hash).*
 |---|---|
 | `{POOL_PARQUET}` | the unlabelled pool, one row per candidate: `id`, `prototype`, `family`, `reduced_formula`, `formula`, `elements` (space-separated), `n_elements`, `n_atoms`, `decoration` (JSON, site role -> element), `a_A`, `b_A`, `gamma_deg`, `lattice` (9 floats, row vectors, angstrom), `species`, `frac_coords` (3 per atom) |
 | `{POOL_XYZ}` | the same starting geometries as compressed extended XYZ (`id`, `prototype` per frame; positions printed to 8 decimals, the Parquet file keeps full double precision) |
-| `{LABELLED_PARQUET}` | relaxed and labelled monolayers: pool columns, `spillage` (max over k of gamma(k), electrons), `high_spillage` (spillage >= {POSITIVE_THRESHOLD}), `k_max`, `gap_nosoc_eV`, `gap_soc_eV`, `direct_gap_soc_eV` (smallest direct gap with SOC on the mesh; empty for labels from before it was stored), `is_metal`, `magmom_muB`, `kmesh`, `wall_s`, `core_hours`, `relax_wall_s`, `relax_generation` (how the geometry was relaxed, below), `residual_fmax_eV_per_A`, relaxed `lattice`/`species`/`frac_coords`, `gamma_k` and `kpts` (the whole gamma(k) on the mesh), `settings`, `versions`, `z2` (0 or 1, empty where not computed), `z2_method` (`parity` or `wilson`) and `z2_status` |
+| `{LABELLED_PARQUET}` | relaxed and labelled monolayers: `id`, `prototype`, `family`, `reduced_formula`, `elements`, `n_atoms` (as in the pool), `spillage` (max over k of gamma(k), electrons), `high_spillage` (spillage >= {POSITIVE_THRESHOLD}), `k_max`, `gap_nosoc_eV`, `gap_soc_eV`, `direct_gap_soc_eV` (smallest direct gap with SOC on the mesh; empty for labels from before it was stored), `is_metal`, `magmom_muB`, `kmesh`, `wall_s`, `core_hours`, `relax_wall_s`, `relax_generation` (how the geometry was relaxed, below), `residual_fmax_eV_per_A`, relaxed `lattice`/`species`/`frac_coords`, `gamma_k` and `kpts` (the whole gamma(k) on the mesh), `settings`, `versions`, `z2` (0 or 1, empty where not computed), `z2_method` (`parity` or `wilson`) and `z2_status` |
 | `{LABELLED_XYZ}` | relaxed labelled structures as compressed extended XYZ (`id`, `spillage` per frame) |
 | `{RELAX_PARQUET}` | the newest relaxation of every structure attempted (earlier ones are counted in `earlier_wall_s` and `replaced_generation`), with `status` (ok, not_converged, fell_apart, failed), `reason`, residual force, `fallback` ("later": a refusal of the potential waiting for its plane-wave relaxation) and the labelling outcome |
 | `{MANIFEST}` | SHA-256 and size of every file above and of this datasheet |
@@ -1735,7 +1744,9 @@ the potential alone, positives first; see step 3).
 2. **Subset**: cells of at most {DEFAULT_MAX_ATOMS} atoms first; prototypes take turns and each
    turn takes the candidate whose elements are least covered so far (seeded order). A
    prototype's next turn waits in proportion to the square root of its last pick's
-   estimated cost (the number of atoms, times {math.sqrt(HARD_COST_FACTOR):.2f} with N, O or F), so
+   estimated relaxation cost (the cost model is the number of atoms squared, times
+   {HARD_COST_FACTOR:.1f} with N, O or F; its square root the number of atoms, times
+   {math.sqrt(HARD_COST_FACTOR):.2f}), so
    a prototype of 2-atom cells comes about three times as often as one of 6-atom cells.
    The first {EQUAL_TURNS_RELAXED} structures relaxed were chosen with equal turns.
 3. **Relaxation**, by one of two routes (column `generation` in `{RELAX_PARQUET}`,

@@ -97,7 +97,7 @@ def coarse_loops_reason(name: str, size: int, min_link: float) -> str:
     """The refusal of loops whose links stay far from unitary at ``size`` points per loop
     (the last doubling); :func:`refused_below_cap` recognises it."""
     return (f"{name}: Wilson-loop links far from unitary with {size} points per loop "
-            f"(smallest singular value {min_link:.2f}, expected >= {MIN_LINK}): the occupied "
+            f"(smallest singular value {min_link:.3f}, expected >= {MIN_LINK}): the occupied "
             "states turn too fast for the step, a sign of a nearly closed gap; no invariant "
             "is given")
 
