@@ -16,15 +16,19 @@ relax
     Walk the stratified subset (cells of at most ``--max-atoms`` atoms first, a round
     robin over prototypes weighted toward cheaper cells, rarest elements first; see
     :func:`stratified_order`) and relax
-    each candidate with :func:`prescreen.physics.dft.relax_monolayer_pw` (PBE, plane
-    waves with the stress tensor, positions and in-plane cell together; coarser k mesh
-    than the labels). Each outcome, with its residual force and in-plane virial, is
+    each candidate: with ``--relax-with potential`` (the default) by the universal
+    potential alone, falling back to plane waves where its geometry is refused (now, or
+    later with ``--fallback later``); with ``--relax-with plane-waves`` by
+    :func:`prescreen.physics.dft.relax_monolayer_pw` (PBE, plane waves with the stress
+    tensor, positions and in-plane cell together; coarser k mesh than the labels), which
+    also relaxes the potential's geometries again. Each outcome, with its residual force and in-plane virial, is
     appended to ``<work>/relax.jsonl``; structures that do not converge or that fall
     apart (:func:`prescreen.prototypes.check_intact_monolayer`) are recorded and left
     out. Failures of earlier protocols (``RELAX_GENERATION``) are relaxed again.
 label
     Label the relaxed structures with :func:`prescreen.physics.labeller.run_labelling`
-    (resumable; JSONL records and one ``.npz`` per id in ``<work>/labels``).
+    (the ``all`` stage labels each one in a child process with
+    :func:`prescreen.physics.dft.label_structure` and the same settings; resumable; JSONL records and one ``.npz`` per id in ``<work>/labels``).
 pack
     Write ``labelled.parquet``, ``relaxation.parquet``, ``labelled.extxyz.gz``, the
     datasheet ``README.md`` (every number computed here) and ``MANIFEST.json`` (SHA-256
@@ -1507,7 +1511,7 @@ def _generations_text(relax: "pd.DataFrame") -> str:
         return ""
     good = int((redone["status"] == "ok").sum())
     text = (f"{len(redone)} structures relaxed by an earlier protocol have been relaxed again "
-            f"this way (from the start described below): {good} successfully, and labelled (the "
+            f"this way (from the start described above): {good} successfully, and labelled (the "
             f"labels of their earlier geometry are replaced); "
             f"{len(redone) - good} now fail, fall apart or do not converge and are left out")
     if old:
@@ -1785,10 +1789,10 @@ the potential alone, positives first; see step 3).
    longer one bonded, 2-periodic sheet with at least 8 A of vacuum (covalent radii x
    1.25 bond test, also run every {LAYER_CHECK_EVERY} steps), are recorded in `{RELAX_PARQUET}` and left
    out. {generations_text}
-4. **Labels** (`prescreen.physics.labeller.run_labelling` with default
-   `LabelSettings`): LCAO PBE dzp ground state, Gamma-centred k mesh (hexagonal meshes
-   contain K), Fermi-Dirac smearing, spin-orbit coupling added non-self-consistently,
-   spillage of Liu and Vanderbilt, Phys. Rev. B 90, 125133 (2014), with occupations
+4. **Labels** (`prescreen.physics.dft.label_structure` with default
+   `LabelSettings`; records in `labels/records.jsonl` of the work folder): LCAO PBE dzp
+   ground state, Gamma-centred k mesh (hexagonal meshes contain K), Fermi-Dirac smearing,
+   spin-orbit coupling added non-self-consistently, spillage of Liu and Vanderbilt, Phys. Rev. B 90, 125133 (2014), with occupations
    from the Fermi level at each k. Spin-paired (non-magnetic) ground states.
 5. **Z2**, for positives whose occupied states with spin-orbit coupling are separated
    from the empty ones at every k (a direct gap: insulators, and band-inverted semimetals
