@@ -21,14 +21,15 @@ relax
     later with ``--fallback later``); with ``--relax-with plane-waves`` by
     :func:`prescreen.physics.dft.relax_monolayer_pw` (PBE, plane waves with the stress
     tensor, positions and in-plane cell together; coarser k mesh than the labels), which
-    also relaxes the potential's geometries again. Each outcome, with its residual force and in-plane virial, is
-    appended to ``<work>/relax.jsonl``; structures that do not converge or that fall
-    apart (:func:`prescreen.prototypes.check_intact_monolayer`) are recorded and left
-    out. Failures of earlier protocols (``RELAX_GENERATION``) are relaxed again.
+    also relaxes the potential's geometries again. Each outcome, with its residual force
+    and in-plane virial, is appended to ``<work>/relax.jsonl``; structures that do not
+    converge or that fall apart (:func:`prescreen.prototypes.check_intact_monolayer`) are
+    recorded and left out. Failures of earlier protocols (``RELAX_GENERATION``) are relaxed again.
 label
     Label the relaxed structures with :func:`prescreen.physics.labeller.run_labelling`
     (the ``all`` stage labels each one in a child process with
-    :func:`prescreen.physics.dft.label_structure` and the same settings; resumable; JSONL records and one ``.npz`` per id in ``<work>/labels``).
+    :func:`prescreen.physics.dft.label_structure` and the same settings; resumable; JSONL
+    records and one ``.npz`` per id in ``<work>/labels``).
 pack
     Write ``labelled.parquet``, ``relaxation.parquet``, ``labelled.extxyz.gz``, the
     datasheet ``README.md`` (every number computed here) and ``MANIFEST.json`` (SHA-256

@@ -12,8 +12,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("campaign", help="campaign folder")
     parser.add_argument("ids", nargs="*",
                         help="candidate IDs (default: every labelled hit whose bands with SOC are "
-                        "apart at every k that has no invariant yet, was refused by the parity "
-                        "method alone, or by Wilson loops with fewer points than now allowed)")
+                        "apart at every k and that has no invariant yet, was refused by the "
+                        "parity method alone, or by Wilson loops with fewer points than now "
+                        "allowed)")
     parser.add_argument("--out", type=Path, default=None,
                         help="CSV to update (default <campaign>/z2.csv; rows of other IDs "
                         "are kept)")
